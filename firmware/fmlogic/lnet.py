@@ -1,0 +1,190 @@
+# Scalar L-network model shared by the firmware strategies and the host scorer.
+#
+# Units are MHz, uH, pF and ohms so that every intermediate stays well inside
+# single-precision range on boards without double floats.
+#
+# A state is (l_code, c_code, shunt): bit i of l_code adds inductor i in series,
+# bit i of c_code adds capacitor i in parallel, shunt is SHUNT_TX (capacitor on
+# the transmitter side, ahead of the inductor) or SHUNT_ANT (antenna side).
+# Losses: series R = X_L / Q_L for the inductance, parallel G = B_C / Q_C for the
+# capacitance; Q of 0 means lossless.
+
+from array import array
+
+SHUNT_TX = 0
+SHUNT_ANT = 1
+SHUNT_NAMES = ("tx", "ant")
+TWO_PI = 6.283185307179586
+
+
+def shunt_code(name):
+    if name in (0, 1):
+        return name
+    if name == "tx":
+        return SHUNT_TX
+    if name == "ant":
+        return SHUNT_ANT
+    raise ValueError("shunt must be 'tx' or 'ant'")
+
+
+class Bank:
+    """Description of the relay banks as the firmware knows them.
+
+    Per-code values are tabulated once (array of single floats) so the search
+    never re-sums bits in its inner loop; set_values() installs learned
+    effective element values and rebuilds the tables.
+    """
+
+    def __init__(self, z0, inductors_uh, capacitors_pf, inductor_q=0.0, capacitor_q=0.0):
+        self.z0 = float(z0)
+        self.nominal_l = [float(v) for v in inductors_uh]
+        self.nominal_c = [float(v) for v in capacitors_pf]
+        self.ql = float(inductor_q or 0.0)
+        self.qc = float(capacitor_q or 0.0)
+        self.nl = len(self.nominal_l)
+        self.nc = len(self.nominal_c)
+        self.l_max = (1 << self.nl) - 1
+        self.c_max = (1 << self.nc) - 1
+        self.lv = array("f", bytes(4 * (self.l_max + 1)))
+        self.cv = array("f", bytes(4 * (self.c_max + 1)))
+        self.set_values(self.nominal_l, self.nominal_c)
+
+    def set_values(self, inductors_uh, capacitors_pf):
+        self.ind = [float(v) for v in inductors_uh]
+        self.cap = [float(v) for v in capacitors_pf]
+        _tabulate(self.lv, self.ind)
+        _tabulate(self.cv, self.cap)
+
+    def l_uh(self, code):
+        return self.lv[code]
+
+    def c_pf(self, code):
+        return self.cv[code]
+
+    def l_code_for(self, l_uh):
+        """Code whose inductance is nearest to l_uh."""
+        return _nearest(self.lv, self.ind[0], l_uh)
+
+    def c_code_for(self, c_pf):
+        return _nearest(self.cv, self.cap[0], c_pf)
+
+
+def _tabulate(table, values):
+    for code in range(len(table)):
+        s = 0.0
+        i = 0
+        c = code
+        while c:
+            if c & 1:
+                s += values[i]
+            c >>= 1
+            i += 1
+        table[code] = s
+
+
+def _nearest(table, step, value):
+    # Binary weighting makes value/step a good first guess; a few neighbours
+    # absorb banks whose effective values are off nominal.
+    top = len(table) - 1
+    if value <= 0.0:
+        return 0
+    guess = int(value / step + 0.5)
+    if guess > top:
+        guess = top
+    best = guess
+    err = abs(table[guess] - value)
+    lo = guess - 3 if guess > 3 else 0
+    hi = guess + 3 if guess + 3 < top else top
+    for code in range(lo, hi + 1):
+        e = abs(table[code] - value)
+        if e < err:
+            err = e
+            best = code
+    return best
+
+
+def z_in(bank, f_mhz, zl, l_code, c_code, shunt):
+    """Input impedance of the network terminated in zl (complex ohms)."""
+    w = TWO_PI * f_mhz
+    xl = w * bank.l_uh(l_code)
+    zs = complex(xl / bank.ql if bank.ql > 0.0 else 0.0, xl)
+    b = w * bank.c_pf(c_code) * 1e-6
+    yc = complex(b / bank.qc if bank.qc > 0.0 else 0.0, b)
+    if shunt == SHUNT_ANT:
+        yl = 1.0 / zl if zl != 0 else complex(1e9, 0.0)
+        return zs + 1.0 / (yl + yc)
+    zt = zs + zl
+    yt = 1.0 / zt if zt != 0 else complex(1e9, 0.0)
+    return 1.0 / (yt + yc)
+
+
+def gamma_of(z, z0):
+    """Magnitude of the reflection coefficient of z against real z0."""
+    d = z + z0
+    ad = abs(d)
+    if ad == 0.0:
+        return 1.0
+    g = abs(z - z0) / ad
+    return 1.0 if g > 1.0 else g
+
+
+def gamma_state(bank, f_mhz, zl, l_code, c_code, shunt):
+    return gamma_of(z_in(bank, f_mhz, zl, l_code, c_code, shunt), bank.z0)
+
+
+def z_from_gamma(g, z0):
+    """Load impedance from a complex reflection coefficient."""
+    d = 1.0 - g
+    if abs(d) < 1e-9:
+        d = complex(1e-9, 0.0)
+    return z0 * (1.0 + g) / d
+
+
+def analytic_match(bank, f_mhz, zl, shunt):
+    """Ideal lossless L-network element values (l_uh, c_pf) matching zl, or None.
+
+    Textbook L-network design (e.g. ARRL Handbook, chapter on impedance matching):
+    with the capacitor across the antenna the load conductance must not exceed
+    1/z0; with the capacitor across the transmitter the load resistance must not
+    exceed z0.  Only a series inductor and a shunt capacitor exist here, so the
+    root with both reactances non-negative is taken.
+    """
+    z0 = bank.z0
+    w = TWO_PI * f_mhz
+    r = zl.real
+    x = zl.imag
+    if r <= 0.0:
+        return None
+    if shunt == SHUNT_ANT:
+        y = 1.0 / zl
+        g = y.real
+        bl = y.imag
+        d = g / z0 - g * g
+        if d < 0.0:
+            return None
+        best = None
+        for sgn in (1.0, -1.0):
+            bt = sgn * (d ** 0.5)
+            bc = bt - bl
+            if bc < -1e-12:
+                continue
+            zp = 1.0 / complex(g, bt)
+            xs = -zp.imag
+            if xs < -1e-9:
+                continue
+            cand = (max(xs, 0.0) / w, max(bc, 0.0) / w * 1e6)
+            if best is None or cand[0] + cand[1] * 1e-3 < best[0] + best[1] * 1e-3:
+                best = cand
+        return best
+    d = r * z0 - r * r
+    if d < 0.0:
+        return None
+    xt = d ** 0.5
+    xs = xt - x
+    if xs < -1e-9:
+        return None
+    zt = complex(r, xt)
+    bc = -(1.0 / zt).imag
+    if bc < -1e-12:
+        return None
+    return (max(xs, 0.0) / w, max(bc, 0.0) / w * 1e6)

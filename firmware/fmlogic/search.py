@@ -1,0 +1,444 @@
+# Search strategies: ask/tell objects that choose the next relay state.
+#
+#   s = ModelFit(bank, freq_hz, target_swr=1.5, budget=60)
+#   while not s.done:
+#       state = s.propose()                 # (l_code, c_code, shunt)
+#       ... set relays, settle, measure ...
+#       s.observe(fwd_w, ref_w)
+#   state, swr = s.result()
+#
+# They know nothing of hardware or time.  Each is written as a generator that
+# yields the state it wants measured and receives |gamma| back, which keeps the
+# sequential logic plain; memory is bounded by the measurement budget.
+import math
+
+from fmlogic import lnet
+from fmlogic.swr import gamma_from_powers, gamma_from_swr, swr_from_gamma
+
+try:
+    from micropython import const
+except ImportError:  # CPython
+
+    def const(x):
+        return x
+
+
+_MAX_JUMPS = const(6)
+_GRID_THETA = const(36)
+_GN_ITERS = const(6)
+BYPASS = (0, 0, lnet.SHUNT_ANT)
+
+
+class _Stop(Exception):
+    pass
+
+
+class Strategy:
+    """Common bookkeeping: budget, cache of measured states, best state seen."""
+
+    name = "base"
+
+    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
+        self.bank = bank
+        self.f_mhz = freq_hz / 1e6
+        self.target_swr = target_swr
+        self.target_g = gamma_from_swr(target_swr)
+        self.budget = budget
+        self.hint = memory_hint
+        self.seen = {}
+        self.order = []
+        self.n = 0
+        self.done = False
+        self.best_state = None
+        self.best_g = 2.0
+        self.no_rf = False
+        self._gen = self._run()
+        self._next = None
+
+    # -- ask/tell -------------------------------------------------------------
+    def propose(self):
+        if self.done:
+            return self.best_state
+        if self._next is None:
+            self._advance(None, first=True)
+        return self._next
+
+    def observe(self, fwd_w, ref_w):
+        g = gamma_from_powers(fwd_w, ref_w)
+        self.observe_gamma(g)
+
+    def observe_gamma(self, g):
+        state = self._next
+        self.n += 1
+        if g < 0.0:
+            # No carrier: the reading says nothing about the state; the
+            # controller decides whether to abort.
+            self.no_rf = True
+            self._finish()
+            return
+        self.seen[state] = g
+        self.order.append(state)
+        if g < self.best_g:
+            self.best_g = g
+            self.best_state = state
+        if self.n >= self.budget:
+            self._finish()
+            return
+        self._advance(g)
+
+    def result(self):
+        if self.best_state is None:
+            return (BYPASS, -1.0)
+        return (self.best_state, swr_from_gamma(self.best_g))
+
+    # -- internals ------------------------------------------------------------
+    def _finish(self):
+        self.done = True
+        self._next = None
+        try:
+            self._gen.close()
+        except Exception:
+            pass
+
+    def _advance(self, g, first=False):
+        try:
+            if first:
+                self._next = next(self._gen)
+            else:
+                self._next = self._gen.send(g)
+        except StopIteration:
+            self._finish()
+        except _Stop:
+            self._finish()
+
+    def _measure(self, state):
+        """Generator helper: measured |gamma| of a state, measuring only once."""
+        g = self.seen.get(state)
+        if g is None:
+            g = yield state
+        if g <= self.target_g:
+            raise _Stop()
+        return g
+
+    def _valid(self, l, c):
+        return 0 <= l <= self.bank.l_max and 0 <= c <= self.bank.c_max
+
+    def _descend(self, start, steps, predict=None):
+        """Coordinate descent on the codes from start, coarse to fine.
+
+        predict(state) -> modelled |gamma| orders the neighbours so the likely
+        improvement is measured first; without it the order is fixed.
+        """
+        best = start
+        bg = yield from self._measure(best)
+        for step in steps:
+            improved = True
+            while improved:
+                improved = False
+                l, c, sh = best
+                cands = []
+                for dl, dc in ((step, 0), (-step, 0), (0, step), (0, -step),
+                               (step, -step), (-step, step), (step, step), (-step, -step)):
+                    if self._valid(l + dl, c + dc):
+                        cands.append((l + dl, c + dc, sh))
+                if predict is not None:
+                    cands.sort(key=predict)
+                    cands = cands[:4]
+                for s in cands:
+                    g = yield from self._measure(s)
+                    if g < bg:
+                        bg = g
+                        best = s
+                        improved = True
+                        break
+        return best
+
+    def _coarse_then_descend(self):
+        """The baseline: coarse grid on both banks and both shunt sides, then descent."""
+        b = self.bank
+        levels_l = _levels(b.l_max)
+        levels_c = _levels(b.c_max)
+        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
+            for l in levels_l:
+                for c in levels_c:
+                    s = (l, c, sh) if c else (l, 0, lnet.SHUNT_ANT)
+                    yield from self._measure(s)
+        start = self.best_state
+        steps = _steps(max(b.l_max, b.c_max) // 8)
+        yield from self._descend(start, steps)
+        l, c, sh = self.best_state
+        if c:
+            other = (l, c, 1 - sh)
+            yield from self._measure(other)
+            if self.best_state == other:
+                yield from self._descend(other, (2, 1))
+
+    def _run(self):
+        yield from self._measure(BYPASS)
+
+
+def _levels(top):
+    # Roughly 4x apart: reactance matters on a log scale.
+    out = [0]
+    v = 3
+    while v < top:
+        out.append(v)
+        v = v * 4 + 3
+    out.append(top)
+    return out
+
+
+def _steps(first):
+    out = []
+    s = 1
+    while s <= first:
+        out.append(s)
+        s <<= 1
+    out.reverse()
+    return out
+
+
+class GridDescent(Strategy):
+    """Baseline a careful builder writes: a coarse grid over both banks on each
+    shunt side (codes about 4x apart), then coordinate descent on the codes with
+    halving steps, then a check of the other shunt side.  No model needed.
+    """
+
+    name = "grid"
+
+    def _run(self):
+        yield from self._measure(BYPASS)
+        yield from self._coarse_then_descend()
+
+
+class ModelFit(Strategy):
+    """Model-based search from scalar readings.
+
+    Method: the bypass reading fixes |gamma_load| (a circle on the Smith chart);
+    two probe states (a series reactance near z0, a shunt susceptance near
+    1/z0) add circles whose intersection locates the load.  The load's complex
+    reflection coefficient is estimated by non-linear least squares (a grid in
+    angle, then Gauss-Newton) on the same network equations, for the few best
+    separated minima, so ambiguous fits are kept rather than guessed.  For the
+    best candidate the ideal L-network (textbook closed form) is quantised to
+    codes and polished on the model; that state is measured, the reading joins
+    the fit, and the loop repeats a bounded number of times.  Then coordinate
+    descent ordered by the model, and if still unmatched the baseline grid.
+    """
+
+    name = "model"
+
+    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
+        Strategy.__init__(self, bank, freq_hz, target_swr, budget, memory_hint)
+        self.cands = []
+
+    # -- model helpers ----------------------------------------------------------
+    def _pred(self, gl, state):
+        zl = lnet.z_from_gamma(gl, self.bank.z0)
+        return lnet.gamma_state(self.bank, self.f_mhz, zl, state[0], state[1], state[2])
+
+    def _resid(self, gl):
+        s = 0.0
+        for st in self.order:
+            d = self._pred(gl, st) - self.seen[st]
+            s += d * d
+        return s
+
+    def _fit(self):
+        """Candidate load gammas, best first: [(sum sq residual, gamma), ...]."""
+        g0 = self.seen.get(BYPASS, 0.5)
+        rhos = []
+        for d in (-0.08, 0.0, 0.08):
+            r = g0 + d
+            if 0.0 <= r <= 0.995:
+                rhos.append(r)
+        if not rhos:
+            rhos.append(min(g0, 0.995))
+        # Best rho per angle on the grid, then local minima in angle.
+        grid = []
+        step = 2.0 * math.pi / _GRID_THETA
+        for k in range(_GRID_THETA):
+            th = k * step
+            ct = math.cos(th)
+            stt = math.sin(th)
+            best = None
+            for r in rhos:
+                gl = complex(r * ct, r * stt)
+                e = self._resid(gl)
+                if best is None or e < best[0]:
+                    best = (e, gl)
+            grid.append(best)
+        minima = []
+        n = len(grid)
+        for k in range(n):
+            e = grid[k][0]
+            if e <= grid[k - 1][0] and e <= grid[(k + 1) % n][0]:
+                minima.append(grid[k])
+        minima.sort(key=lambda t: t[0])
+        out = []
+        for e, gl in minima[:3]:
+            gl = self._refine(gl)
+            out.append((self._resid(gl), gl))
+        for prev in self.cands:
+            gl = self._refine(prev[1])
+            out.append((self._resid(gl), gl))
+        out.sort(key=lambda t: t[0])
+        uniq = []
+        for e, gl in out:
+            dup = False
+            for e2, g2 in uniq:
+                if abs(gl - g2) < 0.02:
+                    dup = True
+                    break
+            if not dup:
+                uniq.append((e, gl))
+        self.cands = uniq[:3]
+        return self.cands
+
+    def _refine(self, gl):
+        """Gauss-Newton on (re, im) of gamma_load with a step limit."""
+        h = 1e-4
+        for _ in range(_GN_ITERS):
+            a11 = a12 = a22 = b1 = b2 = 0.0
+            for st in self.order:
+                p = self._pred(gl, st)
+                r = p - self.seen[st]
+                ju = (self._pred(gl + h, st) - p) / h
+                jv = (self._pred(gl + complex(0.0, h), st) - p) / h
+                a11 += ju * ju
+                a12 += ju * jv
+                a22 += jv * jv
+                b1 += ju * r
+                b2 += jv * r
+            # Levenberg damping keeps the step sane when the readings saturate.
+            lam = 1e-6 + 1e-3 * (a11 + a22)
+            a11 += lam
+            a22 += lam
+            det = a11 * a22 - a12 * a12
+            if det <= 0.0:
+                break
+            du = -(a22 * b1 - a12 * b2) / det
+            dv = -(a11 * b2 - a12 * b1) / det
+            st_len = math.sqrt(du * du + dv * dv)
+            if st_len > 0.2:
+                du *= 0.2 / st_len
+                dv *= 0.2 / st_len
+            new = gl + complex(du, dv)
+            m = abs(new)
+            if m > 0.998:
+                new = new * (0.998 / m)
+            gl = new
+            if st_len < 1e-5:
+                break
+        return gl
+
+    def _model_best(self, gl):
+        """Best state for a modelled load: closed form, quantise, polish on the model."""
+        b = self.bank
+        zl = lnet.z_from_gamma(gl, b.z0)
+        f = self.f_mhz
+        best = None
+        bg = 2.0
+        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
+            m = lnet.analytic_match(b, f, zl, sh)
+            if m is None:
+                start = (b.l_code_for(0.0), 0, sh)
+            else:
+                start = (b.l_code_for(m[0]), b.c_code_for(m[1]), sh)
+            s, g = self._model_descend(zl, start)
+            if g < bg:
+                bg = g
+                best = s
+        return best, bg
+
+    def _model_descend(self, zl, s):
+        b = self.bank
+        f = self.f_mhz
+        g = lnet.gamma_state(b, f, zl, s[0], s[1], s[2])
+        step = 8
+        while step >= 1:
+            moved = True
+            while moved:
+                moved = False
+                l, c, sh = s
+                for dl, dc in ((step, 0), (-step, 0), (0, step), (0, -step),
+                               (step, -step), (-step, step)):
+                    nl = l + dl
+                    nc = c + dc
+                    if 0 <= nl <= b.l_max and 0 <= nc <= b.c_max:
+                        gn = lnet.gamma_state(b, f, zl, nl, nc, sh)
+                        if gn < g:
+                            g = gn
+                            s = (nl, nc, sh)
+                            moved = True
+                            break
+            step >>= 1
+        return s, g
+
+    def _probes(self):
+        b = self.bank
+        w = lnet.TWO_PI * self.f_mhz
+        lp = b.l_code_for(b.z0 / w)
+        cp = b.c_code_for(1e6 / (w * b.z0))
+        return ((lp if lp else 1, 0, lnet.SHUNT_ANT), (0, cp if cp else 1, lnet.SHUNT_ANT))
+
+    # -- the search -------------------------------------------------------------
+    def _run(self):
+        yield from self._measure(BYPASS)
+        for p in self._probes():
+            yield from self._measure(p)
+        yield from self._jumps()
+        yield from self._polish()
+        yield from self._coarse_then_descend()
+
+    def _jumps(self):
+        for _ in range(_MAX_JUMPS):
+            cands = self._fit()
+            target = None
+            for e, gl in cands:
+                s, g = self._model_best(gl)
+                if s is not None and s not in self.seen:
+                    target = s
+                    break
+            if target is None:
+                return
+            yield from self._measure(target)
+
+    def _polish(self):
+        if not self.cands:
+            self._fit()
+        gl = self.cands[0][1] if self.cands else complex(0.0, 0.0)
+
+        def predict(s):
+            return self._pred(gl, s)
+
+        yield from self._descend(self.best_state, (2, 1), predict)
+
+
+class Recall(ModelFit):
+    """Start from a stored state for a nearby frequency.
+
+    One reading verifies it; a near miss is refined locally around it; a bad
+    one falls through to the model-based search, which keeps that reading in
+    its fit.
+    """
+
+    name = "recall"
+
+    def _run(self):
+        hint = self.hint
+        if hint is not None and self._valid(hint[0], hint[1]):
+            g = yield from self._measure((hint[0], hint[1], hint[2]))
+            if g < gamma_from_swr(3.0):
+                yield from self._descend((hint[0], hint[1], hint[2]), (1,))
+        yield from ModelFit._run(self)
+
+
+STRATEGIES = {"grid": GridDescent, "model": ModelFit, "recall": Recall}
+
+
+def make(name, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
+    cls = STRATEGIES.get(name)
+    if cls is None:
+        raise ValueError("unknown strategy: " + str(name))
+    return cls(bank, freq_hz, target_swr, budget, memory_hint)
