@@ -24,6 +24,10 @@ except ImportError:  # CPython
 
 
 _MAX_JUMPS = const(6)
+# Readings near the target cannot be trusted to the last few per cent (coupler
+# directivity), so a reading between the comfortable and the target SWR buys
+# at most this many extra measurements to look for a clearly better state.
+_MARGINAL_EXTRA = const(3)
 _GRID_THETA = const(36)
 _GN_ITERS = const(6)
 BYPASS = (0, 0, lnet.SHUNT_ANT)
@@ -43,6 +47,9 @@ class Strategy:
         self.f_mhz = freq_hz / 1e6
         self.target_swr = target_swr
         self.target_g = gamma_from_swr(target_swr)
+        # Comfortable: 60 % of the way from 1 to the target SWR.
+        self.accept_g = gamma_from_swr(1.0 + 0.6 * (target_swr - 1.0))
+        self.extra = -1
         self.budget = budget
         self.hint = memory_hint
         self.seen = {}
@@ -81,7 +88,11 @@ class Strategy:
         if g < self.best_g:
             self.best_g = g
             self.best_state = state
-        if self.n >= self.budget:
+        if self.extra >= 0:
+            self.extra += 1
+        elif self.best_g <= self.target_g:
+            self.extra = 0
+        if self._satisfied() or self.n >= self.budget:
             self._finish()
             return
         self._advance(g)
@@ -116,9 +127,14 @@ class Strategy:
         g = self.seen.get(state)
         if g is None:
             g = yield state
-        if g <= self.target_g:
+        if self._satisfied():
             raise _Stop()
         return g
+
+    def _satisfied(self):
+        if self.best_g <= self.accept_g:
+            return True
+        return self.best_g <= self.target_g and self.extra >= _MARGINAL_EXTRA
 
     def _valid(self, l, c):
         return 0 <= l <= self.bank.l_max and 0 <= c <= self.bank.c_max
