@@ -158,7 +158,8 @@ class Strategy:
                     if self._valid(l + dl, c + dc):
                         cands.append((l + dl, c + dc, sh))
                 if predict is not None:
-                    cands.sort(key=predict)
+                    # MicroPython's sort is not stable: break ties explicitly.
+                    cands.sort(key=lambda st: (predict(st), st))
                     cands = cands[:4]
                 for s in cands:
                     g = yield from self._measure(s)
@@ -191,6 +192,12 @@ class Strategy:
 
     def _run(self):
         yield from self._measure(BYPASS)
+
+
+def _q(x):
+    # Interpreters differ in the last bits of complex arithmetic; a 1e-9 grid
+    # makes near-ties resolve the same way on every port.
+    return int(x * 1e9 + 0.5) * 1e-9
 
 
 def _levels(top):
@@ -251,7 +258,7 @@ class ModelFit(Strategy):
     # -- model helpers ----------------------------------------------------------
     def _pred(self, gl, state):
         zl = lnet.z_from_gamma(gl, self.bank.z0)
-        return lnet.gamma_state(self.bank, self.f_mhz, zl, state[0], state[1], state[2])
+        return _q(lnet.gamma_state(self.bank, self.f_mhz, zl, state[0], state[1], state[2]))
 
     def _resid(self, gl):
         s = 0.0
@@ -290,7 +297,7 @@ class ModelFit(Strategy):
             e = grid[k][0]
             if e <= grid[k - 1][0] and e <= grid[(k + 1) % n][0]:
                 minima.append(grid[k])
-        minima.sort(key=lambda t: t[0])
+        minima.sort(key=lambda t: (t[0], t[1].real, t[1].imag))
         out = []
         for e, gl in minima[:3]:
             gl = self._refine(gl)
@@ -298,7 +305,7 @@ class ModelFit(Strategy):
         for prev in self.cands:
             gl = self._refine(prev[1])
             out.append((self._resid(gl), gl))
-        out.sort(key=lambda t: t[0])
+        out.sort(key=lambda t: (t[0], t[1].real, t[1].imag))
         uniq = []
         for e, gl in out:
             dup = False
@@ -370,7 +377,7 @@ class ModelFit(Strategy):
     def _model_descend(self, zl, s):
         b = self.bank
         f = self.f_mhz
-        g = lnet.gamma_state(b, f, zl, s[0], s[1], s[2])
+        g = _q(lnet.gamma_state(b, f, zl, s[0], s[1], s[2]))
         step = 8
         while step >= 1:
             moved = True
@@ -382,7 +389,7 @@ class ModelFit(Strategy):
                     nl = l + dl
                     nc = c + dc
                     if 0 <= nl <= b.l_max and 0 <= nc <= b.c_max:
-                        gn = lnet.gamma_state(b, f, zl, nl, nc, sh)
+                        gn = _q(lnet.gamma_state(b, f, zl, nl, nc, sh))
                         if gn < g:
                             g = gn
                             s = (nl, nc, sh)
@@ -413,9 +420,16 @@ class ModelFit(Strategy):
             target = None
             for e, gl in cands:
                 s, g = self._model_best(gl)
-                if s is not None and s not in self.seen:
+                if s is None:
+                    continue
+                got = self.seen.get(s)
+                if got is None:
                     target = s
                     break
+                if got - g < 0.1:
+                    # This candidate already led here and the reading agrees
+                    # with it: the model is right, only polishing is left.
+                    return
             if target is None:
                 return
             yield from self._measure(target)

