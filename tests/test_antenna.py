@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import skrf
-
 from feedmatch.antenna import (
     C0,
     FixedLoad,

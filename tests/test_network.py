@@ -8,8 +8,6 @@ import random
 import numpy as np
 import pytest
 import skrf
-from skrf.media import DefinedGammaZ0
-
 from feedmatch.network import (
     Network,
     all_states_zin,
@@ -22,6 +20,7 @@ from feedmatch.network import (
     return_loss_db,
     swr_of,
 )
+from skrf.media import DefinedGammaZ0
 
 from .conftest import run_cli
 

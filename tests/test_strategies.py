@@ -7,7 +7,6 @@ import random
 import subprocess
 
 import pytest
-
 from feedmatch.detector import DetectorModel
 from feedmatch.loads import smith_loads
 from feedmatch.network import load_network

@@ -6,7 +6,6 @@ import argparse
 import json
 import math
 import sys
-from pathlib import Path
 from typing import Any
 
 from . import __version__
@@ -61,7 +60,8 @@ def cmd_simulate(a: argparse.Namespace) -> int:
         if a.json:
             emit_json({"ratings": rows})
         else:
-            print(f"{'band':>5} {'best SWR':>9} {'V cap pk':>9} {'I ind rms':>10}   at {rows[0]['power_w']:g} W")
+            print(f"{'band':>5} {'best SWR':>9} {'V cap pk':>9} {'I ind rms':>10}"
+                  f"   at {rows[0]['power_w']:g} W")
             for r in rows:
                 flag = "" if r["matchable"] else "  (not matchable: figures at best state)"
                 print(f"{r['band']:>5} {r['worst_best_swr']:9.2f} {r['v_cap_peak_max']:8.0f}V "

@@ -1,0 +1,99 @@
+# ESP32 board: the same duties as board_rp2040 on ESP32 peripherals.  ADC1
+# channels (ADC2 is unusable with Wi-Fi), relays through 74HC595s on SPI(2),
+# the frequency counter on the PCNT unit where the firmware has esp32.PCNT,
+# else an edge-counting interrupt (good only to a few kHz after the prescaler).
+import time
+
+import machine
+
+
+class Board:
+    def __init__(self, cfg):
+        pins = cfg["pins"]
+        net = cfg["network"]
+        self.oe = machine.Pin(pins.get("relay_oe", 4), machine.Pin.OUT, value=1)
+        self.latch = machine.Pin(pins.get("relay_latch", 5), machine.Pin.OUT, value=0)
+        self.spi = machine.SPI(2, baudrate=1000000, sck=machine.Pin(pins.get("relay_sck", 18)),
+                               mosi=machine.Pin(pins.get("relay_mosi", 23)))
+        self.nl = len(net["inductors_uh"])
+        self.nc = len(net["capacitors_pf"])
+        self.nbytes = (self.nl + self.nc + 2 + 7) // 8
+        self.buf = bytearray(self.nbytes)
+        self._shift(0)
+        self.oe.value(0)
+        self.adc_f = machine.ADC(machine.Pin(pins.get("adc_fwd", 34)), atten=machine.ADC.ATTN_11DB)
+        self.adc_r = machine.ADC(machine.Pin(pins.get("adc_ref", 35)), atten=machine.ADC.ATTN_11DB)
+        self.burst = cfg["detector"].get("burst", 16)
+        self.led_pin = machine.Pin(pins.get("led", 2), machine.Pin.OUT, value=0)
+        self.btn = machine.Pin(pins.get("tune_button", 0), machine.Pin.IN, machine.Pin.PULL_UP)
+        self.prescale = 64
+        self.count = 0
+        fin = machine.Pin(pins.get("freq_in", 27), machine.Pin.IN)
+        self.pcnt = None
+        try:
+            import esp32
+            self.pcnt = esp32.PCNT(0, pin=fin, rising=esp32.PCNT.INCREMENT)
+        except (ImportError, AttributeError, TypeError, ValueError):
+            fin.irq(self._edge, machine.Pin.IRQ_RISING)
+        self.wdt = machine.WDT(timeout=4000)
+        self.uart = machine.UART(1, baudrate=cfg["link"]["baud"], tx=pins.get("uart_tx", 17),
+                                 rx=pins.get("uart_rx", 16), timeout=0)
+
+    def _edge(self, _pin):
+        self.count += 1
+
+    def _shift(self, word):
+        for i in range(self.nbytes):
+            self.buf[self.nbytes - 1 - i] = (word >> (8 * i)) & 0xFF
+        self.spi.write(self.buf)
+        self.latch.value(1)
+        self.latch.value(0)
+
+    def set_relays(self, l, c, sh, bypass):
+        word = l | (c << self.nl) | ((1 if sh else 0) << (self.nl + self.nc)) | \
+            ((1 if bypass else 0) << (self.nl + self.nc + 1))
+        self._shift(word)
+
+    def read_detectors(self):
+        sf = 0
+        sr = 0
+        for _ in range(self.burst):
+            sf += self.adc_f.read_u16()
+            sr += self.adc_r.read_u16()
+        return (sf / (16.0 * self.burst), sr / (16.0 * self.burst))
+
+    def count_freq(self, gate_ms=50):
+        if self.pcnt is not None:
+            self.pcnt.value(0)
+            self.pcnt.start()
+            time.sleep_ms(gate_ms)
+            n = self.pcnt.value()
+        else:
+            self.count = 0
+            time.sleep_ms(gate_ms)
+            n = self.count
+        return n * self.prescale * 1000.0 / gate_ms
+
+    def tune_button(self):
+        return self.btn.value() == 0
+
+    def led(self, on):
+        self.led_pin.value(1 if on else 0)
+
+    def wdt_feed(self):
+        self.wdt.feed()
+
+    def ticks_ms(self):
+        return time.ticks_ms()
+
+    def ticks_diff(self, a, b):
+        return time.ticks_diff(a, b)
+
+    def sleep_ms(self, ms):
+        time.sleep_ms(ms)
+
+    def link_read(self):
+        return self.uart.read()
+
+    def link_write(self, data):
+        self.uart.write(data)

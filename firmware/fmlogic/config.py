@@ -1,0 +1,237 @@
+# Board configuration: defaults and the one validator, run by the host before
+# deploy and by the board at boot.  validate() returns a list of error strings,
+# each naming the field; an empty list means the config is good.
+
+FORMAT = 1
+
+DEFAULTS = {
+    "format": FORMAT,
+    "board": "virtual",
+    "board_id": "unnamed",
+    "pins": {},
+    "network": {
+        "z0_ohm": 50.0,
+        "inductors_uh": [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4],
+        "capacitors_pf": [10.0, 20.0, 40.0, 80.0, 160.0, 320.0, 640.0],
+        "inductor_q": 150.0,
+        "capacitor_q": 1000.0,
+    },
+    "detector": {
+        # (counts, watts) pairs; the shipped table is the simulator's nominal
+        # detector and must be replaced by a bench calibration.
+        "fwd": [[30.0, 0.05], [4000.0, 200.0]],
+        "ref": [[30.0, 0.05], [4000.0, 200.0]],
+        "floor_counts": 2.0,
+        "burst": 16,
+    },
+    "power": {
+        "min_tune_w": 2.0,
+        "max_tune_w": 25.0,
+        "hot_switch_w": 30.0,
+        "max_w": 200.0,
+    },
+    "tune": {
+        "strategy": "recall",
+        "target_swr": 1.5,
+        "retune_swr": 2.0,
+        "budget": 60,
+        "time_limit_ms": 4000,
+        "settle_ms": 10,
+        "rf_wait_ms": 10000,
+        "auto": True,
+    },
+    "memory": {"bin_hz": 25000, "max_entries": 400},
+    "records": {"keep": 200},
+    "link": {"baud": 115200},
+}
+
+# (section, key): (kind, low, high); kind "n" number, "i" integer, "b" bool, "s" string
+_RANGES = {
+    ("power", "min_tune_w"): ("n", 0.01, 1000.0),
+    ("power", "max_tune_w"): ("n", 0.01, 1000.0),
+    ("power", "hot_switch_w"): ("n", 0.0, 1000.0),
+    ("power", "max_w"): ("n", 0.1, 5000.0),
+    ("tune", "target_swr"): ("n", 1.01, 5.0),
+    ("tune", "retune_swr"): ("n", 1.01, 10.0),
+    ("tune", "budget"): ("i", 1, 500),
+    ("tune", "time_limit_ms"): ("i", 50, 60000),
+    ("tune", "settle_ms"): ("i", 0, 500),
+    ("tune", "rf_wait_ms"): ("i", 0, 600000),
+    ("tune", "auto"): ("b", 0, 0),
+    ("tune", "strategy"): ("s", 0, 0),
+    ("memory", "bin_hz"): ("n", 100.0, 10000000.0),
+    ("memory", "max_entries"): ("i", 1, 4000),
+    ("records", "keep"): ("i", 4, 5000),
+    ("link", "baud"): ("i", 1200, 2000000),
+    ("detector", "floor_counts"): ("n", 0.0, 100000.0),
+    ("detector", "burst"): ("i", 1, 1024),
+    ("network", "z0_ohm"): ("n", 1.0, 1000.0),
+    ("network", "inductor_q"): ("n", 1.0, 100000.0),
+    ("network", "capacitor_q"): ("n", 1.0, 100000.0),
+}
+STRATEGIES = ("grid", "model", "recall")
+BOARDS = ("rp2040", "esp32", "virtual")
+
+
+def merged(cfg):
+    """Defaults overlaid with cfg (one level of sections deep)."""
+    out = {}
+    for k in DEFAULTS:
+        v = DEFAULTS[k]
+        if isinstance(v, dict):
+            d = {}
+            for kk in v:
+                d[kk] = v[kk]
+            src = cfg.get(k) if isinstance(cfg, dict) else None
+            if isinstance(src, dict):
+                for kk in src:
+                    d[kk] = src[kk]
+            out[k] = d
+        else:
+            out[k] = cfg.get(k, v) if isinstance(cfg, dict) else v
+    if isinstance(cfg, dict):
+        for k in cfg:
+            if k not in out:
+                out[k] = cfg[k]
+    return out
+
+
+def _is_num(v):
+    return (isinstance(v, int) or isinstance(v, float)) and not isinstance(v, bool) and v == v \
+        and v not in (float("inf"), float("-inf"))
+
+
+def _check_range(errs, where, v, kind, lo, hi):
+    if kind == "b":
+        if not isinstance(v, bool):
+            errs.append(where + " must be true or false")
+        return
+    if kind == "s":
+        if not isinstance(v, str):
+            errs.append(where + " must be a string")
+        return
+    if not _is_num(v) or (kind == "i" and not isinstance(v, int)):
+        errs.append(where + " must be " + ("an integer" if kind == "i" else "a number"))
+        return
+    if v < lo or v > hi:
+        errs.append("%s must be in %s..%s, got %s" % (where, lo, hi, v))
+
+
+def _check_values(errs, where, v, max_len):
+    if not isinstance(v, list) or not v:
+        errs.append(where + " must be a non-empty list of numbers")
+        return
+    if len(v) > max_len:
+        errs.append("%s has %d entries, at most %d allowed" % (where, len(v), max_len))
+    for i in range(len(v)):
+        if not _is_num(v[i]) or v[i] <= 0:
+            errs.append("%s[%d] must be a number > 0" % (where, i))
+
+
+def _check_table(errs, where, v):
+    if not isinstance(v, list) or len(v) < 2:
+        errs.append(where + " must be a list of at least 2 [counts, watts] pairs")
+        return
+    pc = 0.0
+    pw = 0.0
+    for i in range(len(v)):
+        p = v[i]
+        if not isinstance(p, list) or len(p) != 2 or not _is_num(p[0]) or not _is_num(p[1]):
+            errs.append("%s[%d] must be [counts, watts]" % (where, i))
+            return
+        if p[0] <= pc or p[1] <= pw:
+            errs.append("%s[%d] must rise in counts and watts (monotonic)" % (where, i))
+            return
+        pc = p[0]
+        pw = p[1]
+
+
+def validate(cfg):
+    """All errors of a board config (after merging defaults), naming each field."""
+    errs = []
+    if not isinstance(cfg, dict):
+        return ["config must be a JSON object"]
+    for k in cfg:
+        if k not in DEFAULTS and k != "correction":
+            errs.append("unknown field '%s'" % k)
+    m = merged(cfg)
+    if m["format"] != FORMAT:
+        errs.append("format must be %d" % FORMAT)
+    if m["board"] not in BOARDS:
+        errs.append("board must be one of " + ", ".join(BOARDS))
+    if not isinstance(m["board_id"], str) or not m["board_id"] or len(m["board_id"]) > 32:
+        errs.append("board_id must be a string of 1..32 characters")
+    if not isinstance(m["pins"], dict):
+        errs.append("pins must be an object")
+    else:
+        for k in m["pins"]:
+            v = m["pins"][k]
+            if not (isinstance(v, int) and not isinstance(v, bool) and 0 <= v <= 48):
+                errs.append("pins.%s must be a GPIO number 0..48" % k)
+    for sec in DEFAULTS:
+        if isinstance(DEFAULTS[sec], dict):
+            if not isinstance(cfg.get(sec, {}), dict):
+                errs.append(sec + " must be an object")
+                continue
+            for k in cfg.get(sec, {}):
+                if k not in DEFAULTS[sec] and sec != "pins":
+                    errs.append("unknown field '%s.%s'" % (sec, k))
+    for key in _RANGES:
+        kind, lo, hi = _RANGES[key]
+        sec = m.get(key[0])
+        if isinstance(sec, dict) and key[1] in sec:
+            _check_range(errs, key[0] + "." + key[1], sec[key[1]], kind, lo, hi)
+    net = m["network"]
+    _check_values(errs, "network.inductors_uh", net.get("inductors_uh"), 12)
+    _check_values(errs, "network.capacitors_pf", net.get("capacitors_pf"), 12)
+    det = m["detector"]
+    _check_table(errs, "detector.fwd", det.get("fwd"))
+    _check_table(errs, "detector.ref", det.get("ref"))
+    p = m["power"]
+    if not errs:
+        if p["min_tune_w"] >= p["max_tune_w"]:
+            errs.append("power.min_tune_w must be below power.max_tune_w")
+        if p["max_tune_w"] > p["hot_switch_w"]:
+            errs.append("power.max_tune_w must not exceed power.hot_switch_w "
+                        "(the search switches relays with the tune carrier on)")
+        if m["tune"]["strategy"] not in STRATEGIES:
+            errs.append("tune.strategy must be one of " + ", ".join(STRATEGIES))
+        if m["tune"]["retune_swr"] < m["tune"]["target_swr"]:
+            errs.append("tune.retune_swr must be >= tune.target_swr")
+    corr = cfg.get("correction")
+    if corr is not None:
+        if not isinstance(corr, dict):
+            errs.append("correction must be an object")
+        else:
+            for k in corr:
+                if k not in ("inductors_uh", "capacitors_pf", "note"):
+                    errs.append("unknown field 'correction.%s'" % k)
+            for k, n in (("inductors_uh", len(net.get("inductors_uh") or [])),
+                         ("capacitors_pf", len(net.get("capacitors_pf") or []))):
+                if k in corr:
+                    _check_values(errs, "correction." + k, corr[k], 12)
+                    if isinstance(corr[k], list) and len(corr[k]) != n:
+                        errs.append("correction.%s must have %d entries like network.%s" % (k, n, k))
+    return errs
+
+
+def bank_from(m):
+    """The firmware Bank for a merged config, with any learned correction."""
+    from fmlogic import lnet
+
+    net = m["network"]
+    b = lnet.Bank(net["z0_ohm"], net["inductors_uh"], net["capacitors_pf"],
+                  net.get("inductor_q") or 0.0, net.get("capacitor_q") or 0.0)
+    corr = m.get("correction")
+    if isinstance(corr, dict):
+        b.set_values(corr.get("inductors_uh", net["inductors_uh"]),
+                     corr.get("capacitors_pf", net["capacitors_pf"]))
+    return b
+
+
+def meter_from(m):
+    from fmlogic.swr import Calibration, Meter
+
+    det = m["detector"]
+    fl = det["floor_counts"]
+    return Meter(Calibration(det["fwd"], fl), Calibration(det["ref"], fl), m["power"]["min_tune_w"] * 0.25)

@@ -1,0 +1,480 @@
+# The controller: guards, tuning, memory, records and the link, above a board.
+#
+# States (shown on the link as these strings):
+#   wait-rf      no carrier, or a carrier we do not act on; relays hold
+#   seek         a tune is under way (one measurement per step)
+#   locked       tuned, SWR at or below target
+#   best-effort  tune ended above target; best state kept (or through, if better)
+#   through      bypass relay closed: the transmitter sees the antenna directly
+#   fault        config or hardware error; relays hold or go through when safe
+#
+# Guards: every relay change goes through _switch(), which measures forward
+# power first and refuses above power.hot_switch_w.  A tune needs a carrier
+# inside the tune window, has a measurement budget and a time limit, and is
+# journalled so a reset mid-tune still ends in a record.
+import json
+
+from fmlogic import config as fcfg
+from fmlogic import link, memory, search
+from fmlogic.swr import SWR_MAX, gamma_from_powers, swr_from_gamma
+
+VERSION = "0.1.0"
+WAIT_RF = "wait-rf"
+SEEK = "seek"
+LOCKED = "locked"
+BEST = "best-effort"
+THROUGH = "through"
+FAULT = "fault"
+CONFIG = "config.json"
+
+
+class Controller:
+    def __init__(self, board, cfg, d=""):
+        self.board = board
+        self.d = d
+        self.raw_cfg = cfg if isinstance(cfg, dict) else {}
+        self.reader = link.LineReader()
+        self.ev_seq = 0
+        self.state = WAIT_RF
+        self.why = "boot"
+        self.relays = (0, 0, 1)
+        self.bypass = True
+        self.fwd = 0.0
+        self.ref = 0.0
+        self.raw = (0.0, 0.0)
+        self.freq = 0.0
+        self.tune_req = None
+        self.tune = None
+        self.lock_bin = None
+        self.pending_restore = None
+        self.frames_bad = 0
+        self.hot_refusals = 0
+        self.boot = _bump_boot(d)
+        errs = fcfg.validate(self.raw_cfg)
+        self.cfg = fcfg.merged(self.raw_cfg if not errs else {})
+        self._apply_cfg()
+        self.mem.load()
+        self.rec.load()
+        # Relays come up released (output enable held off at boot by the board).
+        board.set_relays(0, 0, 1, True)
+        if errs:
+            self._set_state(FAULT, "config: " + errs[0])
+        jn = memory.journal_take(d)
+        if jn is not None:
+            self._record(jn.get("freq_hz", 0.0), jn.get("before"), jn.get("before"),
+                         jn.get("swr_before", -1.0), -1.0, jn.get("n", 0), 0, "reset",
+                         "board reset during tune", False, jn.get("strategy", ""))
+        last = self.mem.last_state()
+        if last is not None and not errs:
+            self.pending_restore = last
+        self._event("boot", {"boot": self.boot, "version": VERSION, "board_id": self.cfg["board_id"],
+                             "seq": self.rec.seq, "mem": self.mem.load_error or "ok"})
+
+    # -- configuration --------------------------------------------------------------
+    def _apply_cfg(self):
+        m = self.cfg
+        self.bank = fcfg.bank_from(m)
+        self.meter = fcfg.meter_from(m)
+        self.p = m["power"]
+        self.t = m["tune"]
+        if not hasattr(self, "mem"):
+            self.mem = memory.Memory(self.d, m["memory"]["bin_hz"], m["memory"]["max_entries"])
+            self.rec = memory.Records(self.d, m["records"]["keep"])
+        else:
+            self.mem.bin_hz = float(m["memory"]["bin_hz"])
+            self.mem.max_entries = int(m["memory"]["max_entries"])
+            self.rec.keep = int(m["records"]["keep"])
+
+    # -- the loop ---------------------------------------------------------------
+    def run(self, idle_ms=20):
+        while True:
+            busy = self.step()
+            if not busy:
+                self.board.sleep_ms(idle_ms)
+
+    def step(self):
+        """One pass; returns True while a tune is under way (no idle wait)."""
+        b = self.board
+        b.wdt_feed()
+        try:
+            self._poll_link()
+            if self.tune is not None:
+                self._seek_step()
+                return True
+            self._watch()
+        except Exception as e:  # keep the loop alive; the watchdog covers hangs
+            self._fault("internal: " + repr(e)[:60])
+        b.led(self.state == LOCKED)
+        return self.tune is not None
+
+    def _read(self):
+        c = self.board.read_detectors()
+        self.raw = c
+        self.fwd, self.ref = self.meter.powers(c[0], c[1])
+        return self.fwd, self.ref
+
+    def _swr(self):
+        return swr_from_gamma(gamma_from_powers(self.fwd, self.ref))
+
+    def _switch(self, state, bypass):
+        """Change relays only with forward power at or below the hot-switch limit."""
+        want = (state[0], state[1], state[2])
+        if want == self.relays and bypass == self.bypass:
+            return True
+        self._read()
+        if self.fwd > self.p["hot_switch_w"]:
+            self.hot_refusals += 1
+            return False
+        self.board.set_relays(want[0], want[1], want[2], bypass)
+        self.relays = want
+        self.bypass = bypass
+        return True
+
+    def _watch(self):
+        fwd, ref = self._read()
+        now = self.board.ticks_ms()
+        if self.pending_restore is not None:
+            last = self.pending_restore
+            if self._switch((last[1], last[2], last[3]), bool(last[4])):
+                self.pending_restore = None
+                if not last[4]:
+                    self._set_state(LOCKED if last[0] >= 0 else WAIT_RF, "restored after reset")
+                    self.lock_bin = last[0] if last[0] >= 0 else None
+                else:
+                    self._set_state(THROUGH, "restored after reset")
+        req = self.tune_req
+        if fwd <= 0.0:
+            self.freq = 0.0
+            if req is not None and self.board.ticks_diff(now, req["t"]) > self.t["rf_wait_ms"]:
+                self.tune_req = None
+                self._record(req.get("freq_hz", 0.0), self._state_list(), self._state_list(),
+                             -1.0, -1.0, 0, 0, "refused", "no RF within wait time", False, "")
+            return
+        f = self.board.count_freq()
+        if f <= 0.0 and req is not None:
+            f = req.get("freq_hz", 0.0)
+        self.freq = f
+        if self.state == FAULT:
+            return
+        if self.board.tune_button():
+            req = self.tune_req = {"t": now, "freq_hz": f, "why": "button"}
+        in_window = self.p["min_tune_w"] <= fwd <= self.p["max_tune_w"]
+        if req is not None:
+            if fwd > self.p["max_tune_w"]:
+                if fwd > self.p["hot_switch_w"]:
+                    self._set_state(self.state, "hold: reduce power to %.0f W to tune" % self.p["max_tune_w"])
+                return
+            if in_window:
+                self.tune_req = None
+                self._start_tune(f, req.get("why", "request"))
+            return
+        if not self.t["auto"] or not in_window:
+            return
+        swr = self._swr()
+        fbin = self.mem.bin_of(f) if f > 0 else None
+        moved = fbin is not None and self.lock_bin is not None and abs(fbin - self.lock_bin) > 1
+        if swr > self.t["retune_swr"] or (moved and swr > self.t["target_swr"]):
+            if self.state == BEST and not moved and self.lock_bin == fbin:
+                return  # already did our best on this bin; wait for a request
+            self._start_tune(f, "auto: SWR %.2f" % swr)
+
+    # -- tuning -----------------------------------------------------------------
+    def _start_tune(self, f, why):
+        hint = self.mem.lookup(f) if f > 0 else None
+        name = self.t["strategy"]
+        if name == "recall" and hint is None:
+            name = "model"
+        strat = search.make(name, self.bank, f if f > 0 else 14.0e6, self.t["target_swr"],
+                            self.t["budget"], hint[:3] if hint else None)
+        before = self._state_list()
+        swr0 = self._swr()
+        self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
+                     "swr0": swr0, "hint": hint is not None, "why": why, "name": name,
+                     "fwd": self.fwd}
+        memory.journal_write(self.d, {"freq_hz": f, "before": before, "swr_before": swr0,
+                                      "strategy": name})
+        self._set_state(SEEK, why)
+
+    def _seek_step(self):
+        tn = self.tune
+        s = tn["s"]
+        b = self.board
+        if b.ticks_diff(b.ticks_ms(), tn["t0"]) > self.t["time_limit_ms"]:
+            self._end_tune("time limit")
+            return
+        st = s.propose()
+        if not self._switch(st, False):
+            self._end_tune("power above hot-switch limit", abort=True)
+            return
+        b.sleep_ms(self.t["settle_ms"])
+        fwd, ref = self._read()
+        if fwd <= 0.0:
+            self._end_tune("carrier lost", abort=True)
+            return
+        if fwd > self.p["max_tune_w"]:
+            self._end_tune("power rose above tune window", abort=True)
+            return
+        s.observe(fwd, ref)
+        if s.done:
+            self._end_tune("budget spent" if s.n >= s.budget else "search ended")
+
+    def _end_tune(self, why, abort=False):
+        tn = self.tune
+        self.tune = None
+        s = tn["s"]
+        best, best_swr = s.result()
+        target = self.t["target_swr"]
+        f = tn["f"]
+        outcome = LOCKED
+        if best_swr < 0:
+            outcome = "aborted"
+            final, byp = (self.relays, self.bypass)
+        elif best_swr <= target:
+            final, byp = (best, False)
+            why = "matched"
+        else:
+            # Through beats a poor match only when the antenna alone is better.
+            through_swr = s.seen.get(search.BYPASS)
+            through_swr = swr_from_gamma(through_swr) if through_swr is not None else SWR_MAX
+            if through_swr < best_swr:
+                final, byp = ((0, 0, 1), True)
+            else:
+                final, byp = (best, False)
+            outcome = "aborted" if abort else (THROUGH if byp else BEST)
+        switched = self._switch(final, byp)
+        if not switched:
+            why = why + "; relays held (power above hot-switch limit)"
+        after_swr = best_swr if (switched and best_swr > 0 and not byp) else -1.0
+        if byp and switched:
+            ts = s.seen.get(search.BYPASS)
+            after_swr = swr_from_gamma(ts) if ts is not None else -1.0
+        dur = self.board.ticks_diff(self.board.ticks_ms(), tn["t0"])
+        if outcome == LOCKED:
+            self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)
+        self.mem.set_last(f, self.relays, self.bypass)
+        self.mem.flush()
+        self.lock_bin = self.mem.bin_of(f) if f > 0 else None
+        memory.journal_take(self.d)
+        hit = tn["hint"] and s.n == 1 and outcome == LOCKED
+        self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
+                     outcome, why, hit, tn["name"])
+        if outcome == "aborted":
+            self._set_state(WAIT_RF, why)
+        else:
+            self._set_state(outcome, why)
+
+    # -- records, events, state ---------------------------------------------------
+    def _state_list(self):
+        return [self.relays[0], self.relays[1], self.relays[2], 1 if self.bypass else 0]
+
+    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat):
+        rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
+               "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
+               "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
+               "strategy": strat, "board_id": self.cfg["board_id"]}
+        self.rec.add(rec)
+        self._event("record", rec)
+
+    def _set_state(self, st, why):
+        if st != self.state or why != self.why:
+            self.state = st
+            self.why = why
+            self._event("state", {"state": st, "why": why, "relays": self._state_list()})
+
+    def _fault(self, why):
+        self.tune = None
+        try:
+            self._switch(self.relays, True)
+        except Exception:
+            pass
+        self._set_state(FAULT, why)
+
+    def _event(self, word, obj):
+        self.ev_seq = (self.ev_seq + 1) & 0xFFFF
+        self._send(link.encode("E", self.ev_seq, word, obj))
+
+    def _send(self, frame):
+        try:
+            self.board.link_write(frame)
+        except Exception:
+            pass  # a link that is gone must not stop the tuner
+
+    # -- the link ---------------------------------------------------------------
+    def _poll_link(self):
+        data = self.board.link_read()
+        if not data:
+            return
+        for line in self.reader.feed(data):
+            if not line:
+                self.frames_bad += 1
+                self._send(link.encode("A", 0, "err", {"why": "oversize"}))
+                continue
+            if line.strip() == b"":
+                continue
+            d = link.decode(line)
+            if d[0] is None:
+                self.frames_bad += 1
+                self._send(link.encode("A", 0, "err", {"why": d[1]}))
+                continue
+            kind, seq, word, obj = d
+            if kind != "Q":
+                self._send(link.encode("A", seq, "err", {"why": "not-a-request"}))
+                continue
+            try:
+                ok, reply = self._handle(word, obj)
+            except Exception as e:
+                ok, reply = False, {"why": "bad-args", "msg": repr(e)[:60]}
+            frame = link.encode("A", seq, "ok" if ok else "err", reply)
+            if len(frame) > link.MAX_LINE:
+                frame = link.encode("A", seq, "err", {"why": "reply-too-long"})
+            self._send(frame)
+
+    def _status(self):
+        return {"state": self.state, "why": self.why, "relays": self._state_list(),
+                "fwd_w": _r3(self.fwd), "ref_w": _r3(self.ref),
+                "swr": _r3(self._swr()) if self.fwd > 0 else None, "freq_hz": self.freq,
+                "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
+                "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
+                "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms()}
+
+    def _handle(self, word, a):
+        if word == "status":
+            return True, self._status()
+        if word == "tune":
+            if self.tune is not None:
+                return False, {"why": "busy"}
+            if self.state == FAULT:
+                return False, {"why": "fault", "msg": self.why}
+            f = a.get("freq_hz", 0.0)
+            if not isinstance(f, (int, float)) or f < 0 or f > 1e9:
+                return False, {"why": "bad-args", "msg": "freq_hz"}
+            self.tune_req = {"t": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
+            return True, {"accepted": True, "seq": self.rec.seq}
+        if word == "set":
+            if self.tune is not None:
+                return False, {"why": "busy"}
+            l_, c_, sh = a.get("l"), a.get("c"), a.get("sh", 1)
+            for v, top in ((l_, self.bank.l_max), (c_, self.bank.c_max), (sh, 1)):
+                if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
+                    return False, {"why": "bad-args", "msg": "l/c/sh out of range"}
+            if not self._switch((l_, c_, sh), False):
+                return False, {"why": "hot", "msg": "power above hot-switch limit"}
+            self.mem.set_last(self.freq, self.relays, False)
+            self.mem.flush()
+            self._set_state(WAIT_RF, "set by host")
+            return True, {"relays": self._state_list()}
+        if word == "bypass":
+            if self.tune is not None:
+                return False, {"why": "busy"}
+            on = a.get("on", True)
+            if not isinstance(on, bool):
+                return False, {"why": "bad-args", "msg": "on must be true or false"}
+            if not self._switch(self.relays, on):
+                return False, {"why": "hot", "msg": "power above hot-switch limit"}
+            self.mem.set_last(self.freq, self.relays, on)
+            self.mem.flush()
+            self._set_state(THROUGH if on else WAIT_RF, "bypass by host")
+            return True, {"relays": self._state_list()}
+        if word == "mem-list":
+            start = a.get("start", 0)
+            if not isinstance(start, int) or start < 0:
+                return False, {"why": "bad-args", "msg": "start"}
+            items = self.mem.listing()
+            return True, {"bin_hz": self.mem.bin_hz, "total": len(items), "start": start,
+                          "entries": items[start:start + 12]}
+        if word == "mem-clear":
+            self.mem.clear()
+            return True, {"entries": 0}
+        if word == "cfg-get":
+            sec = a.get("section")
+            if sec is None:
+                return True, {"sections": [k for k in self.cfg if isinstance(self.cfg[k], dict)]}
+            if sec not in self.cfg:
+                return False, {"why": "bad-args", "msg": "no such section"}
+            return True, {"section": sec, "value": self.cfg[sec]}
+        if word == "cfg-set":
+            return self._cfg_set(a)
+        if word == "cal-read":
+            n = a.get("n", 1)
+            if not isinstance(n, int) or not 1 <= n <= 64:
+                return False, {"why": "bad-args", "msg": "n must be 1..64"}
+            sf = sr = 0.0
+            for _ in range(n):
+                c = self.board.read_detectors()
+                sf += c[0]
+                sr += c[1]
+            self._read()
+            return True, {"fwd_counts": sf / n, "ref_counts": sr / n, "fwd_w": _r3(self.fwd),
+                          "ref_w": _r3(self.ref), "freq_hz": self.board.count_freq()}
+        if word == "records":
+            since = a.get("since", 0)
+            if not isinstance(since, int) or since < 0:
+                return False, {"why": "bad-args", "msg": "since"}
+            recs = self.rec.since(since, 3)
+            more = len(self.rec.since(since, 4)) > 3
+            return True, {"records": recs, "more": more, "last": self.rec.seq}
+        if word == "ping":
+            return True, {"pong": True}
+        return False, {"why": "unknown-request", "msg": word[:16]}
+
+    def _cfg_set(self, a):
+        if self.tune is not None:
+            return False, {"why": "busy"}
+        path = a.get("path")
+        if not isinstance(path, str) or path.count(".") != 1:
+            return False, {"why": "bad-args", "msg": "path must be section.key"}
+        sec, key = path.split(".")
+        new = {}
+        for k in self.raw_cfg:
+            v = self.raw_cfg[k]
+            new[k] = dict(v) if isinstance(v, dict) else v
+        if sec not in fcfg.DEFAULTS or not isinstance(fcfg.DEFAULTS[sec], dict):
+            return False, {"why": "bad-args", "msg": "no such section"}
+        new.setdefault(sec, {})
+        new[sec][key] = a.get("value")
+        errs = fcfg.validate(new)
+        if errs:
+            return False, {"why": "invalid", "msg": errs[0][:120]}
+        memory.atomic_write(self.d, CONFIG, json.dumps(new).encode())
+        self.raw_cfg = new
+        self.cfg = fcfg.merged(new)
+        self._apply_cfg()
+        if self.state == FAULT:
+            self._set_state(WAIT_RF, "config fixed")
+        return True, {"path": path, "value": self.cfg[sec][key]}
+
+
+def _r3(x):
+    if x is None:
+        return None
+    return int(x * 1000 + (0.5 if x >= 0 else -0.5)) / 1000.0
+
+
+def _bump_boot(d):
+    p = (d + "/boot.cnt") if d else "boot.cnt"
+    n = 0
+    try:
+        with open(p) as f:
+            n = int(f.read().strip() or "0")
+    except (OSError, ValueError):
+        n = 0
+    n += 1
+    try:
+        memory.atomic_write(d, "boot.cnt", str(n).encode())
+    except OSError:
+        pass
+    return n
+
+
+def load_config(d=""):
+    """The board's config file, or {} when missing or damaged (then defaults + fault)."""
+    p = (d + "/" + CONFIG) if d else CONFIG
+    for name in (p, p + ".bak"):
+        try:
+            with open(name) as f:
+                cfg = json.loads(f.read())
+            if isinstance(cfg, dict):
+                return cfg
+        except (OSError, ValueError):
+            continue
+    return {"board_id": "unconfigured", "tune": {"auto": False}, "format": -1}

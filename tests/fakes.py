@@ -1,0 +1,88 @@
+"""An in-process board on the host's station model, with virtual time."""
+
+from __future__ import annotations
+
+from feedmatch.antenna import Monopole
+from feedmatch.detector import DetectorModel
+from feedmatch.network import load_network
+from feedmatch.station import StationModel
+
+
+class FakeBoard:
+    def __init__(self, model: StationModel):
+        self.m = model
+        self.t = 0
+        self.inbox = bytearray()
+        self.outbox = bytearray()
+        self.button = False
+        self.feeds = 0
+        self.sets = 0
+        self.on_set = None  # hook(board) after each relay change
+        self.led_on = False
+
+    def read_detectors(self):
+        self.t += 1
+        return self.m.read()
+
+    def set_relays(self, l, c, sh, bypass):
+        self.m.set(l, c, sh, 1 if bypass else 0)
+        self.sets += 1
+        if self.on_set:
+            self.on_set(self)
+
+    def count_freq(self):
+        return self.m.count()
+
+    def tune_button(self):
+        b, self.button = self.button, False
+        return b
+
+    def led(self, on):
+        self.led_on = on
+
+    def wdt_feed(self):
+        self.feeds += 1
+
+    def ticks_ms(self):
+        return self.t
+
+    def ticks_diff(self, a, b):
+        return a - b
+
+    def sleep_ms(self, ms):
+        self.t += ms
+
+    def link_read(self):
+        if not self.inbox:
+            return None
+        data = bytes(self.inbox[:200])
+        del self.inbox[:200]
+        return data
+
+    def link_write(self, data):
+        self.outbox += data
+
+
+def make_model(antenna=None, ideal=False, hot=25.0, seed=3):
+    net = load_network()
+    return StationModel(net, antenna or Monopole(4.5, 0.012, 6.0), DetectorModel(ideal=ideal), hot, seed)
+
+
+def board_config(**over):
+    det = DetectorModel()
+    pts = [list(p) for p in det.calibration_points()]
+    cfg = {
+        "board": "virtual", "board_id": "test-1",
+        "network": {"z0_ohm": 50, "inductors_uh": [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4],
+                    "capacitors_pf": [10, 20, 40, 80, 160, 320, 640],
+                    "inductor_q": 150, "capacitor_q": 1000},
+        "detector": {"fwd": pts, "ref": pts, "floor_counts": 2.0},
+        "power": {"min_tune_w": 2, "max_tune_w": 20, "hot_switch_w": 25, "max_w": 150},
+        "tune": {"strategy": "recall", "target_swr": 1.5, "retune_swr": 2.0, "budget": 60,
+                 "time_limit_ms": 4000, "settle_ms": 5, "rf_wait_ms": 2000},
+        "memory": {"bin_hz": 25000, "max_entries": 50},
+    }
+    for k, v in over.items():
+        sec, key = k.split("__")
+        cfg[sec][key] = v
+    return cfg

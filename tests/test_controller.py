@@ -1,0 +1,324 @@
+"""The firmware controller with an in-process fake board: guards, memory, records, link."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+from fmlogic import config as fcfg
+from fmlogic import link, memory
+from fmlogic.controller import FAULT, LOCKED, SEEK, WAIT_RF, Controller
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as hs
+
+from .fakes import FakeBoard, board_config, make_model
+
+
+def _frames(board):
+    out = []
+    for line in bytes(board.outbox).split(b"\n"):
+        if line:
+            d = link.decode(line + b"\n")
+            assert d[0] is not None, line
+            out.append(d)
+    board.outbox.clear()
+    return out
+
+
+def _records(frames):
+    return [f[3] for f in frames if f[0] == "E" and f[2] == "record"]
+
+
+def run(ctl, steps=400, until=None):
+    for _ in range(steps):
+        ctl.step()
+        if until and until(ctl):
+            return True
+    return False
+
+
+def _setup(tmp_path, **over):
+    m = make_model()
+    b = FakeBoard(m)
+    ctl = Controller(b, board_config(**over), str(tmp_path))
+    return m, b, ctl
+
+
+def test_auto_tune_on_a_carrier_locks_and_remembers(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(10, 7.1e6)
+    assert run(ctl, until=lambda c: c.state == LOCKED)
+    recs = _records(_frames(b))
+    assert len(recs) == 1 and recs[0]["outcome"] == "locked"
+    assert recs[0]["swr_after"] <= 1.5 and m.swr() <= 1.6
+    assert recs[0]["n"] <= 20
+    assert m.violations == []
+    # Unkey, then a return to the band is one reading from memory.
+    m.key(0, 0)
+    run(ctl, 5)
+    m.set(0, 0, 1, 1)  # someone else's state: force a retune
+    ctl.relays, ctl.bypass = (0, 0, 1), True
+    m.key(10, 7.1e6)
+    assert run(ctl, until=lambda c: c.state == LOCKED and c.rec.seq == 2)
+    r2 = _records(_frames(b))[-1]
+    assert r2["n"] == 1 and r2["mem"] is True
+    assert (tmp_path / "mem.dat").exists()
+
+
+def test_never_switches_above_hot_switch_limit(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(100, 14.2e6)  # operating power, bad SWR through the bypass
+    run(ctl, 200)
+    assert b.sets == 1  # only the boot release of the relays
+    assert ctl.state != SEEK
+    b.inbox += link.encode("Q", 5, "set", {"l": 3, "c": 3, "sh": 1})
+    b.inbox += link.encode("Q", 6, "tune", {})
+    run(ctl, 50)
+    fr = {f[1]: f for f in _frames(b) if f[0] == "A"}
+    assert fr[5][2] == "err" and fr[5][3]["why"] == "hot"
+    assert fr[6][2] == "ok"
+    assert "reduce power" in ctl.why
+    assert m.violations == [] and b.sets == 1
+
+
+def test_power_rising_mid_tune_aborts_and_holds(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(10, 7.1e6)
+
+    def hook(board):
+        if board.sets == 4:
+            m.key(100, 7.1e6)  # the operator keys full power during the search
+    b.on_set = hook
+    run(ctl, 100)
+    recs = _records(_frames(b))
+    assert recs and recs[0]["outcome"] == "aborted"
+    assert "power" in recs[0]["why"]
+    assert m.violations == []
+    assert ctl.state == WAIT_RF
+
+
+def test_no_tune_without_rf_and_request_times_out(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    b.inbox += link.encode("Q", 1, "tune", {"freq_hz": 7.1e6})
+    run(ctl, 20)
+    assert ctl.state == WAIT_RF and b.sets == 1
+    b.t += 3000
+    run(ctl, 3)
+    recs = _records(_frames(b))
+    assert recs[-1]["outcome"] == "refused" and "no RF" in recs[-1]["why"]
+    st = ctl._status()
+    assert st["swr"] is None  # no RF is never shown as a match
+
+
+def test_no_rf_reading_is_not_a_perfect_match(tmp_path):
+    from fmlogic.config import merged, meter_from
+
+    meter = meter_from(merged(board_config()))
+    assert meter.powers(0.0, 0.0) == (0.0, 0.0)
+    assert meter.powers(1.0, 0.0)[0] == 0.0  # below the floor: no RF
+
+
+def test_budget_and_time_limit(tmp_path):
+    m, b, ctl = _setup(tmp_path, tune__budget=3)
+    m.key(10, 28.4e6)
+    run(ctl, 50, until=lambda c: c.rec.seq >= 1)
+    r = _records(_frames(b))[0]
+    assert r["n"] <= 3
+    m2, b2, ctl2 = _setup(tmp_path / "x", tune__time_limit_ms=50, tune__settle_ms=20)
+    (tmp_path / "x").mkdir(exist_ok=True)
+    m2.key(10, 28.4e6)
+    run(ctl2, 50, until=lambda c: c.rec.seq >= 1)
+    r = _records(_frames(b2))[0]
+    assert r["why"] == "time limit" and r["ms"] <= 50 + 30
+
+
+def test_reset_mid_tune_ends_in_a_record_and_restores_last_good(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(10, 14.2e6)
+    assert run(ctl, until=lambda c: c.state == LOCKED)
+    good = m.relays
+    m.key(0, 0)
+    run(ctl, 3)
+    m.key(10, 10.12e6)
+    run(ctl, until=lambda c: c.state == SEEK)
+    run(ctl, 3)  # mid-search: now the board resets (watchdog or power)
+    m.key(0, 0)
+    b2 = FakeBoard(m)
+    ctl2 = Controller(b2, board_config(), str(tmp_path))
+    recs = _records(_frames(b2))
+    assert recs[-1]["outcome"] == "reset" and recs[-1]["seq"] == 2
+    run(ctl2, 5)
+    # Relays come up released, then the last good state is restored (no RF: safe).
+    assert m.relays == good
+    assert m.violations == []
+
+
+def test_watchdog_is_fed_every_step_and_faults_keep_the_loop(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    n = b.feeds
+    run(ctl, 10)
+    assert b.feeds == n + 10
+
+    def broken():
+        raise OSError("adc gone")
+    b.read_detectors = broken
+    ctl.step()
+    assert ctl.state == FAULT and "adc gone" in ctl.why
+
+
+@pytest.mark.parametrize("damage", ["truncate", "garbage", "bitflip", "empty"])
+def test_damaged_memory_file_falls_back(tmp_path, damage):
+    mem = memory.Memory(str(tmp_path), 25000, 10)
+    mem.store(7.1e6, (10, 20, 0), 1.2, 5)
+    mem.flush()
+    mem.store(14.2e6, (3, 4, 1), 1.1, 6)
+    mem.flush()  # mem.dat has both, mem.bak has the first
+    p = tmp_path / "mem.dat"
+    raw = p.read_bytes()
+    if damage == "truncate":
+        p.write_bytes(raw[: len(raw) - 7])
+    elif damage == "garbage":
+        p.write_bytes(b"\x00\xff garbage")
+    elif damage == "bitflip":
+        p.write_bytes(raw[:-3] + bytes([raw[-3] ^ 1]) + raw[-2:])
+    else:
+        p.write_bytes(b"")
+    m2 = memory.Memory(str(tmp_path), 25000, 10)
+    assert m2.load()
+    assert m2.lookup(7.1e6)[:3] == (10, 20, 0)
+    assert m2.lookup(14.2e6) is None  # the newer copy was the damaged one
+    assert "damaged" in m2.load_error
+
+
+def test_power_loss_between_write_and_rename(tmp_path):
+    mem = memory.Memory(str(tmp_path), 25000, 10)
+    mem.store(7.1e6, (10, 20, 0), 1.2, 5)
+    mem.flush()
+    # A cut after mem.new is written but before the renames: the new copy wins.
+    mem.store(14.2e6, (3, 4, 1), 1.1, 6)
+    mem.gen += 1
+    body_ok = memory.Memory(str(tmp_path), 25000, 10)
+    body_ok.entries = dict(mem.entries)
+    body_ok.gen = mem.gen - 1
+    body_ok.dirty = True
+    body_ok.flush()
+    (tmp_path / "mem.dat").rename(tmp_path / "mem.new")
+    m2 = memory.Memory(str(tmp_path), 25000, 10)
+    assert m2.load() and m2.lookup(14.2e6) is not None
+    # Both copies damaged: empty memory, reported, no crash.
+    for n in ("mem.new", "mem.bak", "mem.dat"):
+        if (tmp_path / n).exists():
+            (tmp_path / n).write_bytes(b"FMMEM 1 9 9 0000\nzzz")
+    m3 = memory.Memory(str(tmp_path), 25000, 10)
+    assert not m3.load() and m3.entries == {}
+
+
+def test_memory_writes_only_on_change_and_is_bounded(tmp_path):
+    mem = memory.Memory(str(tmp_path), 25000, 5)
+    mem.store(7.1e6, (10, 20, 0), 1.2, 1)
+    assert mem.flush() and not mem.flush()
+    assert not mem.store(7.1e6, (10, 20, 0), 1.21, 2)  # same state, same SWR: no write
+    for i in range(10):
+        mem.store(14.0e6 + i * 100e3, (i, i, 1), 1.1, 10 + i)
+    assert len(mem.entries) == 5
+    assert mem.lookup(7.1e6) is None  # the oldest went first
+
+
+def test_records_survive_torn_line_and_fetch_since(tmp_path):
+    r = memory.Records(str(tmp_path), 4)
+    for i in range(11):
+        r.add({"freq_hz": i})
+    with open(tmp_path / "rec.log", "ab") as f:
+        f.write(b'{"seq": 12, "freq')  # torn by a power cut
+    r2 = memory.Records(str(tmp_path), 4)
+    r2.load()
+    assert r2.seq == 11 and [x["seq"] for x in r2.ring] == [8, 9, 10, 11]
+    assert [x["seq"] for x in r2.since(9, 10)] == [10, 11]
+
+
+def test_config_validation_and_cfg_set_range_checks(tmp_path):
+    assert fcfg.validate(board_config()) == []
+    bad = board_config(power__hot_switch_w=5)
+    assert any("hot_switch" in e for e in fcfg.validate(bad))
+    assert any("target_swr" in e for e in fcfg.validate(board_config(tune__target_swr=0.5)))
+    assert any("unknown field 'tune.colour'" in e for e in fcfg.validate(board_config(tune__colour=1)))
+    m, b, ctl = _setup(tmp_path)
+    b.inbox += link.encode("Q", 1, "cfg-set", {"path": "tune.target_swr", "value": 9.0})
+    b.inbox += link.encode("Q", 2, "cfg-set", {"path": "tune.target_swr", "value": 1.3})
+    b.inbox += link.encode("Q", 3, "cfg-get", {"section": "tune"})
+    run(ctl, 3)
+    fr = {f[1]: f for f in _frames(b) if f[0] == "A"}
+    assert fr[1][2] == "err" and "target_swr" in fr[1][3]["msg"]
+    assert fr[2][2] == "ok"
+    assert fr[3][3]["value"]["target_swr"] == 1.3
+    saved = json.loads((tmp_path / "config.json").read_text())
+    assert saved["tune"]["target_swr"] == 1.3
+
+
+def test_bad_config_at_boot_is_a_fault_not_a_crash(tmp_path):
+    m = make_model()
+    b = FakeBoard(m)
+    ctl = Controller(b, board_config(power__max_tune_w=-1), str(tmp_path))
+    assert ctl.state == FAULT and "power.max_tune_w" in ctl.why
+    m.key(10, 7.1e6)
+    run(ctl, 20)
+    assert b.sets == 1
+
+
+def test_crc16_check_value():
+    # CRC-16/CCITT-FALSE check value for "123456789" is 0x29B1
+    # (Greg Cook's CRC catalogue, "CRC-16/IBM-3740", a.k.a. CCITT-FALSE).
+    assert link.crc16(b"123456789") == 0x29B1
+
+
+def test_frame_round_trip_and_rejections():
+    f = link.encode("Q", 42, "tune", {"freq_hz": 7100000})
+    assert link.decode(f) == ("Q", 42, "tune", {"freq_hz": 7100000})
+    assert link.decode(f[:-6] + b"*0000\n") == (None, "bad-crc")
+    assert link.decode(b"hello\n") == (None, "no-crc")
+    body = b"Z1 x {}"
+    assert link.decode(body + b"*%04X\n" % link.crc16(body)) == (None, "malformed")
+    assert link.decode(b"Q" * 2000) == (None, "oversize")
+
+
+@settings(max_examples=1500, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(hs.binary(max_size=300))
+def test_fuzz_parser_random_bytes(data):
+    d = link.decode(data)
+    assert d[0] is None or d[0] in "QAE"
+
+
+_FUZZ_STATE = {}
+
+
+@settings(max_examples=1500, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+                                                                   HealthCheck.function_scoped_fixture])
+@given(hs.lists(hs.one_of(
+    hs.binary(max_size=80),
+    hs.builds(lambda w, o: link.encode("Q", 1, w, o),
+              hs.sampled_from(["status", "tune", "set", "bypass", "mem-list", "cfg-set", "cfg-get",
+                               "cal-read", "records", "zap", "mem-clear"]),
+              hs.dictionaries(hs.sampled_from(["l", "c", "sh", "on", "path", "value", "since", "n",
+                                               "freq_hz", "section", "start"]),
+                              hs.one_of(hs.integers(-5, 300), hs.floats(allow_nan=True), hs.text(max_size=5),
+                                        hs.booleans(), hs.none()), max_size=4)),
+), max_size=6))
+def test_fuzz_command_handler_never_crashes(tmp_path_factory, chunks):
+    if "ctl" not in _FUZZ_STATE:
+        d = tmp_path_factory.mktemp("fuzz")
+        m = make_model()
+        b = FakeBoard(m)
+        _FUZZ_STATE["ctl"] = (Controller(b, board_config(), str(d)), b, m)
+    ctl, b, m = _FUZZ_STATE["ctl"]
+    m.key(100, 14.2e6)  # full power: nothing may switch, whatever arrives
+    before = m.relays
+    for c in chunks:
+        b.inbox += c
+    for _ in range(4):
+        ctl.step()
+    assert ctl.state != FAULT, ctl.why
+    assert m.relays == before and m.violations == []
+    for line in bytes(b.outbox).split(b"\n"):
+        if line:
+            assert link.decode(line + b"\n")[0] in ("A", "E")
+    b.outbox.clear()
