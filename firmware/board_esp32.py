@@ -26,7 +26,8 @@ class Board:
         self.burst = cfg["detector"].get("burst", 16)
         self.led_pin = machine.Pin(pins.get("led", 2), machine.Pin.OUT, value=0)
         self.btn = machine.Pin(pins.get("tune_button", 0), machine.Pin.IN, machine.Pin.PULL_UP)
-        self.prescale = 64
+        self.prescale = cfg["counter"]["prescale"]
+        self.gate_ms = cfg["counter"]["gate_ms"]
         self.count = 0
         fin = machine.Pin(pins.get("freq_in", 27), machine.Pin.IN)
         self.pcnt = None
@@ -62,7 +63,8 @@ class Board:
             sr += self.adc_r.read_u16()
         return (sf / (16.0 * self.burst), sr / (16.0 * self.burst))
 
-    def count_freq(self, gate_ms=50):
+    def count_freq(self):
+        gate_ms = self.gate_ms
         if self.pcnt is not None:
             self.pcnt.value(0)
             self.pcnt.start()

@@ -34,7 +34,8 @@ class Board:
         self.burst = cfg["detector"].get("burst", 16)
         self.led_pin = machine.Pin(pins.get("led", 25), machine.Pin.OUT, value=0)
         self.btn = machine.Pin(pins.get("tune_button", 15), machine.Pin.IN, machine.Pin.PULL_UP)
-        self.prescale = pins.get("prescale", 64)
+        self.prescale = cfg["counter"]["prescale"]
+        self.gate_ms = cfg["counter"]["gate_ms"]
         self.cnt_pin = pins.get("freq_in", 21)  # must be an odd GPIO (PWM channel B)
         self.slice = (self.cnt_pin >> 1) & 7
         machine.mem32[_IO_BANK0 + 8 * self.cnt_pin + 4] = _FUNC_PWM
@@ -73,7 +74,8 @@ class Board:
         # read_u16 scales the 12-bit result to 16 bits: back to 12-bit counts.
         return (sf / (16.0 * self.burst), sr / (16.0 * self.burst))
 
-    def count_freq(self, gate_ms=50):
+    def count_freq(self):
+        gate_ms = self.gate_ms
         base = _PWM_BASE + _SLICE * self.slice
         machine.mem32[base + 0x00] = 0          # CSR: disabled
         machine.mem32[base + 0x04] = 1 << 4     # DIV = 1.0

@@ -28,10 +28,10 @@ def _connect(host, port):
 
 
 class Board:
-    def __init__(self, host, port, cfg=None):
+    def __init__(self, host, port, ser_port, cfg=None):
         self.ctl = _connect(host, port)
         self.ctl_buf = b""
-        self.ser = _connect(host, port + 1)
+        self.ser = _connect(host, ser_port)
         self.ser.setblocking(False)
 
     def _ask(self, line):

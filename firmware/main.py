@@ -1,5 +1,5 @@
 # Entry point on every board.  On hardware it runs at boot; for the virtual
-# station: micropython main.py --station HOST:PORT --dir DIR
+# station: micropython main.py --station HOST:PORT:SERIALPORT --dir DIR
 import sys
 
 from fmlogic.controller import Controller, load_config
@@ -19,8 +19,8 @@ def start():
     station = _arg("--station")
     if station is not None:
         import board_virtual
-        host, port = station.rsplit(":", 1)
-        board = board_virtual.Board(host, int(port), cfg)
+        host, port, ser_port = station.split(":")
+        board = board_virtual.Board(host, int(port), int(ser_port), cfg)
     else:
         kind = cfg.get("board", "rp2040")
         if kind == "esp32":

@@ -43,6 +43,7 @@ DEFAULTS = {
     "memory": {"bin_hz": 25000, "max_entries": 400},
     "records": {"keep": 200},
     "link": {"baud": 115200},
+    "counter": {"prescale": 64, "gate_ms": 50},
 }
 
 # (section, key): (kind, low, high); kind "n" number, "i" integer, "b" bool, "s" string
@@ -63,6 +64,8 @@ _RANGES = {
     ("memory", "max_entries"): ("i", 1, 4000),
     ("records", "keep"): ("i", 4, 5000),
     ("link", "baud"): ("i", 1200, 2000000),
+    ("counter", "prescale"): ("i", 1, 4096),
+    ("counter", "gate_ms"): ("i", 5, 1000),
     ("detector", "floor_counts"): ("n", 0.0, 100000.0),
     ("detector", "burst"): ("i", 1, 1024),
     ("network", "z0_ohm"): ("n", 1.0, 1000.0),

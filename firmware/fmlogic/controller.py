@@ -185,7 +185,7 @@ class Controller:
         if name == "recall" and hint is None:
             name = "model"
         strat = search.make(name, self.bank, f if f > 0 else 14.0e6, self.t["target_swr"],
-                            self.t["budget"], hint[:3] if hint else None)
+                            self.t["budget"], hint[:4] if hint else None)
         before = self._state_list()
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
@@ -249,13 +249,15 @@ class Controller:
             ts = s.seen.get(search.BYPASS)
             after_swr = swr_from_gamma(ts) if ts is not None else -1.0
         dur = self.board.ticks_diff(self.board.ticks_ms(), tn["t0"])
-        if outcome == LOCKED:
+        if outcome in (LOCKED, BEST) and not abort:
+            # Best-effort states are kept too: a return to the bin then costs
+            # one reading that reproduces the stored SWR, not a full search.
             self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)
         self.mem.set_last(f, self.relays, self.bypass)
         self.mem.flush()
         self.lock_bin = self.mem.bin_of(f) if f > 0 else None
         memory.journal_take(self.d)
-        hit = tn["hint"] and s.n == 1 and outcome == LOCKED
+        hit = tn["hint"] and s.n == 1 and outcome in (LOCKED, BEST)
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
                      outcome, why, hit, tn["name"])
         if outcome == "aborted":

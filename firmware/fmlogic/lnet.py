@@ -118,6 +118,22 @@ def z_in(bank, f_mhz, zl, l_code, c_code, shunt):
     return 1.0 / (yt + yc)
 
 
+def load_matched_by(bank, f_mhz, l_code, c_code, shunt):
+    """The load that this state would match exactly to z0 (the network inverted)."""
+    w = TWO_PI * f_mhz
+    xl = w * bank.l_uh(l_code)
+    zs = complex(xl / bank.ql if bank.ql > 0.0 else 0.0, xl)
+    b = w * bank.c_pf(c_code) * 1e-6
+    yc = complex(b / bank.qc if bank.qc > 0.0 else 0.0, b)
+    z0 = bank.z0
+    try:
+        if shunt == SHUNT_ANT:
+            return 1.0 / (1.0 / (z0 - zs) - yc)
+        return 1.0 / (1.0 / z0 - yc) - zs
+    except ZeroDivisionError:
+        return None
+
+
 def gamma_of(z, z0):
     """Magnitude of the reflection coefficient of z against real z0."""
     d = z + z0

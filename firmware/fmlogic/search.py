@@ -302,8 +302,18 @@ class ModelFit(Strategy):
         for e, gl in minima[:3]:
             gl = self._refine(gl)
             out.append((self._resid(gl), gl))
-        for prev in self.cands:
-            gl = self._refine(prev[1])
+        starts = [c[1] for c in self.cands]
+        if self.best_state is not None and self.best_g < 0.6:
+            # The best reading is the most telling: start from the load that
+            # state would match exactly.
+            zs = lnet.load_matched_by(self.bank, self.f_mhz, self.best_state[0],
+                                      self.best_state[1], self.best_state[2])
+            if zs is not None and zs.real > 0.0:
+                g = (zs - self.bank.z0) / (zs + self.bank.z0)
+                if abs(g) < 0.998:
+                    starts.append(g)
+        for g in starts:
+            gl = self._refine(g)
             out.append((self._resid(gl), gl))
         out.sort(key=lambda t: (t[0], t[1].real, t[1].imag))
         uniq = []
@@ -412,6 +422,8 @@ class ModelFit(Strategy):
             yield from self._measure(p)
         yield from self._jumps()
         yield from self._polish()
+        if self._model_agrees():
+            return  # the model explains the readings and knows nothing better
         yield from self._coarse_then_descend()
 
     def _jumps(self):
@@ -444,23 +456,43 @@ class ModelFit(Strategy):
 
         yield from self._descend(self.best_state, (2, 1), predict)
 
+    def _model_agrees(self):
+        """True when a refit explains the best reading and predicts no clearly better state."""
+        if len(self.order) < 4:
+            return False
+        cands = self._fit()
+        if not cands:
+            return False
+        e, gl = cands[0]
+        rms = (e / len(self.order)) ** 0.5
+        if rms > 0.06:
+            return False
+        if abs(self._pred(gl, self.best_state) - self.best_g) > 0.06:
+            return False
+        s, g = self._model_best(gl)
+        return g > self.best_g - 0.05
+
 
 class Recall(ModelFit):
     """Start from a stored state for a nearby frequency.
 
-    One reading verifies it; a near miss is refined locally around it; a bad
-    one falls through to the model-based search, which keeps that reading in
-    its fit.
+    One reading verifies it: accepted when it meets the target, or when it
+    reproduces the SWR stored with it (the best this box could do there
+    before).  Otherwise the model-based search runs with that reading in its
+    fit, where a reading near the match is the most informative one.
     """
 
     name = "recall"
 
     def _run(self):
         hint = self.hint
-        if hint is not None and self._valid(hint[0], hint[1]):
-            g = yield from self._measure((hint[0], hint[1], hint[2]))
-            if g < gamma_from_swr(3.0):
-                yield from self._descend((hint[0], hint[1], hint[2]), (1,))
+        if hint is not None and self._valid(hint[0], hint[1]) and hint[2] in (0, 1):
+            st = (hint[0], hint[1], hint[2])
+            g = yield from self._measure(st)
+            if len(hint) > 3 and hint[3] > 0.0:
+                known = gamma_from_swr(hint[3])
+                if g <= known + 0.03:
+                    return
         yield from ModelFit._run(self)
 
 

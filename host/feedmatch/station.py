@@ -112,7 +112,7 @@ class Step:
     tune_w: float
     operate_w: float
     operate_s: float
-    via: str = "carrier"  # "carrier": board tunes on its own; "request": host asks first
+    via: str = "carrier"  # "carrier": board tunes on its own; "button": the local tune input
 
 
 @dataclass
@@ -174,8 +174,8 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
         else:
             raise InputError(f"{w}: give 'band' or 'freq_hz'")
         via = s.get("via", "carrier")
-        if via not in ("carrier", "request"):
-            raise InputError(f"{w}: field 'via' must be 'carrier' or 'request'")
+        if via not in ("carrier", "button"):
+            raise InputError(f"{w}: field 'via' must be 'carrier' or 'button'")
         rep = s.get("repeat", 1)
         if not isinstance(rep, int) or isinstance(rep, bool) or not 1 <= rep <= 1000:
             raise InputError(f"{w}: field 'repeat' must be an integer 1..1000")
