@@ -15,7 +15,6 @@ from typing import Any
 
 import serial
 import serial.tools.list_ports
-
 from fmlogic import link as frames
 
 from .errors import LinkError
@@ -74,7 +73,7 @@ class BoardLink:
         self.ser = None
 
     def __enter__(self) -> BoardLink:
-        return self.open()
+        return self if self.ser is not None else self.open()
 
     def __exit__(self, *exc) -> None:
         self.close()

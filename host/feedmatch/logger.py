@@ -82,7 +82,15 @@ class Logger:
         self.book = Logbook(self.db_path)
         t_end = time.monotonic() + duration_s if duration_s else None
         try:
-            self._connect()
+            while not stop.is_set():
+                try:
+                    self._connect()
+                    break
+                except LinkError:
+                    if self.link is not None:
+                        self.link.close()
+                    if stop.wait(0.5) or (t_end is not None and time.monotonic() > t_end):
+                        return self.added
             last_status = time.monotonic()
             while not stop.is_set() and (t_end is None or time.monotonic() < t_end):
                 try:
@@ -98,8 +106,12 @@ class Logger:
                         last_status = time.monotonic()
                         self._show()
                 except LinkError:
-                    self.link.reconnect()
+                    # A lost answer, a pulled cable or a rebooting board: reopen and resync.
                     self._need_backfill = True
+                    try:
+                        self.link.reconnect(give_up_s=5.0)
+                    except LinkError:
+                        stop.wait(0.5)
         finally:
             if self.link is not None:
                 self.corrupt = self.link.bad_frames

@@ -1,0 +1,266 @@
+"""End to end over a real pseudo-terminal: the real firmware on the virtual station."""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import signal
+import sqlite3
+import statistics
+import subprocess
+import threading
+import time
+from pathlib import Path
+
+import pytest
+import serial
+from feedmatch.logger import Logger
+from feedmatch.station import load_station
+from feedmatch.virtual import VirtualStation
+
+from .conftest import BIN, run_cli
+
+BANDS_MATCHABLE = {"40m", "30m", "20m", "17m", "15m", "12m", "10m"}
+
+
+def _rows(db):
+    con = sqlite3.connect(db)
+    con.row_factory = sqlite3.Row
+    rows = con.execute("SELECT * FROM tunes ORDER BY seq").fetchall()
+    con.close()
+    return rows
+
+
+def _board_seq(vs):
+    from fmlogic.memory import Records
+
+    r = Records(str(vs.dir), 10000)
+    r.load()
+    return r.seq
+
+
+def _wait(pred, timeout):
+    t = time.monotonic() + timeout
+    while time.monotonic() < t:
+        if pred():
+            return True
+        time.sleep(0.05)
+    return False
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    from feedmatch.demo import run_demo
+
+    out = tmp_path_factory.mktemp("demo")
+    res = run_demo(out, verbose=False)
+    return out, res
+
+
+def test_demo_tunes_every_band_and_logs_every_record(demo):
+    out, res = demo
+    rows = _rows(res["db"])
+    assert res["violations"] == []
+    assert {r["band"] for r in rows} == BANDS_MATCHABLE
+    seqs = [r["seq"] for r in rows]
+    assert seqs == list(range(1, len(seqs) + 1)) and len(seqs) == res["played"]
+    assert res["elapsed_s"] < 60
+    locked = [r for r in rows if r["outcome"] == "locked"]
+    assert len(locked) / len(rows) > 0.8
+    assert all(r["swr_after"] <= 1.5 for r in locked)
+
+
+def test_demo_report_figures_match_the_records(demo):
+    out, res = demo
+    rows = _rows(res["db"])
+    for b in res["report"]["bands"]:
+        rs = [r for r in rows if r["band"] == b["band"]]
+        ok = [r for r in rs if r["outcome"] == "locked"]
+        assert b["tunes"] == len(rs)
+        assert b["success_rate"] == pytest.approx(len(ok) / len(rs))
+        assert b["median_swr_after"] == pytest.approx(statistics.median(r["swr_after"] for r in ok))
+        assert b["memory_hit_rate"] == pytest.approx(sum(r["memory_hit"] for r in rs) / len(rs))
+    assert (out / "plots" / "swr_by_band.png").stat().st_size > 5000
+    # The CLI reads the same logbook.
+    r = run_cli("report", "--db", res["db"], "--json")
+    assert r.returncode == 0
+    assert json.loads(r.stdout)["tunes"] == len(rows)
+
+
+def _station(tmp_path, **kw):
+    st = load_station()
+    return VirtualStation(st, tmp_path / "flash", **kw), st
+
+
+def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
+    vs, st = _station(tmp_path)
+    rng = random.Random(4)
+
+    def mangle(data: bytes) -> bytes:
+        b = bytearray(data)
+        i = 0
+        while i < len(b):
+            x = rng.random()
+            if x < 0.0006:
+                b[i] ^= 1 << rng.randrange(8)  # flipped bit
+            elif x < 0.0009:
+                del b[i]  # dropped byte
+                continue
+            elif x < 0.0011:
+                del b[i:b.find(b"\n", i) if b.find(b"\n", i) > 0 else len(b)]  # truncated line
+                continue
+            i += 1
+        return bytes(b)
+
+    vs.mangle_out = mangle
+    pty = vs.start()
+    db = str(tmp_path / "log.sqlite")
+    try:
+        # Garbage on the line before anything else.
+        with serial.Serial(pty, 115200, timeout=0.1) as s:
+            s.write(b"\x00\xff\xfe garbage \n Q1 status {}*0000\n" + os.urandom(300) + b"\n")
+            time.sleep(0.3)
+        lg = Logger(pty, db)
+        stop = threading.Event()
+        th = threading.Thread(target=lg.run, args=(stop,), daemon=True)
+        th.start()
+        assert _wait(lambda: lg.status.get("board_id"), 10)
+        steps = st.script[:6]
+        for step in steps[:3]:
+            vs.play(step, 1.5)
+        # A reset in the middle of a tune: key a carrier, wait for relays to move, cut power.
+        n0 = vs.model.switches
+        vs.key(10, 28.4e6)
+        assert _wait(lambda: vs.model.switches >= n0 + 2, 5)
+        vs.reset()
+        vs.key(0)
+        time.sleep(1.0)
+        for step in steps[3:]:
+            vs.play(step, 1.5)
+        stop.set()
+        th.join(10)
+        # The logger is killed hard while the board keeps tuning, then restarted.
+        p = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", db],
+                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(2.0)
+        for step in st.script[6:9]:
+            vs.play(step, 1.5)
+        p.send_signal(signal.SIGKILL)
+        p.wait()
+        for step in st.script[9:11]:
+            vs.play(step, 1.5)  # nobody is listening now
+        lg2 = Logger(pty, db)
+        stop2 = threading.Event()
+        th2 = threading.Thread(target=lg2.run, args=(stop2,), daemon=True)
+        th2.start()
+        want = _board_seq(vs)
+        assert _wait(lambda: lg2.last_committed >= want, 20), (lg2.last_committed, want)
+        stop2.set()
+        th2.join(10)
+        # The board ends safe: not seeking, no relay ever switched hot.
+        with serial.Serial(pty, 115200, timeout=0.2):
+            pass
+    finally:
+        vs.stop()
+    rows = _rows(db)
+    seqs = [r["seq"] for r in rows]
+    assert seqs == list(range(1, want + 1))  # every record exactly once
+    assert any(r["outcome"] == "reset" for r in rows)
+    assert vs.model.violations == []
+    assert lg.corrupt + lg2.corrupt > 0  # the faults really happened and were counted
+    assert vs.resets >= 1
+    assert vs.proc.poll() is not None  # no process left behind
+
+
+def test_operator_commands_over_the_pty(tmp_path):
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--carrier", "10@14.2e6",
+                          "--dir", str(tmp_path / "flash")], stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, text=True)
+    try:
+        pty = p.stdout.readline().strip()
+        assert pty.startswith("/dev/")
+        r = run_cli("tune", "--port", pty, "--freq", "14.2e6", "--json", timeout=60)
+        assert r.returncode == 0, r.stderr
+        rec = json.loads(r.stdout)
+        assert rec["outcome"] == "locked" and rec["swr_after"] <= 1.5
+        r = run_cli("status", "--port", pty)
+        assert r.returncode == 0 and "locked" in r.stdout and "14.2000 MHz" in r.stdout
+        r = run_cli("memory", "--port", pty, "--json")
+        assert len(json.loads(r.stdout)["entries"]) == 1
+        # The carrier is on: the bypass relay may not move (below the hot limit it may).
+        r = run_cli("bypass", "--port", pty)
+        assert r.returncode == 0 and "through" in r.stdout
+        r = run_cli("memory", "--port", pty, "--clear")
+        assert r.returncode == 0
+        r = run_cli("memory", "--port", pty, "--json")
+        assert json.loads(r.stdout)["entries"] == []
+    finally:
+        p.send_signal(signal.SIGINT)
+        p.wait(10)
+    assert p.returncode == 0
+
+
+def test_bad_ports_logbooks_and_station_files(tmp_path):
+    r = run_cli("status", "--port", str(tmp_path / "no-such-port"))
+    assert r.returncode == 2 and "cannot open port" in r.stderr and "Traceback" not in r.stderr
+    bad = tmp_path / "notes.sqlite"
+    bad.write_text("these are my notes, not a database\n")
+    before = bad.read_bytes()
+    r = run_cli("log", "--port", "loop://", "--db", str(bad))
+    assert r.returncode == 2 and "not an SQLite logbook" in r.stderr
+    assert bad.read_bytes() == before
+    r = run_cli("report", "--db", str(bad))
+    assert r.returncode == 2 and bad.read_bytes() == before
+    r = run_cli("report", "--db", str(tmp_path / "missing.sqlite"))
+    assert r.returncode == 2 and "does not exist" in r.stderr
+    st = tmp_path / "st.json"
+    st.write_text('{"antenna": {"kind": "monopole", "height_m": 4}, "script": []}')
+    r = run_cli("virtual-board", "--station", str(st))
+    assert r.returncode == 2 and "radius_m" in r.stderr
+    st.write_text('{"antenna": {"kind": "fixed", "r_ohm": 20, "x_ohm": 5}, "script": [{"band": "2m"}]}')
+    r = run_cli("virtual-board", "--station", str(st))
+    assert r.returncode == 2 and "unknown band" in r.stderr
+
+
+def test_busy_port_is_reported(tmp_path):
+    vs, st = _station(tmp_path)
+    pty = vs.start()
+    try:
+        with serial.Serial(pty, 115200, timeout=0.1, exclusive=True):
+            r = run_cli("status", "--port", pty)
+        assert r.returncode == 2 and "busy" in r.stderr
+    finally:
+        vs.stop()
+
+
+def test_firmware_under_cpython_too(tmp_path):
+    vs, st = _station(tmp_path, use_python=True)
+    pty = vs.start()
+    try:
+        from feedmatch.link import BoardLink
+
+        with BoardLink(pty) as ln:
+            assert _wait(lambda: _try_status(ln), 10)
+            vs.play(st.script[0], 1.5)
+            recs = ln.records_since(0)
+        assert recs and recs[0]["outcome"] == "locked"
+    finally:
+        vs.stop()
+    assert vs.model.violations == []
+
+
+def _try_status(ln):
+    try:
+        return ln.request("status", timeout=1.0)["board_id"] == "hollow-oak-1"
+    except Exception:
+        return False
+
+
+def test_no_stray_processes_after_station_stop(tmp_path):
+    vs, st = _station(tmp_path)
+    vs.start()
+    pid = vs.proc.pid
+    vs.stop()
+    assert vs.proc.poll() is not None
+    assert not Path(f"/proc/{pid}").exists() or "zombie" in Path(f"/proc/{pid}/status").read_text().lower()
