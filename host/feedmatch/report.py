@@ -48,24 +48,38 @@ def band_table(rows: list) -> list[dict[str, Any]]:
     return out
 
 
-def health(ok: list) -> dict[str, Any]:
-    """Compare a band's recent matched tunes with its own baseline (its first ones)."""
+def health(ok: list, bin_hz: float = 25e3) -> dict[str, Any]:
+    """Compare a band's recent matched tunes with its own baseline (its earlier ones).
+
+    Like is compared with like: tunes are grouped by frequency bin, and in each bin
+    with enough tunes the later half is compared with the earlier half.
+    """
     if len(ok) < MIN_TUNES_FOR_HEALTH:
         return {"flag": False, "note": "too few tunes for a baseline"}
-    half = len(ok) // 2
-    base, recent = ok[:half], ok[half:]
-    sb = _median([r["swr_after"] for r in base if r["swr_after"] is not None]) or 1.0
-    sr = _median([r["swr_after"] for r in recent if r["swr_after"] is not None]) or 1.0
-    lb = _median([r["after_l"] for r in base]) or 0
-    lr = _median([r["after_l"] for r in recent]) or 0
-    cb = _median([r["after_c"] for r in base]) or 0
-    cr = _median([r["after_c"] for r in recent]) or 0
+    bins = defaultdict(list)
+    for r in ok:
+        bins[int(r["freq_hz"] // bin_hz)].append(r)
     notes = []
-    if sr - sb > SWR_DRIFT:
-        notes.append(f"SWR after tune rose {sb:.2f} -> {sr:.2f}")
-    for name, a, b in (("L", lb, lr), ("C", cb, cr)):
-        if abs(b - a) > max(2.0, STATE_DRIFT_FRACTION * max(a, b)):
-            notes.append(f"matched {name} code moved {a:.0f} -> {b:.0f}")
+    compared = 0
+    for b in sorted(bins):
+        rs = bins[b]
+        if len(rs) < 4:
+            continue
+        compared += 1
+        half = len(rs) // 2
+        base, recent = rs[:half], rs[half:]
+        mhz = rs[0]["freq_hz"] / 1e6
+        sb = _median([r["swr_after"] for r in base if r["swr_after"] is not None]) or 1.0
+        sr = _median([r["swr_after"] for r in recent if r["swr_after"] is not None]) or 1.0
+        if sr - sb > SWR_DRIFT:
+            notes.append(f"{mhz:.3f} MHz: SWR after tune rose {sb:.2f} -> {sr:.2f}")
+        for name, key in (("L", "after_l"), ("C", "after_c")):
+            a = _median([r[key] for r in base]) or 0
+            c = _median([r[key] for r in recent]) or 0
+            if abs(c - a) > max(2.0, STATE_DRIFT_FRACTION * max(a, c)):
+                notes.append(f"{mhz:.3f} MHz: matched {name} code moved {a:.0f} -> {c:.0f}")
+    if not compared:
+        return {"flag": False, "note": "too few tunes per frequency for a baseline"}
     return {"flag": bool(notes), "note": "; ".join(notes) or "steady"}
 
 

@@ -181,7 +181,7 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
             raise InputError(f"{w}: field 'repeat' must be an integer 1..1000")
         step = Step(f, number(s, "tune_w", w, positive=True, optional=True, default=10.0),
                     number(s, "operate_w", w, minimum=0.0, optional=True, default=100.0),
-                    number(s, "operate_s", w, minimum=0.0, maximum=3600, optional=True, default=0.3),
+                    number(s, "operate_s", w, minimum=0.0, maximum=3600, optional=True, default=0.15),
                     via)
         script += [step] * rep
     board = d.get("board", {})

@@ -63,6 +63,7 @@ class VirtualStation:
         self.master_fd = -1
         self.pty_path = ""
         self.requests = 0
+        self.on_set = None  # test hook, called after each relay change
 
     # -- life cycle -------------------------------------------------------------
     def start(self) -> str:
@@ -192,6 +193,8 @@ class VirtualStation:
                 return "1" if b else "0"
             if op == "S" and len(parts) == 5:
                 m.set(*(int(x) for x in parts[1:]))
+                if self.on_set is not None:
+                    self.on_set()
                 return "ok"
             return "ok"
 
@@ -278,20 +281,21 @@ class VirtualStation:
             self.press_button()
         self.key(step.tune_w, step.freq_hz)
         t_end = time.monotonic() + tune_timeout_s
-        good_since = None
+        quiet_since = time.monotonic()
         n0 = self.model.switches
+        # The operator keys up once the relays have been quiet for a while (the
+        # tuner is done), or when the SWR is good and steady.
         while time.monotonic() < t_end:
             time.sleep(0.02)
             with self.lock:
                 swr = self.model.swr()
-                moving = self.model.switches != n0
+                moved = self.model.switches != n0
                 n0 = self.model.switches
-            if swr <= target_swr and not moving:
-                good_since = good_since or time.monotonic()
-                if time.monotonic() - good_since > 0.25:
-                    break
-            else:
-                good_since = None
+            if moved:
+                quiet_since = time.monotonic()
+            quiet = time.monotonic() - quiet_since
+            if quiet > 0.6 or (swr <= target_swr and quiet > 0.25):
+                break
         # A real operator keys up only after the tuner has stopped; give it a beat.
         time.sleep(0.1)
         self.key(step.operate_w, step.freq_hz)
@@ -299,7 +303,7 @@ class VirtualStation:
             swr = self.model.swr()
         time.sleep(step.operate_s)
         self.key(0.0)
-        time.sleep(0.15)
+        time.sleep(0.1)
         return swr
 
 
