@@ -259,7 +259,7 @@ class Controller:
         memory.journal_take(self.d)
         hit = tn["hint"] and s.n == 1 and outcome in (LOCKED, BEST)
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
-                     outcome, why, hit, tn["name"])
+                     outcome, why, hit, tn["name"], _trace(s))
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
         else:
@@ -269,11 +269,13 @@ class Controller:
     def _state_list(self):
         return [self.relays[0], self.relays[1], self.relays[2], 1 if self.bypass else 0]
 
-    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat):
+    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat, trace=None):
         rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
                "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
                "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
                "strategy": strat, "board_id": self.cfg["board_id"]}
+        if trace:
+            rec["trace"] = trace
         self.rec.add(rec)
         self._event("record", rec)
 
@@ -444,6 +446,20 @@ class Controller:
         if self.state == FAULT:
             self._set_state(WAIT_RF, "config fixed")
         return True, {"path": path, "value": self.cfg[sec][key]}
+
+
+TRACE_MAX = 40
+
+
+def _trace(s):
+    """The readings of a tune, flat [l, c, shunt, 1000*|gamma|, ...], for fitting the box later."""
+    out = []
+    for st in s.order[:TRACE_MAX]:
+        out.append(st[0])
+        out.append(st[1])
+        out.append(st[2])
+        out.append(int(s.seen[st] * 1000 + 0.5))
+    return out
 
 
 def _r3(x):

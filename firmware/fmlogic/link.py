@@ -21,7 +21,7 @@ except ImportError:
         return x
 
 
-MAX_LINE = const(1024)
+MAX_LINE = const(2048)
 
 
 def _make_table():

@@ -27,7 +27,7 @@ _MAX_JUMPS = const(6)
 # Readings near the target cannot be trusted to the last few per cent (coupler
 # directivity), so a reading between the comfortable and the target SWR buys
 # at most this many extra measurements to look for a clearly better state.
-_MARGINAL_EXTRA = const(3)
+_MARGINAL_EXTRA = const(6)
 _GRID_THETA = const(36)
 _GN_ITERS = const(6)
 BYPASS = (0, 0, lnet.SHUNT_ANT)
@@ -454,7 +454,7 @@ class ModelFit(Strategy):
         def predict(s):
             return self._pred(gl, s)
 
-        yield from self._descend(self.best_state, (2, 1), predict)
+        yield from self._descend(self.best_state, (4, 2, 1), predict)
 
     def _model_agrees(self):
         """True when a refit explains the best reading and predicts no clearly better state."""

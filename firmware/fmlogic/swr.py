@@ -87,7 +87,12 @@ class Calibration:
         lc = self.lc
         lw = self.lw
         n = self.n
-        # End segments extend their slope, so readings just past the table stay sane.
+        if x < lc[0]:
+            # Below the table a diode detector is square-law: power proportional
+            # to the reading (common practice); the table's own lowest slope would
+            # belong to the linear region and understate small reflected powers.
+            return math.exp(lw[0] + (x - lc[0]))
+        # Above it the last segment's slope carries on.
         i = 0
         if x >= lc[n - 1]:
             i = n - 2
@@ -112,6 +117,8 @@ class Calibration:
         lc = self.lc
         lw = self.lw
         n = self.n
+        if y < lw[0]:
+            return math.exp(lc[0] + (y - lw[0]))
         i = 0
         if y >= lw[n - 1]:
             i = n - 2

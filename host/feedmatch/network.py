@@ -37,9 +37,15 @@ class Network:
     inductor_q: float | None = None
     capacitor_q: float | None = None
     name: str = ""
-    # Optional strays, off by default so the model above is exact.
+    # Optional non-idealities, off by default so the model above is exact:
+    # node-to-chassis capacitance at the input and output, per-element Q,
+    # capacitance across each open relay contact, series lead inductance per element.
     stray_in_pf: float = 0.0
     stray_out_pf: float = 0.0
+    inductor_q_each: list[float] | None = None
+    capacitor_q_each: list[float] | None = None
+    relay_open_pf: float = 0.0
+    lead_nh: float = 0.0
     extra: dict[str, Any] = field(default_factory=dict)
 
     @property
@@ -81,11 +87,60 @@ class Network:
                          self.inductor_q or 0.0, self.capacitor_q or 0.0)
 
 
-def _code_table(values: list[float]) -> np.ndarray:
-    n = len(values)
+def _bits(n: int) -> np.ndarray:
     codes = np.arange(1 << n)
-    bits = (codes[:, None] >> np.arange(n)[None, :]) & 1
-    return bits @ np.asarray(values, dtype=float)
+    return ((codes[:, None] >> np.arange(n)[None, :]) & 1).astype(float)
+
+
+def _code_table(values: list[float]) -> np.ndarray:
+    return _bits(len(values)) @ np.asarray(values, dtype=float)
+
+
+def _has_extras(net: Network) -> bool:
+    return bool(net.inductor_q_each or net.capacitor_q_each or net.relay_open_pf or net.lead_nh)
+
+
+def _q_each(values: list[float], each: list[float] | None, q: float | None) -> np.ndarray:
+    if each:
+        return np.asarray(each, dtype=float)
+    return np.full(len(values), float(q) if q else np.inf)
+
+
+def series_table(net: Network, f_hz) -> np.ndarray:
+    """Series impedance of every l_code: shape f.shape + (2^nL,)."""
+    w = 2 * np.pi * np.asarray(f_hz, dtype=float)[..., None]
+    if not _has_extras(net):
+        xl = w * net.l_table_uh() * 1e-6
+        rl = xl / net.inductor_q if net.inductor_q else 0.0
+        return rl + 1j * xl
+    ind = np.asarray(net.inductors_uh) * 1e-6
+    q = _q_each(net.inductors_uh, net.inductor_q_each, net.inductor_q)
+    z = w * ind / q + 1j * w * (ind + net.lead_nh * 1e-9)
+    if net.relay_open_pf:
+        # The relay across an inductor is open when the inductor is in circuit.
+        z = 1.0 / (1.0 / z + 1j * w * net.relay_open_pf * 1e-12)
+    return z @ _bits(net.n_l).T
+
+
+def shunt_table(net: Network, f_hz) -> np.ndarray:
+    """Shunt admittance of every c_code: shape f.shape + (2^nC,)."""
+    w = 2 * np.pi * np.asarray(f_hz, dtype=float)[..., None]
+    if not _has_extras(net):
+        bc = w * net.c_table_pf() * 1e-12
+        gc = bc / net.capacitor_q if net.capacitor_q else 0.0
+        return gc + 1j * bc
+    cap = np.asarray(net.capacitors_pf) * 1e-12
+    q = _q_each(net.capacitors_pf, net.capacitor_q_each, net.capacitor_q)
+    y = w * cap / q + 1j * w * cap
+    if net.lead_nh:
+        y = 1.0 / (1.0 / y + 1j * w * net.lead_nh * 1e-9)
+    bits = _bits(net.n_c)
+    out = y @ bits.T
+    if net.relay_open_pf:
+        # A capacitor whose relay is open still hangs on through the contact capacitance.
+        yo = 1.0 / (1.0 / (1j * w * cap) + 1.0 / (1j * w * net.relay_open_pf * 1e-12))
+        out = out + yo @ (1.0 - bits).T
+    return out
 
 
 _KEYS = {"z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q", "name",
@@ -119,16 +174,6 @@ def parse_shunt(s: str | int) -> int:
     if s in SHUNTS:
         return SHUNTS.index(s)
     raise InputError(f"shunt must be 'tx' or 'ant', got {s!r}")
-
-
-def _elements(net: Network, f_hz: np.ndarray, l_uh: np.ndarray, c_pf: np.ndarray):
-    """Series impedance of the inductance and shunt admittance of the capacitance."""
-    w = 2 * np.pi * f_hz
-    xl = w * l_uh * 1e-6
-    rl = xl / net.inductor_q if net.inductor_q else 0.0
-    bc = w * c_pf * 1e-12
-    gc = bc / net.capacitor_q if net.capacitor_q else 0.0
-    return rl + 1j * xl, gc + 1j * bc
 
 
 def _cascade(zs, yc, zl, shunt_ant: np.ndarray | bool, y_in=0.0, y_out=0.0):
@@ -175,11 +220,9 @@ def all_states_zin(net: Network, f_hz, z_load) -> np.ndarray:
     f = np.asarray(f_hz, dtype=float)
     zl = np.asarray(z_load, dtype=complex)
     f, zl = np.broadcast_arrays(f, zl)
-    lt = net.l_table_uh()
-    ct = net.c_table_pf()
     fe = f[..., None, None]
-    zs, _ = _elements(net, fe, lt[:, None], 0.0)
-    _, yc = _elements(net, fe, 0.0, ct[None, :])
+    zs = series_table(net, f)[..., :, None]
+    yc = shunt_table(net, f)[..., None, :]
     y_in, y_out = _stray_y(net, fe)
     zle = zl[..., None, None]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -233,7 +276,8 @@ def evaluate(net: Network, f_hz, z_load, l_code: int, c_code: int, shunt: int | 
     f = np.asarray(f_hz, dtype=float)
     zl = np.asarray(z_load, dtype=complex)
     f, zl = np.broadcast_arrays(f, zl)
-    zs, yc = _elements(net, f, net.l_table_uh()[l_code], net.c_table_pf()[c_code])
+    zs = series_table(net, f)[..., l_code]
+    yc = shunt_table(net, f)[..., c_code]
     y_in, y_out = _stray_y(net, f)
     z_in, i_l, v_c, p_load = _cascade(zs, yc, zl, bool(sh), y_in, y_out)
     g = gamma(z_in, net.z0_ohm)

@@ -76,7 +76,7 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
     oracle_g = float(gm.flat[idx])
     bank = nominal.firmware_bank()
     meter = det.meter()
-    hint = _hint_for(nominal, load, gm, rng, cfg) if cfg.strategy == "recall" else None
+    hint = _hint_for(true_net, load, gm, rng, cfg) if cfg.strategy == "recall" else None
     s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget, hint)
     prev = (0, 0, 1)
     ops = 0
@@ -105,7 +105,8 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
             "estimated_swr": est_swr, "oracle_swr": _swr(oracle_g),
             "oracle_state": [int(o_l), int(o_c), SHUNTS[int(o_sh)]],
             "measurements": n, "relay_ops": ops, "hot_switches": hot,
-            "tune_ms": round(est_ms, 1), "compute_ms": round(compute_s * 1e3, 3)}
+            "tune_ms": round(est_ms, 1), "compute_ms": round(compute_s * 1e3, 3),
+            "trace": [[st[0], st[1], st[2], s.seen[st]] for st in s.order]}
 
 
 def _swr(g: float) -> float:

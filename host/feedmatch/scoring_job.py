@@ -41,11 +41,12 @@ def run_score_job(a: argparse.Namespace) -> int:
     boxes_json = []
     box_list: list[tuple[int, Any, DetectorModel, Any]] = []
     if a.boxes:
-        from .boxes import draw_box, fitted_network
+        from .boxes import draw_box, fit_from_scores
 
         for k in range(a.boxes):
             box = draw_box(net, a.seed * 7919 + k, a.tolerance, a.strays, ideal=a.ideal_detector)
-            nominal = fitted_network(net, box) if a.fitted else net
+            # --fitted: the box's element values as fit-box would learn them from 200 earlier tunes.
+            nominal = fit_from_scores(net, box, smith_loads(200, seed=a.seed + 1000 + k)) if a.fitted else net
             box_list.append((k, box.network, box.detector, nominal))
             boxes_json.append(box.to_json(k))
     else:
@@ -62,6 +63,8 @@ def run_score_job(a: argparse.Namespace) -> int:
                 for r in part:
                     r["box"] = k
             rows += part
+        for r in rows:
+            r.pop("trace", None)
         out.append({"strategy": name, "results": rows, "summary": summarise(rows, a.target)})
     if a.plots:
         from .plots import score_plots

@@ -1,0 +1,306 @@
+"""Deployment, calibration, ratings, drawn boxes and fit-box."""
+
+from __future__ import annotations
+
+import json
+import math
+import random
+import shutil
+import statistics
+import subprocess
+import time
+from pathlib import Path
+
+import pytest
+from feedmatch import deploy
+from feedmatch.antenna import FixedLoad
+from feedmatch.boxes import draw_box
+from feedmatch.detector import DetectorModel
+from feedmatch.errors import InputError, LinkError
+from feedmatch.loads import smith_loads
+from feedmatch.network import Network, evaluate, load_network, network_from_dict
+from feedmatch.scorer import ScoreConfig, score
+
+from .conftest import FIRMWARE, run_cli, run_mpy
+from .fakes import FakeBoard, board_config
+
+NET = load_network()
+
+
+# -- deploy -----------------------------------------------------------------------
+def _fw_copy(tmp_path, monkeypatch):
+    fw = tmp_path / "fw"
+    shutil.copytree(FIRMWARE, fw, ignore=shutil.ignore_patterns("__pycache__"))
+    monkeypatch.setattr(deploy, "FIRMWARE", fw)
+    return fw
+
+
+def test_deploy_stages_verifies_switches_and_skips_matching(tmp_path, monkeypatch):
+    fw = _fw_copy(tmp_path, monkeypatch)
+    board = tmp_path / "board"
+    board.mkdir()
+    r = run_cli("deploy", "--port", str(board), "--dry-run", "--json")
+    assert r.returncode == 0, r.stderr
+    assert list(board.iterdir()) == []  # a dry run writes nothing
+    t = deploy.DirTarget(board)
+    cfg = deploy.CONFIGS / "rp2040.json"
+    p = deploy.plan("rp2040", cfg, False, t, tmp_path / "w1")
+    assert all(i.action == "send" for i in p["items"])
+    deploy.apply(p, t)
+    v1 = (board / "fm" / "current").read_text()
+    assert (board / "main.py").read_text() == (fw / "loader.py").read_text()
+    assert json.loads((board / "config.json").read_text())["board"] == "rp2040"
+    p = deploy.plan("rp2040", cfg, False, t, tmp_path / "w2")
+    assert {i.action for i in p["items"]} == {"keep"} and p["config_action"] == "keep"
+    # One changed file: only it crosses the link; the rest are copied on the board.
+    (fw / "fmlogic" / "swr.py").write_text((fw / "fmlogic" / "swr.py").read_text() + "\n# changed\n")
+    p = deploy.plan("rp2040", cfg, False, t, tmp_path / "w3")
+    sent = [i.remote for i in p["items"] if i.action == "send"]
+    assert len(sent) == 1 and sent[0].endswith("fmlogic/swr.py")
+    assert all(i.action.startswith("copy:") for i in p["items"] if i.action != "send")
+    deploy.apply(p, t)
+    v2 = (board / "fm" / "current").read_text()
+    assert v2 != v1 and (board / "fm" / v1).is_dir()  # the previous version stays for rollback
+
+
+def test_deploy_never_switches_to_a_half_written_version(tmp_path, monkeypatch):
+    _fw_copy(tmp_path, monkeypatch)
+    board = tmp_path / "board"
+    board.mkdir()
+    t = deploy.DirTarget(board)
+    cfg = deploy.CONFIGS / "rp2040.json"
+    deploy.apply(deploy.plan("rp2040", cfg, False, t, tmp_path / "w"), t)
+    before = (board / "fm" / "current").read_text()
+
+    class Flaky(deploy.DirTarget):
+        def put(self, local, remote):
+            super().put(local, remote)
+            if remote.endswith("search.mpy"):
+                (self.root / remote).write_bytes(b"torn")  # the link dropped mid-file
+
+    ft = Flaky(board)
+    p = deploy.plan("rp2040", cfg, True, ft, tmp_path / "w2")
+    with pytest.raises(LinkError, match="verification failed"):
+        deploy.apply(p, ft)
+    assert (board / "fm" / "current").read_text() == before
+
+
+def test_deploy_refuses_bad_config(tmp_path):
+    bad = json.loads((deploy.CONFIGS / "rp2040.json").read_text())
+    bad["power"]["hot_switch_w"] = 5
+    p = tmp_path / "bad.json"
+    p.write_text(json.dumps(bad))
+    board = tmp_path / "b"
+    board.mkdir()
+    r = run_cli("deploy", "--port", str(board), "--config", str(p))
+    assert r.returncode == 2 and "hot_switch" in r.stderr and list(board.iterdir()) == []
+    r = run_cli("deploy", "--port", str(board), "--board", "esp32", "--config",
+                str(deploy.CONFIGS / "rp2040.json"))
+    assert r.returncode == 2 and "not 'esp32'" in r.stderr
+
+
+@pytest.mark.parametrize("compiled", [False, True])
+def test_deployed_tree_boots_on_the_unix_port_up_to_the_hardware(tmp_path, micropython, compiled):
+    board = tmp_path / "board"
+    board.mkdir()
+    t = deploy.DirTarget(board)
+    deploy.apply(deploy.plan("rp2040", deploy.CONFIGS / "rp2040.json", compiled, t, tmp_path / "w"), t)
+    r = subprocess.run([micropython, "main.py"], cwd=str(board), capture_output=True, text=True, timeout=60)
+    # The loader found the version, imported the app and the logic; only 'machine' is missing here.
+    assert "machine" in (r.stderr + r.stdout), r.stderr + r.stdout
+    assert "fmlogic" not in (r.stderr + r.stdout).split("machine")[0].split("ImportError")[-1]
+
+
+def test_board_validator_same_under_unix_port(micropython):
+    cfgs = [json.loads((deploy.CONFIGS / n).read_text()) for n in ("rp2040.json", "esp32.json")]
+    bad = json.loads(json.dumps(cfgs[0]))
+    bad["tune"]["target_swr"] = 0.2
+    bad["pins"]["led"] = 99
+    bad["colour"] = "red"
+    cases = cfgs + [bad]
+    from fmlogic import config as fcfg
+
+    ours = [fcfg.validate(c) for c in cases]
+    code = ("import json\nfrom fmlogic import config\nfor c in json.loads(%r):\n print(json.dumps(config.validate(c)))"
+            % json.dumps(cases))
+    theirs = [json.loads(x) for x in run_mpy(micropython, code).strip().splitlines()]
+    assert ours == theirs and ours[0] == [] and len(ours[2]) == 3
+
+
+# -- calibration -------------------------------------------------------------------
+def test_calibration_against_the_virtual_station(tmp_path):
+    from feedmatch.calibrate import run_calibrate
+    from feedmatch.station import load_station
+    from feedmatch.virtual import VirtualStation
+
+    st = load_station()
+    st.antenna = FixedLoad(50.0, 0.0)  # the dummy load
+    vs = VirtualStation(st, tmp_path / "flash")
+    pty = vs.start()
+    cfgp = tmp_path / "cfg.json"
+    cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
+    old = cfgp.read_text()
+
+    class A:
+        port = pty
+        baud = 115200
+        timeout = 2.0
+        powers = "2,5,10,25,50,100"
+        config = str(cfgp)
+        samples = 16
+        yes = True
+
+    import io
+
+    out = io.StringIO()
+    try:
+        time.sleep(1.0)
+        run_calibrate(A, io.StringIO(), out, on_prompt=lambda p: (vs.key(p, 14.2e6), time.sleep(0.2)))
+    finally:
+        vs.key(0)
+        vs.stop()
+    assert (tmp_path / "cfg.json.bak").read_text() == old
+    cfg = json.loads(cfgp.read_text())
+    from fmlogic.swr import Calibration
+
+    cal = Calibration(cfg["detector"]["fwd"], 2.0)
+    det = DetectorModel()
+    # Check values: the station's own detector curve (the simulator's known truth).
+    for p in (3.0, 7.0, 20.0, 70.0):
+        assert cal.watts(det.nominal_counts(p)) == pytest.approx(p, rel=0.04)
+    # The dummy-load reflection is the coupler leakage: 25 dB at 28 MHz + 20 dB/decade -> 30.9 dB.
+    text = out.getvalue()
+    d = float(text.split("effective directivity ")[1].split(" dB")[0])
+    assert d == pytest.approx(det.directivity_db(14.2e6), abs=2.5)
+
+
+def test_calibration_rejects_a_non_monotonic_detector():
+    from feedmatch.calibrate import fit_table
+
+    with pytest.raises(InputError, match="did not rise"):
+        fit_table([(100, 2), (90, 5), (300, 10)])
+    with pytest.raises(InputError, match="at least 3"):
+        fit_table([(100, 2), (200, 5)])
+
+
+# -- ratings -----------------------------------------------------------------------
+def test_ratings_against_hand_calculation():
+    # At a lossless match all power reaches the load: P = I^2 R = V^2 / R (power conservation;
+    # L-network design, e.g. Bowick, RF Circuit Design, 2nd ed., ch. 4). For R_L = 12.5 ohm with
+    # the capacitor across the 50 ohm side: V_C = sqrt(P * 50), I_L = sqrt(P / 12.5).
+    lossless = Network(50, [0.02 * 2**i for i in range(10)], [2.0 * 2**i for i in range(10)])
+    from feedmatch.simulate import best_point
+
+    p = best_point(lossless, 7.1e6, 12.5 + 0j, 100.0)
+    assert p["shunt"] == "tx" and p["swr"] < 1.02
+    assert p["v_cap_peak"] == pytest.approx(math.sqrt(2) * math.sqrt(100 * 50), rel=0.02)
+    assert p["i_ind_rms"] == pytest.approx(math.sqrt(100 / 12.5), rel=0.02)
+    # R_L = 200 ohm: the capacitor is across the load: V_C = sqrt(P * 200), I_L = sqrt(P / 50).
+    p = best_point(lossless, 7.1e6, 200 + 0j, 100.0)
+    assert p["shunt"] == "ant"
+    assert p["v_cap_peak"] == pytest.approx(math.sqrt(2) * math.sqrt(100 * 200), rel=0.02)
+    assert p["i_ind_rms"] == pytest.approx(math.sqrt(100 / 50), rel=0.02)
+    r = run_cli("simulate", "--antenna", str(Path(deploy.__file__).parent / "data" / "antennas" /
+                                              "hollow_oak_closed_form.json"),
+                "--ratings", "--bands", "40m,20m", "--power", "100", "--json")
+    assert r.returncode == 0, r.stderr
+    rows = json.loads(r.stdout)["ratings"]
+    assert [x["band"] for x in rows] == ["40m", "20m"] and all(x["v_cap_peak_max"] > 100 for x in rows)
+
+
+# -- boxes -------------------------------------------------------------------------
+def test_zero_tolerance_no_strays_is_the_nominal_box():
+    box = draw_box(NET, 3, 0.0, "none")
+    loads = smith_loads(60, seed=4)
+    cfg = ScoreConfig(strategy="model")
+    a = score(loads, NET, NET, cfg, workers=1)
+    b = score(loads, box.network, NET, cfg, det=box.detector, workers=1)
+    for x, y in zip(a, b):
+        assert x["swr"] == y["swr"] and x["measurements"] == y["measurements"]
+
+
+def test_drawn_values_follow_the_stated_distribution():
+    devs = []
+    for s in range(300):
+        b = draw_box(NET, s, 0.05, "none")
+        devs += [v / n - 1 for v, n in zip(b.network.inductors_uh, NET.inductors_uh)]
+        devs += [v / n - 1 for v, n in zip(b.network.capacitors_pf, NET.capacitors_pf)]
+    assert statistics.pstdev(devs) == pytest.approx(0.05, rel=0.08)
+    assert abs(statistics.mean(devs)) < 0.005
+    assert max(abs(d) for d in devs) <= 0.15 + 1e-12  # clipped at 3 sigma
+
+
+def test_reported_swr_recomputes_from_published_box_values(tmp_path):
+    p = tmp_path / "l.csv"
+    run_cli("loads", "--smith", "25", "--seed", "8", "--out", str(p))
+    r = run_cli("score", "--strategy", "model", "--loads", str(p), "--boxes", "2", "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    boxes = {b["box"]: b for b in d["boxes"]}
+    rows = d["strategies"][0]["results"]
+    assert {x["box"] for x in rows} == {0, 1}
+    for row in rows[:20]:
+        bn = dict(boxes[row["box"]]["network"])
+        net = Network(**{k: bn[k] for k in ("z0_ohm", "inductors_uh", "capacitors_pf")},
+                      inductor_q=NET.inductor_q, capacitor_q=NET.capacitor_q,
+                      inductor_q_each=bn["inductor_q_each"], capacitor_q_each=bn["capacitor_q_each"],
+                      relay_open_pf=bn["relay_open_pf"], lead_nh=bn["lead_nh"],
+                      stray_in_pf=bn["stray_in_pf"], stray_out_pf=bn["stray_out_pf"])
+        e = evaluate(net, row["freq_hz"], complex(row["r_ohm"], row["x_ohm"]), row["l_code"], row["c_code"],
+                     row["shunt"])
+        assert float(e["swr"]) == pytest.approx(row["swr"], rel=1e-9)
+
+
+def test_strays_change_the_network():
+    box = draw_box(NET, 3, 0.0, "default")
+    a = complex(evaluate(NET, 28e6, 50 + 50j, 20, 10, "ant")["z_in"])
+    b = complex(evaluate(box.network, 28e6, 50 + 50j, 20, 10, "ant")["z_in"])
+    assert abs(a - b) > 1.0
+    assert network_from_dict(NET.to_json()) == NET
+
+
+# -- fit-box -----------------------------------------------------------------------
+def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
+    """Draw a box, run tunes on the (in-process) virtual station, log them, fit, compare."""
+    from feedmatch.logbook import Logbook
+    from feedmatch.station import StationModel
+    from fmlogic.controller import Controller
+
+    box = draw_box(NET, 21, 0.05, "none")
+    m = StationModel(box.network, FixedLoad(50, 0), box.detector, 25.0, seed=2)
+    b = FakeBoard(m)
+    ctl = Controller(b, board_config(tune__strategy="model", memory__bin_hz=100.0), str(tmp_path))
+    rng = random.Random(5)
+    book = Logbook(tmp_path / "log.sqlite")
+    for ld in smith_loads(160, seed=12):
+        m.antenna = FixedLoad(ld.r_ohm, ld.x_ohm)
+        m._zcache.clear()
+        m._cache.clear()
+        m.key(10, ld.freq_hz + rng.uniform(-1e3, 1e3))
+        seq = ctl.rec.seq
+        for _ in range(300):
+            ctl.step()
+            if ctl.rec.seq > seq:
+                break
+        m.key(0, 0)
+        for _ in range(3):
+            ctl.step()
+    for rec in ctl.rec.ring:
+        book.add(rec)
+    book.close()
+    cfgp = tmp_path / "board.json"
+    cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
+    r = run_cli("fit-box", "--db", str(tmp_path / "log.sqlite"), "--json", "--write", str(cfgp))
+    assert r.returncode == 0, r.stderr
+    res = json.loads(r.stdout)
+    # Stated error: within 8 % for every element the tunes exercised at least 20 times, through the
+    # realistic detector with this box's drawn gain, offset and leakage errors (measured: 2-7 %).
+    for vals, drawn, n in ((res["inductors_uh"], box.network.inductors_uh, res["inductor_readings"]),
+                           (res["capacitors_pf"], box.network.capacitors_pf, res["capacitor_readings"])):
+        for v, d, k in zip(vals, drawn, n):
+            if k >= 20:
+                assert v == pytest.approx(d, rel=0.08)
+    cfg = json.loads(cfgp.read_text())
+    assert len(cfg["correction"]["inductors_uh"]) == 7 and (tmp_path / "board.json.bak").exists()
+    r = run_cli("fit-box", "--db", str(tmp_path / "nope.sqlite"))
+    assert r.returncode == 2 and "does not exist" in r.stderr
