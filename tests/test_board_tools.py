@@ -121,8 +121,8 @@ def test_board_validator_same_under_unix_port(micropython):
     from fmlogic import config as fcfg
 
     ours = [fcfg.validate(c) for c in cases]
-    code = ("import json\nfrom fmlogic import config\nfor c in json.loads(%r):\n print(json.dumps(config.validate(c)))"
-            % json.dumps(cases))
+    code = ("import json\nfrom fmlogic import config\n"
+            f"for c in json.loads({json.dumps(cases)!r}):\n print(json.dumps(config.validate(c)))")
     theirs = [json.loads(x) for x in run_mpy(micropython, code).strip().splitlines()]
     assert ours == theirs and ours[0] == [] and len(ours[2]) == 3
 

@@ -278,7 +278,7 @@ def test_frame_round_trip_and_rejections():
     assert link.decode(b"hello\n") == (None, "no-crc")
     body = b"Z1 x {}"
     assert link.decode(body + b"*%04X\n" % link.crc16(body)) == (None, "malformed")
-    assert link.decode(b"Q" * 2000) == (None, "oversize")
+    assert link.decode(b"Q" * (link.MAX_LINE + 10)) == (None, "oversize")
 
 
 @settings(max_examples=1500, deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -150,6 +150,7 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
             vs.play(step, 1.5)
         stop.set()
         th.join(10)
+        assert not th.is_alive()
         # The logger is killed hard while the board keeps tuning, then restarted.
         p = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", db],
                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
@@ -165,9 +166,11 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
         th2 = threading.Thread(target=lg2.run, args=(stop2,), daemon=True)
         th2.start()
         want = _board_seq(vs)
-        assert _wait(lambda: lg2.last_committed >= want, 20), (lg2.last_committed, want)
+        assert _wait(lambda: lg2.last_committed >= want, 20), (lg2.last_committed, want, lg2.status,
+                                                                th2.is_alive(), p.returncode, lg2.last_error)
         stop2.set()
         th2.join(10)
+        assert not th2.is_alive()
         # The board ends safe: not seeking, no relay ever switched hot.
         with serial.Serial(pty, 115200, timeout=0.2):
             pass

@@ -19,6 +19,7 @@ from fmlogic import link, memory, search
 from fmlogic.swr import SWR_MAX, gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
+_RECORDS_BYTES = 900
 WAIT_RF = "wait-rf"
 SEEK = "seek"
 LOCKED = "locked"
@@ -414,8 +415,22 @@ class Controller:
             since = a.get("since", 0)
             if not isinstance(since, int) or since < 0:
                 return False, {"why": "bad-args", "msg": "since"}
-            recs = self.rec.since(since, 3)
-            more = len(self.rec.since(since, 4)) > 3
+            # As many records as fit in a short frame (at least one, its trace dropped if it
+            # alone is too long): short frames survive a noisy line better.
+            cand = self.rec.since(since, 6)
+            recs = []
+            size = 80
+            for r in cand:
+                n = len(json.dumps(r)) + 2
+                if recs and size + n > _RECORDS_BYTES:
+                    break
+                if size + n > link.MAX_LINE - 40:
+                    r = dict(r)
+                    r.pop("trace", None)
+                    n = len(json.dumps(r)) + 2
+                recs.append(r)
+                size += n
+            more = len(cand) > len(recs) or (len(cand) == 6 and cand[-1]["seq"] < self.rec.seq)
             return True, {"records": recs, "more": more, "last": self.rec.seq}
         if word == "ping":
             return True, {"pong": True}

@@ -45,6 +45,7 @@ class BoardLink:
         self.reconnects = 0
         self.on_event: Callable[[str, dict], None] | None = None
         self._answers: dict[int, tuple[str, dict]] = {}
+        self.stop_event = None  # set by an owner that must be able to stop us mid-retry
 
     # -- open / close -----------------------------------------------------------
     def open(self) -> BoardLink:
@@ -141,12 +142,22 @@ class BoardLink:
         timeout = timeout or self.timeout
         last_err = "no answer"
         for _ in range(retries + 1):
+            if self.stop_event is not None and self.stop_event.is_set():
+                raise LinkError("stopped")
             self.seq = (self.seq % 65535) + 1
             seq = self.seq
             self._write(frames.encode("Q", seq, word, args or {}))
             deadline = time.monotonic() + timeout
+            bad0 = self.bad_frames
             while time.monotonic() < deadline:
                 self.pump()
+                if self.bad_frames != bad0 and seq not in self._answers:
+                    # A frame arrived damaged: likely our answer; ask again now rather
+                    # than at the timeout (a late good answer to the old seq is ignored).
+                    self.pump()
+                    if seq not in self._answers:
+                        last_err = f"answer to {word} arrived damaged"
+                        break
                 if seq in self._answers:
                     status, obj = self._answers.pop(seq)
                     if status == "ok":
@@ -155,14 +166,18 @@ class BoardLink:
             last_err = f"no answer to {word} within {timeout:g} s"
         raise LinkError(last_err)
 
-    def records_since(self, seq: int) -> list[dict[str, Any]]:
-        """Every record the board still holds after seq (several requests if needed)."""
+    def records_since(self, seq: int, each: Callable[[dict], None] | None = None) -> list[dict[str, Any]]:
+        """Every record the board still holds after seq (several requests if needed);
+        each(record) is called as soon as a record arrives."""
         out: list[dict[str, Any]] = []
         since = seq
         for _ in range(10000):
-            ans = self.request("records", {"since": since})
+            ans = self.request("records", {"since": since}, retries=8)
             recs = ans.get("records", [])
             out += recs
+            if each is not None:
+                for r in recs:
+                    each(r)
             if recs:
                 since = recs[-1]["seq"]
             if not ans.get("more") or not recs:

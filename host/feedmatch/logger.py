@@ -29,7 +29,9 @@ class Logger:
         self.corrupt = 0
         self._pending: list[dict] = []
         self.last_committed = 0  # highest record seq in the logbook (for other threads)
+        self.last_error = ""
         self._need_backfill = True
+        self._stop: threading.Event | None = None
 
     def _when(self, rec: dict[str, Any]) -> str:
         """Best estimate of when a record happened (the board has no clock)."""
@@ -56,6 +58,7 @@ class Logger:
 
     def _connect(self) -> None:
         self.link = BoardLink(self.port, self.baud)
+        self.link.stop_event = self._stop
         self.link.open()
         self.link.on_event = self._on_event
         self._sync()
@@ -72,13 +75,16 @@ class Logger:
         board_last = int(self.status.get("seq", 0))
         missing = [s for s in range(1, board_last + 1) if s not in have]
         if missing:
-            for rec in self.link.records_since(min(missing) - 1):
+            def take(rec: dict) -> None:
                 if rec.get("seq") not in have:
                     self._commit(rec, self._when(rec))
+            self.link.records_since(min(missing) - 1, take)
         self._need_backfill = False
+        self.last_committed = self.book.last_seq(self.board_id)
 
     def run(self, stop: threading.Event | None = None, duration_s: float | None = None) -> int:
         stop = stop or threading.Event()
+        self._stop = stop
         self.book = Logbook(self.db_path)
         t_end = time.monotonic() + duration_s if duration_s else None
         try:
@@ -105,9 +111,12 @@ class Logger:
                         self._sync()
                         last_status = time.monotonic()
                         self._show()
-                except LinkError:
+                except LinkError as e:
                     # A lost answer, a pulled cable or a rebooting board: reopen and resync.
+                    self.last_error = str(e)
                     self._need_backfill = True
+                    if stop.is_set():
+                        break
                     try:
                         self.link.reconnect(give_up_s=5.0)
                     except LinkError:
