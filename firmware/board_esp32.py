@@ -52,7 +52,7 @@ class Board:
 
     def set_relays(self, l, c, sh, bypass):
         word = l | (c << self.nl) | ((1 if sh else 0) << (self.nl + self.nc)) | \
-            ((1 if bypass else 0) << (self.nl + self.nc + 1))
+            ((0 if bypass else 1) << (self.nl + self.nc + 1))  # in-line bit: relays idle = through
         self._shift(word)
 
     def read_detectors(self):

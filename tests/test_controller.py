@@ -322,3 +322,15 @@ def test_fuzz_command_handler_never_crashes(tmp_path_factory, chunks):
         if line:
             assert link.decode(line + b"\n")[0] in ("A", "E")
     b.outbox.clear()
+
+
+def test_operator_bypass_sticks_until_a_tune_is_asked_for(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(10, 14.2e6)
+    assert run(ctl, until=lambda c: c.state == LOCKED)
+    b.inbox += link.encode("Q", 3, "bypass", {"on": True})
+    run(ctl, 50)
+    assert m.relays[3] == 1 and ctl.state == "through"  # no automatic retune undoes it
+    b.inbox += link.encode("Q", 4, "tune", {})
+    assert run(ctl, until=lambda c: c.state == LOCKED)
+    assert m.relays[3] == 0 and m.violations == []

@@ -212,3 +212,15 @@ def test_simulate_cli_json_contract():
     assert len(json.loads(r.stdout)["points"]) == 4
     r = run_cli("simulate", "--freq", "99m", "--load", "1+1j", "--best")
     assert r.returncode == 2 and "unknown band" in r.stderr
+
+
+def test_state_table_equals_the_model_with_and_without_strays():
+    from feedmatch.boxes import draw_box
+    from feedmatch.network import StateTable
+
+    for net in (NET, draw_box(NET, 4, 0.05, "default").network):
+        t = StateTable(net)
+        for f, z in ((7.1e6, 12 - 150j), (28.4e6, 600 + 900j), (3.6e6, 3 - 900j)):
+            ref = gamma(all_states_zin(net, f, z), net.z0_ohm)
+            assert np.allclose(t.gamma(f, z), ref, rtol=1e-12, atol=1e-14)
+            assert np.allclose(t.gamma_mag(f, z), np.abs(ref), rtol=1e-12, atol=1e-14)

@@ -48,6 +48,7 @@ class Controller:
         self.tune = None
         self.lock_bin = None
         self.pending_restore = None
+        self.manual = False  # the operator set relays or bypass: no automatic tunes until asked
         self.frames_bad = 0
         self.hot_refusals = 0
         self.boot = _bump_boot(d)
@@ -159,6 +160,7 @@ class Controller:
             return
         if self.board.tune_button():
             req = self.tune_req = {"t": now, "freq_hz": f, "why": "button"}
+            self.manual = False
         in_window = self.p["min_tune_w"] <= fwd <= self.p["max_tune_w"]
         if req is not None:
             if fwd > self.p["max_tune_w"]:
@@ -169,7 +171,7 @@ class Controller:
                 self.tune_req = None
                 self._start_tune(f, req.get("why", "request"))
             return
-        if not self.t["auto"] or not in_window:
+        if not self.t["auto"] or not in_window or self.manual:
             return
         swr = self._swr()
         fbin = self.mem.bin_of(f) if f > 0 else None
@@ -340,7 +342,8 @@ class Controller:
                 "swr": _r3(self._swr()) if self.fwd > 0 else None, "freq_hz": self.freq,
                 "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
                 "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
-                "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms()}
+                "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms(),
+                "manual": self.manual}
 
     def _handle(self, word, a):
         if word == "status":
@@ -354,6 +357,7 @@ class Controller:
             if not isinstance(f, (int, float)) or f < 0 or f > 1e9:
                 return False, {"why": "bad-args", "msg": "freq_hz"}
             self.tune_req = {"t": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
+            self.manual = False
             return True, {"accepted": True, "seq": self.rec.seq}
         if word == "set":
             if self.tune is not None:
@@ -366,6 +370,7 @@ class Controller:
                 return False, {"why": "hot", "msg": "power above hot-switch limit"}
             self.mem.set_last(self.freq, self.relays, False)
             self.mem.flush()
+            self.manual = True
             self._set_state(WAIT_RF, "set by host")
             return True, {"relays": self._state_list()}
         if word == "bypass":
@@ -378,6 +383,7 @@ class Controller:
                 return False, {"why": "hot", "msg": "power above hot-switch limit"}
             self.mem.set_last(self.freq, self.relays, on)
             self.mem.flush()
+            self.manual = on
             self._set_state(THROUGH if on else WAIT_RF, "bypass by host")
             return True, {"relays": self._state_list()}
         if word == "mem-list":

@@ -138,8 +138,13 @@ def cmd_virtual_board(a) -> int:
     from .virtual import VirtualStation
 
     st = load_station(a.station)
+    import signal
     import tempfile
 
+    def _term(signum, frame):
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _term)
     d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
     vs = VirtualStation(st, d, use_python=a.python)
     path = vs.start()

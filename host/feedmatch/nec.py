@@ -7,13 +7,13 @@ The description (JSON, kind "nec"):
   coil (optional): height_m, inductance_uh, q (series loading coil in the radiator)
   ground: {"type": "perfect"}
           | {"type": "radials", conductivity_s_m, permittivity, radials, radial_length_m,
-             radial_height_m (<= 0.3, default 0.05), radial_diameter_m}
+             radial_height_m (<= 0.3, default 0.2), radial_diameter_m}
           | {"type": "counterpoise", the same keys, radial_height_m above 0.3 m}
   feed (optional): series_r_ohm (ground or connection loss added at the feed)
 
-Radials on the ground are modelled as wires a few centimetres above a
-Sommerfeld-Norton real ground (NEC-2 cannot bury wires nor trust its
-reflection-coefficient ground this close to the surface; common practice).
+Radials on the ground are modelled as wires 0.2 m above a Sommerfeld-Norton
+real ground (NEC-2 cannot bury wires, and closer than about a thousandth of a
+wavelength it returns negative resistances on the low bands; common practice).
 Segmenting follows the usual NEC-2 guidance: segments no longer than a tenth
 of the shortest wavelength (we use a twelfth), and at least eight wire
 radii long for the thin-wire kernel; breaking either is warned about, and a
@@ -37,7 +37,7 @@ from .errors import InputError
 from .jsonfile import check_keys, number
 
 C0 = 299_792_458.0
-CACHE_VERSION = 4
+CACHE_VERSION = 5
 SEGS_PER_WAVELENGTH = 12
 F_SEGMENT_HZ = 30e6
 
@@ -102,7 +102,7 @@ def validate(d: dict, where: str) -> dict:
         n = g["radials"]
         if not isinstance(n, int) or isinstance(n, bool) or not 1 <= n <= 120:
             raise InputError(f"{w}: field 'radials' must be an integer 1..120")
-        hdef = 0.05 if gt == "radials" else 2.5
+        hdef = 0.2 if gt == "radials" else 2.5
         hr = number(g, "radial_height_m", w, optional=True, default=hdef)
         if hr <= 0:
             raise InputError(f"{w}: field 'radial_height_m' must be above ground (NEC-2 cannot bury "
@@ -306,6 +306,11 @@ def sweep(desc: dict, f_hz, workers: int | None = None, use_cache: bool = True) 
     zs = np.array([z for p in parts for z in p], dtype=complex)
     out = np.empty_like(zs)
     out[order] = zs
+    bad = fs[zs.real <= 0]
+    if len(bad):
+        warnings.warn(f"NEC-2 gave a negative resistance at {len(bad)} frequencies from "
+                      f"{bad.min() / 1e6:.3f} MHz: the ground model is outside its range there "
+                      "(raise radial_height_m)", NecWarning, stacklevel=2)
     if use_cache:
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
@@ -351,7 +356,7 @@ DEMO_VERTICAL = {
     "kind": "nec", "name": "Hollow Oak field vertical",
     "radiator": {"height_m": 4.5, "diameter_m": 0.025},
     "ground": {"type": "radials", "conductivity_s_m": 0.002, "permittivity": 10, "radials": 16,
-               "radial_length_m": 4.0, "radial_height_m": 0.05, "radial_diameter_m": 0.002},
+               "radial_length_m": 4.0, "radial_height_m": 0.2, "radial_diameter_m": 0.002},
 }
 
 

@@ -302,3 +302,48 @@ def best_state(net: Network, f_hz: float, z_load: complex) -> tuple[int, int, in
     idx = int(np.argmin(gm))
     sh, l, c = np.unravel_index(idx, gm.shape)
     return int(l), int(c), int(sh), float(gm.flat[idx])
+
+
+class StateTable:
+    """Every state of one network evaluated into reused buffers.
+
+    Fresh arrays of this size cost more to allocate (page faults) than the
+    arithmetic itself, so the scorer and the benchmark keep one of these per
+    process.  gamma() returns a view into the table's buffer, valid until the
+    next call.  Loads broadcast no further: one frequency and one load.
+    """
+
+    def __init__(self, net: Network):
+        self.net = net
+        shape = (2, 1 << net.n_l, 1 << net.n_c)
+        self._g = np.empty(shape, dtype=complex)
+        self._b = np.empty(shape, dtype=complex)
+        self._m = np.empty(shape, dtype=float)
+
+    def zin(self, f_hz: float, z_load: complex) -> np.ndarray:
+        net = self.net
+        zs = series_table(net, f_hz)[:, None]
+        yc = shunt_table(net, f_hz)[None, :]
+        y_in, y_out = _stray_y(net, f_hz)
+        zl = complex(z_load)
+        yl = (1.0 / zl if zl != 0 else 1e12) + complex(y_out)
+        a = self._g
+        np.add(zs, 1.0 / (yl + yc), out=a[1])  # capacitor across the antenna side
+        np.add(1.0 / (zs + 1.0 / yl), yc, out=a[0])  # capacitor across the transmitter side
+        np.reciprocal(a[0], out=a[0])
+        if net.stray_in_pf:
+            np.reciprocal(a, out=a)
+            np.add(a, complex(y_in), out=a)
+            np.reciprocal(a, out=a)
+        return a
+
+    def gamma(self, f_hz: float, z_load: complex) -> np.ndarray:
+        a = self.zin(f_hz, z_load)
+        z0 = self.net.z0_ohm
+        np.add(a, z0, out=self._b)
+        np.subtract(a, z0, out=a)
+        np.divide(a, self._b, out=a)
+        return a
+
+    def gamma_mag(self, f_hz: float, z_load: complex) -> np.ndarray:
+        return np.abs(self.gamma(f_hz, z_load), out=self._m)

@@ -21,7 +21,7 @@ import numpy as np
 
 from .detector import DetectorModel
 from .loads import Load
-from .network import SHUNTS, Network, all_states_zin, gamma
+from .network import SHUNTS, Network, StateTable, all_states_zin, gamma
 
 # Rough ratio of the RP2040's MicroPython float speed to CPython on this kind
 # of code, for the estimated tune time (from memory, an order of magnitude).
@@ -69,8 +69,9 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
 
     det = det or cfg.detector
     rng = random.Random(seed)
-    table = gamma(all_states_zin(true_net, load.freq_hz, load.z), true_net.z0_ohm)
-    gm = np.abs(table)
+    st = _table_for(true_net)
+    gm = st.gamma_mag(load.freq_hz, load.z)
+    table = st._g
     idx = int(np.argmin(gm))
     o_sh, o_l, o_c = np.unravel_index(idx, gm.shape)
     oracle_g = float(gm.flat[idx])
@@ -107,6 +108,20 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
             "measurements": n, "relay_ops": ops, "hot_switches": hot,
             "tune_ms": round(est_ms, 1), "compute_ms": round(compute_s * 1e3, 3),
             "trace": [[st[0], st[1], st[2], s.seen[st]] for st in s.order]}
+
+
+_TABLES: dict[str, StateTable] = {}
+
+
+def _table_for(net: Network) -> StateTable:
+    """One reusable state table per network per process."""
+    key = repr(net)
+    t = _TABLES.get(key)
+    if t is None:
+        if len(_TABLES) > 8:
+            _TABLES.clear()
+        t = _TABLES[key] = StateTable(net)
+    return t
 
 
 def _swr(g: float) -> float:
