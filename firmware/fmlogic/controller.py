@@ -20,6 +20,7 @@ from fmlogic.swr import SWR_MAX, gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
 _RECORDS_BYTES = 900
+_KEEP_BEST_SWR = 3.0  # a best effort worse than this is not worth recalling
 WAIT_RF = "wait-rf"
 SEEK = "seek"
 LOCKED = "locked"
@@ -252,7 +253,7 @@ class Controller:
             ts = s.seen.get(search.BYPASS)
             after_swr = swr_from_gamma(ts) if ts is not None else -1.0
         dur = self.board.ticks_diff(self.board.ticks_ms(), tn["t0"])
-        if outcome in (LOCKED, BEST) and not abort:
+        if (outcome == LOCKED or (outcome == BEST and best_swr <= _KEEP_BEST_SWR)) and not abort:
             # Best-effort states are kept too: a return to the bin then costs
             # one reading that reproduces the stored SWR, not a full search.
             self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)

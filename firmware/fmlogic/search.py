@@ -11,6 +11,7 @@
 # yields the state it wants measured and receives |gamma| back, which keeps the
 # sequential logic plain; memory is bounded by the measurement budget.
 import math
+from array import array
 
 from fmlogic import lnet
 from fmlogic.swr import gamma_from_powers, gamma_from_swr, swr_from_gamma
@@ -24,12 +25,18 @@ except ImportError:  # CPython
 
 
 _MAX_JUMPS = const(6)
+# The scan for strongly reactive loads: hypotheses on circles near the edge of
+# the chart, at most _SCAN_STEPS readings, until one shows a near match.
+_SCAN_RHO = (0.9, 0.96, 0.985, 0.995, 0.999)
+_SCAN_THETA = const(72)
+_SCAN_STEPS = const(16)
+_NEAR_G = 0.6
 # Readings near the target cannot be trusted to the last few per cent (coupler
 # directivity), so a reading between the comfortable and the target SWR buys
 # at most this many extra measurements to look for a clearly better state.
 _MARGINAL_EXTRA = const(6)
 _GRID_THETA = const(36)
-_GN_ITERS = const(6)
+_GN_ITERS = const(10)
 BYPASS = (0, 0, lnet.SHUNT_ANT)
 
 
@@ -194,6 +201,12 @@ class Strategy:
         yield from self._measure(BYPASS)
 
 
+def _scan_gamma(i):
+    r = _SCAN_RHO[i // _SCAN_THETA]
+    th = 6.283185307179586 * (i % _SCAN_THETA) / _SCAN_THETA
+    return complex(r * math.cos(th), r * math.sin(th))
+
+
 def _q(x):
     # Interpreters differ in the last bits of complex arithmetic; a 1e-9 grid
     # makes near-ties resolve the same way on every port.
@@ -329,8 +342,12 @@ class ModelFit(Strategy):
         return self.cands
 
     def _refine(self, gl):
-        """Gauss-Newton on (re, im) of gamma_load with a step limit."""
-        h = 1e-4
+        """Levenberg-Marquardt on (re, im) of gamma_load: a step is kept only if it
+        lowers the residual; the damping adapts (the problem is very badly
+        conditioned near the edge of the chart, where short verticals live)."""
+        h = 1e-5
+        lam = 1e-3
+        e = self._resid(gl)
         for _ in range(_GN_ITERS):
             a11 = a12 = a22 = b1 = b2 = 0.0
             for st in self.order:
@@ -343,25 +360,33 @@ class ModelFit(Strategy):
                 a22 += jv * jv
                 b1 += ju * r
                 b2 += jv * r
-            # Levenberg damping keeps the step sane when the readings saturate.
-            lam = 1e-6 + 1e-3 * (a11 + a22)
-            a11 += lam
-            a22 += lam
-            det = a11 * a22 - a12 * a12
-            if det <= 0.0:
-                break
-            du = -(a22 * b1 - a12 * b2) / det
-            dv = -(a11 * b2 - a12 * b1) / det
-            st_len = math.sqrt(du * du + dv * dv)
-            if st_len > 0.2:
-                du *= 0.2 / st_len
-                dv *= 0.2 / st_len
-            new = gl + complex(du, dv)
-            m = abs(new)
-            if m > 0.998:
-                new = new * (0.998 / m)
-            gl = new
-            if st_len < 1e-5:
+            moved = False
+            for _try in range(4):
+                d11 = a11 * (1.0 + lam) + 1e-12
+                d22 = a22 * (1.0 + lam) + 1e-12
+                det = d11 * d22 - a12 * a12
+                if det <= 0.0:
+                    lam *= 10.0
+                    continue
+                du = -(d22 * b1 - a12 * b2) / det
+                dv = -(d11 * b2 - a12 * b1) / det
+                st_len = math.sqrt(du * du + dv * dv)
+                if st_len > 0.2:
+                    du *= 0.2 / st_len
+                    dv *= 0.2 / st_len
+                new = gl + complex(du, dv)
+                m = abs(new)
+                if m > 0.999:
+                    new = new * (0.999 / m)
+                en = self._resid(new)
+                if en < e:
+                    gl = new
+                    e = en
+                    lam = lam * 0.1 if lam > 1e-9 else lam
+                    moved = True
+                    break
+                lam *= 10.0
+            if not moved or e < 1e-12:
                 break
         return gl
 
@@ -421,6 +446,9 @@ class ModelFit(Strategy):
         for p in self._probes():
             yield from self._measure(p)
         yield from self._jumps()
+        if self.best_g > _NEAR_G:
+            yield from self._scan()
+            yield from self._jumps()
         yield from self._polish()
         if self._model_agrees():
             return  # the model explains the readings and knows nothing better
@@ -455,6 +483,72 @@ class ModelFit(Strategy):
             return self._pred(gl, s)
 
         yield from self._descend(self.best_state, (4, 2, 1), predict)
+
+    def _scan(self):
+        """Elimination over a grid of strongly reactive load hypotheses.
+
+        Far from a match every reading is close to 1 (a short vertical on a low
+        band), so least squares has nothing to hold on to.  Each hypothesis keeps
+        its squared residual over all readings; the next state measured is the
+        ideal match of the most consistent hypothesis not yet tried.  It stops at
+        the first reading that shows a near match, which the fit then uses.
+        Memory: one float32 and one flag per hypothesis; hypotheses are computed
+        from their index, never stored.
+        """
+        n = len(_SCAN_RHO) * _SCAN_THETA
+        res = array("f", bytes(4 * n))
+        tried = bytearray(n)
+        for i in range(n):
+            gl = _scan_gamma(i)
+            e = 0.0
+            for st in self.order:
+                d = self._pred(gl, st) - self.seen[st]
+                e += d * d
+            res[i] = e
+        for _ in range(_SCAN_STEPS):
+            best_s = None
+            while best_s is None:
+                bi = -1
+                for i in range(n):
+                    if not tried[i] and (bi < 0 or res[i] < res[bi]):
+                        bi = i
+                if bi < 0:
+                    return
+                tried[bi] = 1
+                s = self._ideal_state(_scan_gamma(bi))
+                if s is not None and s not in self.seen:
+                    best_s = s
+            g = yield from self._measure(best_s)
+            for i in range(n):
+                d = self._pred(_scan_gamma(i), best_s) - g
+                res[i] += d * d
+            if self.best_g <= _NEAR_G:
+                break
+        # The most consistent hypotheses seed the next fit.
+        for _ in range(2):
+            bi = 0
+            for i in range(n):
+                if res[i] < res[bi]:
+                    bi = i
+            self.cands.append((res[bi], _scan_gamma(bi)))
+            res[bi] = 3.0e38
+
+    def _ideal_state(self, gl):
+        """Quantised closed-form match for a load hypothesis (no polishing: cheap)."""
+        b = self.bank
+        zl = lnet.z_from_gamma(gl, b.z0)
+        best = None
+        bg = 2.0
+        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
+            m = lnet.analytic_match(b, self.f_mhz, zl, sh)
+            if m is None:
+                continue
+            st = (b.l_code_for(m[0]), b.c_code_for(m[1]), sh)
+            g = lnet.gamma_state(b, self.f_mhz, zl, st[0], st[1], sh)
+            if g < bg:
+                bg = g
+                best = st
+        return best
 
     def _model_agrees(self):
         """True when a refit explains the best reading and predicts no clearly better state."""

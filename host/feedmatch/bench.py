@@ -86,6 +86,14 @@ def bench_score(n: int = 2000) -> dict[str, Any]:
         if name == "model":
             out["score_2000_s"] = round(dt * 2000 / n, 2)
             out["median_measurements"] = s["median_measurements"]
+    from .loads import vertical_loads
+
+    vl = vertical_loads(n // 2, seed=2)
+    for name in ("model", "recall"):
+        s = summarise(score(vl, net, net, ScoreConfig(strategy=name), workers=2), 1.5)
+        out[f"verticals_{name}_success_rate"] = round(s["success_rate"], 4)
+        out[f"verticals_{name}_median_measurements"] = s["median_measurements"]
+        out[f"verticals_{name}_p95_measurements"] = s["p95_measurements"]
     return out
 
 

@@ -107,9 +107,15 @@ def cmd_loads(a: argparse.Namespace) -> int:
     from .antenna import load_antenna
     from .loads import Load, smith_loads, write_loads
 
-    if (a.smith is None) == (a.antenna is None):
-        raise InputError("give exactly one of --smith N or --antenna FILE")
-    if a.smith is not None:
+    if sum(x is not None for x in (a.smith, a.antenna, a.verticals)) != 1:
+        raise InputError("give exactly one of --smith N, --verticals N or --antenna FILE")
+    if a.verticals is not None:
+        if a.verticals < 1:
+            raise InputError("--verticals needs a positive count")
+        from .loads import vertical_loads
+
+        loads = vertical_loads(a.verticals, seed=a.seed)
+    elif a.smith is not None:
         if a.smith < 1:
             raise InputError("--smith needs a positive count")
         loads = smith_loads(a.smith, seed=a.seed)
@@ -185,6 +191,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("loads", help="write a load corpus CSV for the scorer")
     s.add_argument("--smith", type=int, help="N loads spread evenly over the reflection disc")
+    s.add_argument("--verticals", type=int, help="N feed-point loads of short and medium verticals")
     s.add_argument("--antenna", help="loads of an antenna over the bands")
     s.add_argument("--bands", default="all")
     s.add_argument("--points", type=int, default=11, help="frequencies per band (--antenna)")

@@ -99,3 +99,23 @@ def smith_loads(n: int, seed: int = 1, z0: float = 50.0, gamma_max: float = 0.97
         f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
         out.append(Load(round(f, 1), z.real, z.imag))
     return out
+
+
+def vertical_loads(n: int, seed: int = 1) -> list[Load]:
+    """n feed-point impedances of verticals 2.5-9 m tall with 1-20 ohm of ground loss, at random
+    frequencies in the amateur bands (closed-form monopole, heights up to 0.42 wavelength):
+    the strongly reactive short-vertical loads this box exists for."""
+    from .antenna import Monopole
+
+    rng = np.random.default_rng(seed)
+    out: list[Load] = []
+    while len(out) < n:
+        h = rng.uniform(2.5, 9.0)
+        loss = rng.uniform(1.0, 20.0)
+        b = bands.HF_BANDS[int(rng.integers(len(bands.HF_BANDS)))]
+        f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
+        if h * f / 299_792_458.0 > 0.42:
+            continue
+        z = complex(Monopole(h, 0.012, loss).impedance(f))
+        out.append(Load(round(f, 1), z.real, z.imag))
+    return out
