@@ -54,7 +54,14 @@ def demo(tmp_path_factory):
     from feedmatch.demo import run_demo
 
     out = tmp_path_factory.mktemp("demo")
-    res = run_demo(out, verbose=False)
+    # A relative output directory, as `make demo` uses (the firmware runs in firmware/).
+    cwd = os.getcwd()
+    os.chdir(out.parent)
+    try:
+        res = run_demo(out.name, verbose=False)
+    finally:
+        os.chdir(cwd)
+    res["db"] = str(out / "station.sqlite")
     return out, res
 
 

@@ -2,7 +2,7 @@
 
 Boots the real firmware on the virtual station of the invented Hollow Oak
 field vertical, plays three operating sessions over every band the network
-can match (before the third a mower cuts four radials),
+can match (before the third a mower cuts ten of the sixteen radials),
 logs every tune into a fresh SQLite logbook over the pseudo-terminal link,
 then prints the per-band report and writes the plots.
 """
@@ -23,7 +23,7 @@ from .station import load_station
 from .virtual import VirtualStation
 
 SESSIONS = (("session 1", 0), ("session 2", 0),
-            ("session 3: a mower has cut four radials", 4))
+            ("session 3: a mower has cut ten of the sixteen radials", 10))
 
 
 def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | None = None,

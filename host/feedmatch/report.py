@@ -15,7 +15,7 @@ from .logbook import Logbook
 # more than these (common practice for trend alarms: a fixed margin over a
 # per-band baseline, not a global threshold).
 SWR_DRIFT = 0.25
-STATE_DRIFT_FRACTION = 0.15
+STATE_DRIFT_FRACTION = 0.06
 MIN_TUNES_FOR_HEALTH = 4
 
 
@@ -76,7 +76,7 @@ def health(ok: list, bin_hz: float = 25e3) -> dict[str, Any]:
         for name, key in (("L", "after_l"), ("C", "after_c")):
             a = _median([r[key] for r in base]) or 0
             c = _median([r[key] for r in recent]) or 0
-            if abs(c - a) > max(2.0, STATE_DRIFT_FRACTION * max(a, c)):
+            if abs(c - a) > max(3.0, STATE_DRIFT_FRACTION * max(a, c)):
                 notes.append(f"{mhz:.3f} MHz: matched {name} code moved {a:.0f} -> {c:.0f}")
     if not compared:
         return {"flag": False, "note": "too few tunes per frequency for a baseline"}
@@ -144,7 +144,8 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
         ax.plot(t, [r["swr_after"] for r in rs], "o-", ms=3, label=band)
     ax.set_ylabel("SWR after tune")
     ax.set_title("SWR after tune by band")
-    ax.legend(fontsize=8, ncol=4)
+    if by:
+        ax.legend(fontsize=8, ncol=4)
     fig.autofmt_xdate()
     f = d / "swr_by_band.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
@@ -156,7 +157,8 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
     ax.set_xlabel("l_code")
     ax.set_ylabel("c_code")
     ax.set_title("matched states per band")
-    ax.legend(fontsize=8)
+    if by:
+        ax.legend(fontsize=8)
     f = d / "states_by_band.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
     plt.close(fig)

@@ -46,7 +46,7 @@ class VirtualStation:
     def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
                  wdt_s: float = 3.0, quiet: bool = True):
         self.station = station
-        self.dir = Path(workdir)
+        self.dir = Path(workdir).resolve()  # the firmware runs with firmware/ as its cwd
         self.dir.mkdir(parents=True, exist_ok=True)
         self.use_python = use_python
         self.wdt_s = wdt_s
