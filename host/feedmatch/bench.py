@@ -86,7 +86,8 @@ def bench_score(n: int = 2000) -> dict[str, Any]:
         if name == "model":
             out["score_2000_s"] = round(dt * 2000 / n, 2)
     # The best strategy by success rate (recall, when memory holds states from earlier tunes).
-    best = max(("model", "recall", "grid"), key=lambda k: out[f"{k}_success_rate"])
+    best = max(("model", "recall", "grid"),
+               key=lambda k: (out[f"{k}_success_rate"], -out[f"{k}_median_measurements"]))
     out["best_strategy"] = best
     out["median_measurements"] = out[f"{best}_median_measurements"]
     from .loads import vertical_loads
