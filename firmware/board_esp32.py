@@ -6,21 +6,19 @@ import time
 
 import machine
 
+from board_common import BoardBase, RelayChain
 
-class Board:
+
+class Board(BoardBase):
     def __init__(self, cfg):
         pins = cfg["pins"]
         net = cfg["network"]
-        self.oe = machine.Pin(pins.get("relay_oe", 4), machine.Pin.OUT, value=1)
-        self.latch = machine.Pin(pins.get("relay_latch", 5), machine.Pin.OUT, value=0)
-        self.spi = machine.SPI(2, baudrate=1000000, sck=machine.Pin(pins.get("relay_sck", 18)),
-                               mosi=machine.Pin(pins.get("relay_mosi", 23)))
-        self.nl = len(net["inductors_uh"])
-        self.nc = len(net["capacitors_pf"])
-        self.nbytes = (self.nl + self.nc + 2 + 7) // 8
-        self.buf = bytearray(self.nbytes)
-        self._shift(0)
-        self.oe.value(0)
+        # Output enable first, high (off), before anything can clock the registers.
+        oe = machine.Pin(pins.get("relay_oe", 4), machine.Pin.OUT, value=1)
+        latch = machine.Pin(pins.get("relay_latch", 5), machine.Pin.OUT, value=0)
+        spi = machine.SPI(2, baudrate=1000000, sck=machine.Pin(pins.get("relay_sck", 18)),
+                          mosi=machine.Pin(pins.get("relay_mosi", 23)))
+        self.relays = RelayChain(spi, latch, oe, len(net["inductors_uh"]), len(net["capacitors_pf"]))
         self.adc_f = machine.ADC(machine.Pin(pins.get("adc_fwd", 34)), atten=machine.ADC.ATTN_11DB)
         self.adc_r = machine.ADC(machine.Pin(pins.get("adc_ref", 35)), atten=machine.ADC.ATTN_11DB)
         self.burst = cfg["detector"].get("burst", 16)
@@ -43,26 +41,6 @@ class Board:
     def _edge(self, _pin):
         self.count += 1
 
-    def _shift(self, word):
-        for i in range(self.nbytes):
-            self.buf[self.nbytes - 1 - i] = (word >> (8 * i)) & 0xFF
-        self.spi.write(self.buf)
-        self.latch.value(1)
-        self.latch.value(0)
-
-    def set_relays(self, l, c, sh, bypass):
-        word = l | (c << self.nl) | ((1 if sh else 0) << (self.nl + self.nc)) | \
-            ((0 if bypass else 1) << (self.nl + self.nc + 1))  # in-line bit: relays idle = through
-        self._shift(word)
-
-    def read_detectors(self):
-        sf = 0
-        sr = 0
-        for _ in range(self.burst):
-            sf += self.adc_f.read_u16()
-            sr += self.adc_r.read_u16()
-        return (sf / (16.0 * self.burst), sr / (16.0 * self.burst))
-
     def count_freq(self):
         gate_ms = self.gate_ms
         if self.pcnt is not None:
@@ -75,24 +53,6 @@ class Board:
             time.sleep_ms(gate_ms)
             n = self.count
         return n * self.prescale * 1000.0 / gate_ms
-
-    def tune_button(self):
-        return self.btn.value() == 0
-
-    def led(self, on):
-        self.led_pin.value(1 if on else 0)
-
-    def wdt_feed(self):
-        self.wdt.feed()
-
-    def ticks_ms(self):
-        return time.ticks_ms()
-
-    def ticks_diff(self, a, b):
-        return time.ticks_diff(a, b)
-
-    def sleep_ms(self, ms):
-        time.sleep_ms(ms)
 
     def link_read(self):
         return self.uart.read()

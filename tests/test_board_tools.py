@@ -8,6 +8,7 @@ import random
 import shutil
 import statistics
 import subprocess
+import threading
 import time
 from pathlib import Path
 
@@ -304,3 +305,57 @@ def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
     assert len(cfg["correction"]["inductors_uh"]) == 7 and (tmp_path / "board.json.bak").exists()
     r = run_cli("fit-box", "--db", str(tmp_path / "nope.sqlite"))
     assert r.returncode == 2 and "does not exist" in r.stderr
+
+
+def test_deploy_through_mpremote_to_the_unix_port(tmp_path, micropython):
+    """The real mpremote path: the unix port's raw REPL on a pseudo-terminal stands in for a board."""
+    import os
+    import pty
+    import select
+    import tty
+
+    root = tmp_path / "flash"
+    root.mkdir()
+
+    def boot():
+        m1, s1 = pty.openpty()
+        tty.setraw(s1)
+        p = subprocess.Popen([micropython], stdin=s1, stdout=s1, stderr=s1, cwd=str(root))
+        return p, m1, s1
+
+    m2, s2 = pty.openpty()
+    tty.setraw(s2)
+    state = {"board": boot(), "stop": False}
+
+    def bridge():
+        while not state["stop"]:
+            p, m1, _ = state["board"]
+            r, _, _ = select.select([m1, m2], [], [], 0.1)
+            for fd in r:
+                try:
+                    d = os.read(fd, 4096)
+                    os.write(m2 if fd == m1 else m1, d)
+                except OSError:
+                    pass
+    th = threading.Thread(target=bridge, daemon=True)
+    th.start()
+    port = os.ttyname(s2)
+    try:
+        time.sleep(0.5)
+        r = run_cli("deploy", "--port", port, "--board", "esp32", "--json", timeout=400)
+        assert r.returncode == 0, r.stderr
+        v = json.loads(r.stdout)["version"]
+        assert (root / "fm" / "current").read_text() == v
+        assert (root / "fm" / v / "fmlogic" / "search.py").read_bytes() == (FIRMWARE / "fmlogic" / "search.py").read_bytes()
+        assert json.loads((root / "config.json").read_text())["board"] == "esp32"
+        # The board "reboots"; a second deploy of the same version sends nothing.
+        state["board"][0].kill()
+        state["board"] = boot()
+        time.sleep(0.5)
+        r = run_cli("deploy", "--port", port, "--board", "esp32", "--dry-run", "--json", timeout=200)
+        assert r.returncode == 0, r.stderr
+        plan = json.loads(r.stdout)
+        assert plan["current"] == v and {f["action"] for f in plan["files"]} == {"keep"}
+    finally:
+        state["stop"] = True
+        state["board"][0].kill()

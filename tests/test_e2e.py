@@ -40,13 +40,7 @@ def _board_seq(vs):
     return r.seq
 
 
-def _wait(pred, timeout):
-    t = time.monotonic() + timeout
-    while time.monotonic() < t:
-        if pred():
-            return True
-        time.sleep(0.05)
-    return False
+from feedmatch.demo import _wait  # noqa: E402
 
 
 @pytest.fixture(scope="module")

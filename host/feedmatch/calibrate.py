@@ -13,15 +13,13 @@ calibrate the reflected side the same way (hardware_notes/calibration.md).
 from __future__ import annotations
 
 import argparse
-import json
 import math
-import shutil
 from collections.abc import Callable
 from pathlib import Path
 from typing import TextIO
 
 from .errors import InputError, LinkError
-from .jsonfile import load_json
+from .jsonfile import load_json, write_json_with_backup
 
 
 def fit_table(points: list[tuple[float, float]]) -> list[list[float]]:
@@ -99,10 +97,7 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
     errs = fcfg.validate(cfg)
     if errs:
         raise InputError(f"the new calibration does not validate: {errs[0]}")
-    shutil.copy2(cfg_path, str(cfg_path) + ".bak")
-    tmp = cfg_path.with_suffix(cfg_path.suffix + ".tmp")
-    tmp.write_text(json.dumps(cfg, indent=1) + "\n")
-    tmp.replace(cfg_path)
+    write_json_with_backup(cfg_path, cfg)
     print(f"residual reflected reading into the dummy load: |gamma| {res['gamma']:.3f} "
           f"(effective directivity {res['directivity_db']:.1f} dB): SWR below "
           f"{res['lowest_swr']:.2f} cannot be told apart", file=out)

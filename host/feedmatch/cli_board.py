@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
-import shutil
 import sys
 from pathlib import Path
 
@@ -47,7 +45,7 @@ def write_correction(path: str, res: dict) -> None:
     from fmlogic import config as fcfg
 
     p = Path(path)
-    from .jsonfile import load_json
+    from .jsonfile import load_json, write_json_with_backup
 
     cfg = load_json(p, "board config")
     cfg["correction"] = {"inductors_uh": [round(v, 5) for v in res["inductors_uh"]],
@@ -56,10 +54,7 @@ def write_correction(path: str, res: dict) -> None:
     errs = fcfg.validate(cfg)
     if errs:
         raise InputError(f"board config {p}: {errs[0]}")
-    shutil.copy2(p, str(p) + ".bak")
-    tmp = p.with_suffix(p.suffix + ".tmp")
-    tmp.write_text(json.dumps(cfg, indent=2) + "\n")
-    tmp.replace(p)
+    write_json_with_backup(p, cfg)
 
 
 def cmd_deploy(a: argparse.Namespace) -> int:

@@ -3,7 +3,7 @@
 Layout on the board:
   main.py            the loader (firmware/loader.py): runs fm/<current>/fm_main.py
   fm/current         the name of the running version
-  fm/<version>/      fm_main.py, board_<kind>.py, fmlogic/*.py or *.mpy
+  fm/<version>/      fm_main.py, board_common.py, board_<kind>.py, fmlogic/*.py or *.mpy
   config.json        the board config (the same validator runs here and at boot)
 The version name is a hash of the files, so unchanged firmware is a no-op.
 """
@@ -43,6 +43,7 @@ def sha256_file(p: Path) -> str:
 def build_files(board: str, compile_mpy: bool, work: Path) -> list[tuple[Path, str]]:
     """(local file, path inside the version directory) for one firmware build."""
     out: list[tuple[Path, str]] = [(FIRMWARE / "main.py", "fm_main.py"),
+                                   (FIRMWARE / "board_common.py", "board_common.py"),
                                    (FIRMWARE / f"board_{board}.py", f"board_{board}.py")]
     for src in sorted((FIRMWARE / "fmlogic").glob("*.py")):
         if compile_mpy and src.name != "__init__.py":
@@ -141,10 +142,12 @@ class MpremoteTarget:
         self.port = port
         exe = shutil.which("mpremote") or str(Path(sys.executable).parent / "mpremote")
         self.exe = exe
+        self._dirs: set[str] = set()
+        self.reset_note = ""
 
     def _run(self, *args: str, timeout: float = 60) -> str:
         try:
-            r = subprocess.run([self.exe, "connect", self.port, *args], capture_output=True, text=True,
+            r = subprocess.run([self.exe, "connect", self.port, "resume", *args], capture_output=True, text=True,
                                timeout=timeout)
         except (OSError, subprocess.TimeoutExpired) as e:
             raise LinkError(f"mpremote failed on {self.port}: {e}") from None
@@ -168,7 +171,9 @@ class MpremoteTarget:
         parts = remote.split("/")[:-1]
         for i in range(1, len(parts) + 1):
             d = "/".join(parts[:i])
-            self._exec(f"import os\ntry:\n os.mkdir({d!r})\nexcept OSError:\n pass")
+            if d not in self._dirs:
+                self._exec(f"import os\ntry:\n os.mkdir({d!r})\nexcept OSError:\n pass")
+                self._dirs.add(d)
         self._run("fs", "cp", str(local), ":" + remote)
 
     def copy(self, src: str, dst: str) -> None:
@@ -190,7 +195,12 @@ class MpremoteTarget:
                    f"rm({path!r})")
 
     def reset(self) -> None:
-        self._run("soft-reset")
+        # The new version is already switched in; a board that reboots before it
+        # answers (or a unix-port stand-in, which exits) is not a failed deploy.
+        try:
+            self._run("soft-reset", timeout=10)
+        except LinkError as e:
+            self.reset_note = f"soft reset not confirmed ({str(e)[:80]}); power-cycle the board if it does not restart"
 
 
 def plan(board: str, config_path: Path, compile_mpy: bool, target, work: Path) -> dict:
@@ -282,8 +292,10 @@ def run_deploy(a: argparse.Namespace) -> int:
             print("dry run: nothing was written")
             return 0
         res = apply(p, target)
+    note = getattr(target, "reset_note", "")
     if a.json:
-        emit_json(res)
+        emit_json(dict(res, reset_note=note))
     else:
-        print(f"switched to version {res['version']} ({res['sent']} files sent), verified, soft reset")
+        print(f"switched to version {res['version']} ({res['sent']} files sent), verified, "
+              + (note or "soft reset"))
     return 0

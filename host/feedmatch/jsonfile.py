@@ -75,3 +75,15 @@ def number_list(data: dict[str, Any], key: str, where: str, *, max_len: int | No
             raise InputError(f"{where}: field '{key}[{i}]' must be > 0, got {x}")
         out.append(float(x))
     return out
+
+
+def write_json_with_backup(path: str | Path, data: dict[str, Any]) -> None:
+    """Replace a JSON file atomically, keeping the previous copy as <name>.bak."""
+    import shutil
+
+    p = Path(path)
+    if p.exists():
+        shutil.copy2(p, str(p) + ".bak")
+    tmp = p.with_suffix(p.suffix + ".tmp")
+    tmp.write_text(json.dumps(data, indent=1) + "\n")
+    tmp.replace(p)
