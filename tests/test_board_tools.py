@@ -346,7 +346,8 @@ def test_deploy_through_mpremote_to_the_unix_port(tmp_path, micropython):
         assert r.returncode == 0, r.stderr
         v = json.loads(r.stdout)["version"]
         assert (root / "fm" / "current").read_text() == v
-        assert (root / "fm" / v / "fmlogic" / "search.py").read_bytes() == (FIRMWARE / "fmlogic" / "search.py").read_bytes()
+        sent = root / "fm" / v / "fmlogic" / "search.py"
+        assert sent.read_bytes() == (FIRMWARE / "fmlogic" / "search.py").read_bytes()
         assert json.loads((root / "config.json").read_text())["board"] == "esp32"
         # The board "reboots"; a second deploy of the same version sends nothing.
         state["board"][0].kill()
