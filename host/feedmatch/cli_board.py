@@ -26,6 +26,9 @@ def cmd_fit_box(a: argparse.Namespace) -> int:
         return 0
     print(f"fitted from {res['traces']} tunes ({res['readings']} readings); "
           f"rms |gamma| residual {res['rms_gamma_residual']:.4f}")
+    if res["traces"] < 40 or res["rms_gamma_residual"] > 0.05:
+        print("caution: few tunes or a poor fit; treat these values as rough and log more tunes "
+              "(a hundred or more across the bands) before writing them into the board")
     print(f"coupler: reflected/forward gain {res['coupler_gain_ratio_db']:+.2f} dB, "
           f"leakage at 28 MHz {res['coupler_leak_28mhz']:.3f} (directivity about "
           f"{-20 * __import__('math').log10(max(res['coupler_leak_28mhz'], 1e-4)):.0f} dB)")
