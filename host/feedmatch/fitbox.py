@@ -148,8 +148,10 @@ def fit_elements(nominal: Network, traces: list[Trace], max_traces: int = 400, m
         sl, sc, zl = unpack(p)
         gin = _predict(nominal, sl, sc, f, bl, bc, sh, zl[owner], complex_out=True)
         leak = (f / 28e6) * (p[nl + nc + 1] + 1j * p[nl + nc + 2])
-        # Reflected power read = gain * |gamma + leakage|^2 + a small offset (detector offset).
-        pred = np.sqrt(np.exp(2 * p[nl + nc]) * np.abs(gin + leak) ** 2 + (p[nl + nc + 3] * 0.1) ** 2)
+        # Reflected over forward read = gain * |gamma + d| / |1 + gamma d|, plus a small offset.
+        # The leakage spoils both ports: the forward sample carries 1 + gamma * leakage.
+        ratio = np.abs(gin + leak) / np.abs(1 + gin * leak)
+        pred = np.sqrt(np.exp(2 * p[nl + nc]) * ratio ** 2 + (p[nl + nc + 3] * 0.1) ** 2)
         prior = p[:ne] / PRIOR_SIGMA * 0.02
         return np.concatenate([pred - g, prior])
 
