@@ -32,14 +32,6 @@ def _rows(db):
     return rows
 
 
-def _board_seq(vs):
-    from fmlogic.memory import Records
-
-    r = Records(str(vs.dir), 10000)
-    r.load()
-    return r.seq
-
-
 from feedmatch.demo import _wait  # noqa: E402
 
 
@@ -166,7 +158,7 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
         stop2 = threading.Event()
         th2 = threading.Thread(target=lg2.run, args=(stop2,), daemon=True)
         th2.start()
-        want = _board_seq(vs)
+        want = vs.records_on_flash()
         assert _wait(lambda: lg2.last_committed >= want, 20), (lg2.last_committed, want, lg2.status,
                                                                 th2.is_alive(), p.returncode, lg2.last_error)
         stop2.set()

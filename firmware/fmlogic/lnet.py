@@ -13,18 +13,7 @@ from array import array
 
 SHUNT_TX = 0
 SHUNT_ANT = 1
-SHUNT_NAMES = ("tx", "ant")
 TWO_PI = 6.283185307179586
-
-
-def shunt_code(name):
-    if name in (0, 1):
-        return name
-    if name == "tx":
-        return SHUNT_TX
-    if name == "ant":
-        return SHUNT_ANT
-    raise ValueError("shunt must be 'tx' or 'ant'")
 
 
 class Bank:

@@ -87,7 +87,6 @@ class Memory:
         self.last = None
         self.dirty = False
         self.load_error = None
-        self.writes = 0
 
     def bin_of(self, f_hz):
         return int(f_hz // self.bin_hz)
@@ -171,7 +170,6 @@ class Memory:
         head = "FMMEM 1 %d %d %04X\n" % (self.gen, len(keys), crc16(body))
         atomic_write(self.d, MEM, head.encode() + body, BAK, NEW)
         self.dirty = False
-        self.writes += 1
         return True
 
     def listing(self):

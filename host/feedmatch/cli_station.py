@@ -6,7 +6,7 @@ import argparse
 import sys
 import time
 
-from .errors import InputError, LinkError
+from .errors import LinkError
 
 
 def _link(a: argparse.Namespace):
@@ -141,7 +141,7 @@ def cmd_virtual_board(a) -> int:
     import signal
     import tempfile
 
-    def _term(signum, frame):
+    def _term(_signum, _frame):
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, _term)
@@ -232,5 +232,3 @@ def add_commands(sub) -> None:
         return
     add_board_commands(sub)
 
-
-__all__ = ["add_commands", "InputError"]

@@ -64,7 +64,8 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
                 vs.play(step, target)
                 played += 1
         # Everything the board recorded must reach the logbook.
-        _wait(lambda: lg.last_committed >= _board_seq(vs), 10)
+        want = vs.records_on_flash()
+        _wait(lambda: lg.last_committed >= want, 10)
     finally:
         stop.set()
         th.join(timeout=10)
@@ -99,14 +100,6 @@ def damaged(ant, n: int):
     if isinstance(ant, Monopole):
         return Monopole(ant.height_m, ant.radius_m, ant.ground_loss_ohm + 2.5 * n)
     return ant
-
-
-def _board_seq(vs: VirtualStation) -> int:
-    from fmlogic.memory import Records
-
-    r = Records(str(vs.dir), 10000)
-    r.load()
-    return r.seq
 
 
 def _wait(pred, timeout: float) -> bool:

@@ -105,7 +105,7 @@ class BoardLink:
         except (serial.SerialException, OSError) as e:
             raise LinkError(f"write failed: {e}") from None
 
-    def pump(self, wait_s: float = 0.05) -> int:
+    def pump(self) -> int:
         """Read what has arrived; events go to on_event/the queue. Returns frames read."""
         if self.ser is None:
             raise LinkError("link is closed")

@@ -176,7 +176,7 @@ def parse_shunt(s: str | int) -> int:
     raise InputError(f"shunt must be 'tx' or 'ant', got {s!r}")
 
 
-def _cascade(zs, yc, zl, shunt_ant: np.ndarray | bool, y_in=0.0, y_out=0.0):
+def _cascade(zs, yc, zl, shunt_ant: bool, y_in=0.0, y_out=0.0):
     """Input impedance and, per unit input voltage, branch quantities.
 
     Returns z_in, i_l (current in the inductor), v_c (voltage across the
@@ -184,24 +184,19 @@ def _cascade(zs, yc, zl, shunt_ant: np.ndarray | bool, y_in=0.0, y_out=0.0):
     """
     with np.errstate(divide="ignore", invalid="ignore"):
         yl = 1.0 / zl
-        # ant: capacitor (and output stray) across the load, then series L.
-        yp = yl + yc + y_out
-        zp = 1.0 / yp
-        z_ant = zs + zp
-        i_ant = 1.0 / z_ant
-        v_c_ant = i_ant * zp
-        p_ant = np.abs(v_c_ant) ** 2 * yl.real
-        # tx: series L into the load, capacitor across the input.
-        zt = zs + 1.0 / (yl + y_out)
-        yt = 1.0 / zt
-        z_tx = 1.0 / (yt + yc)
-        i_tx = yt
-        v_out_tx = 1.0 - i_tx * zs
-        p_tx = np.abs(v_out_tx) ** 2 * yl.real
-        z_in = np.where(shunt_ant, z_ant, z_tx)
-        i_l = np.where(shunt_ant, i_ant, i_tx)
-        v_c = np.where(shunt_ant, v_c_ant, 1.0 + 0 * v_c_ant)
-        p_load = np.where(shunt_ant, p_ant, p_tx)
+        if shunt_ant:
+            # Capacitor (and output stray) across the load, then the series inductor.
+            zp = 1.0 / (yl + yc + y_out)
+            z_in = zs + zp
+            i_l = 1.0 / z_in
+            v_c = i_l * zp
+            p_load = np.abs(v_c) ** 2 * yl.real
+        else:
+            # Series inductor into the load, capacitor across the input (V_in).
+            i_l = 1.0 / (zs + 1.0 / (yl + y_out))
+            z_in = 1.0 / (i_l + yc)
+            v_c = np.ones_like(i_l)
+            p_load = np.abs(1.0 - i_l * zs) ** 2 * yl.real
         if np.any(y_in):
             z_in = 1.0 / (1.0 / z_in + y_in)
     return z_in, i_l, v_c, p_load

@@ -51,8 +51,7 @@ def relay_ops(a: tuple[int, int, int], b: tuple[int, int, int]) -> int:
     return _popcount(a[0] ^ b[0]) + _popcount(a[1] ^ b[1]) + (1 if a[2] != b[2] else 0)
 
 
-def _hint_for(net: Network, load: Load, table_g: np.ndarray, rng: random.Random,
-              cfg: ScoreConfig) -> tuple[int, int, int]:
+def _hint_for(net: Network, load: Load, rng: random.Random, cfg: ScoreConfig) -> tuple[int, int, int]:
     """A stored state as memory would hold it: the optimum half a bin away
     (here 1 % in frequency, load held), or with some probability a stale one."""
     if rng.random() < cfg.stale_hint_fraction:
@@ -77,7 +76,7 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
     oracle_g = float(gm.flat[idx])
     bank = nominal.firmware_bank()
     meter = det.meter()
-    hint = _hint_for(true_net, load, gm, rng, cfg) if cfg.strategy == "recall" else None
+    hint = _hint_for(true_net, load, rng, cfg) if cfg.strategy == "recall" else None
     s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget, hint)
     prev = (0, 0, 1)
     ops = 0

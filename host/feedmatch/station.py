@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import math
 import random
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from . import bands
-from .antenna import Monopole, antenna_from_dict
+from .antenna import antenna_from_dict
 from .detector import DetectorModel, detector_from_dict
 from .errors import InputError
 from .jsonfile import check_keys, load_json, number
@@ -121,12 +121,10 @@ class Station:
     site: str
     network: Network
     antenna: Any
-    antenna_desc: dict
     detector: DetectorModel
     script: list[Step]
     board_config: dict
     seed: int = 1
-    extra: dict = field(default_factory=dict)
 
     def model(self, clock=None) -> StationModel:
         hot = self.board_config.get("power", {}).get("hot_switch_w", 30.0)
@@ -205,13 +203,9 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
         raise InputError(f"{where}: field 'seed' must be an integer")
     name = d.get("name", "station")
     site = d.get("site", "")
-    return Station(str(name), str(site), net, antenna, ant_d, det, script, cfg, seed)
+    return Station(str(name), str(site), net, antenna, det, script, cfg, seed)
 
 
 def load_station(path: str | Path | None = None) -> Station:
     p = Path(path) if path else DEFAULT_STATION
     return station_from_dict(load_json(p, "station"), f"station file {p}", p.parent)
-
-
-def demo_antenna() -> Monopole:
-    return Monopole(4.5, 0.012, 6.0)

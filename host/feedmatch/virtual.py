@@ -20,7 +20,6 @@ import sys
 import threading
 import time
 import tty
-from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import InputError
@@ -36,21 +35,14 @@ def find_micropython() -> str | None:
     return shutil.which("micropython")
 
 
-@dataclass
-class TxState:
-    power_w: float = 0.0
-    freq_hz: float = 0.0
-
-
 class VirtualStation:
     def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
-                 wdt_s: float = 3.0, quiet: bool = True):
+                 wdt_s: float = 3.0):
         self.station = station
         self.dir = Path(workdir).resolve()  # the firmware runs with firmware/ as its cwd
         self.dir.mkdir(parents=True, exist_ok=True)
         self.use_python = use_python
         self.wdt_s = wdt_s
-        self.quiet = quiet
         self.t0 = time.monotonic()
         self.model: StationModel = station.model(clock=lambda: time.monotonic() - self.t0)
         self.lock = threading.RLock()
@@ -62,7 +54,6 @@ class VirtualStation:
         self._ser_conn: socket.socket | None = None
         self.master_fd = -1
         self.pty_path = ""
-        self.requests = 0
         self.on_set = None  # test hook, called after each relay change
 
     # -- life cycle -------------------------------------------------------------
@@ -145,13 +136,18 @@ class VirtualStation:
                 pass
 
     # -- the board's sensors ----------------------------------------------------
-    def _ctl_loop(self) -> None:
-        self.ctl_srv.settimeout(0.2)
+    def _accepted(self, srv: socket.socket):
+        """Connections to srv as they come, until the station stops."""
+        srv.settimeout(0.2)
         while not self._stop.is_set():
             try:
-                conn, _ = self.ctl_srv.accept()
+                conn, _ = srv.accept()
             except (TimeoutError, OSError):
                 continue
+            yield conn
+
+    def _ctl_loop(self) -> None:
+        for conn in self._accepted(self.ctl_srv):
             threading.Thread(target=self._serve_ctl, args=(conn,), daemon=True).start()
 
     def _serve_ctl(self, conn: socket.socket) -> None:
@@ -177,7 +173,6 @@ class VirtualStation:
 
     def _answer(self, parts: list[str]) -> str:
         self.last_ask = time.monotonic()
-        self.requests += 1
         m = self.model
         with self.lock:
             if not parts:
@@ -207,12 +202,7 @@ class VirtualStation:
 
     # -- the serial link --------------------------------------------------------
     def _ser_loop(self) -> None:
-        self.ser_srv.settimeout(0.2)
-        while not self._stop.is_set():
-            try:
-                conn, _ = self.ser_srv.accept()
-            except (TimeoutError, OSError):
-                continue
+        for conn in self._accepted(self.ser_srv):
             with self.lock:
                 old = self._ser_conn
                 self._ser_conn = conn
@@ -259,6 +249,14 @@ class VirtualStation:
                     conn.sendall(data)
                 except OSError:
                     pass
+
+    def records_on_flash(self) -> int:
+        """The last tune record sequence number the board has written to its flash."""
+        from fmlogic.memory import Records
+
+        r = Records(str(self.dir), 10000)
+        r.load()
+        return r.seq
 
     def mangle_out(self, data: bytes) -> bytes:
         """Fault injection hook on the board-to-host bytes (tests replace it)."""
