@@ -53,10 +53,22 @@ def cmd_tune(a) -> int:
     from .cli import emit_json
 
     f = bands.parse_freq(a.freq) if a.freq else 0.0
+    deadline = time.monotonic() + a.wait
     with _link(a) as ln:
-        before = ln.request("status")["seq"]
-        ln.request("tune", {"freq_hz": f})
-        rec = ln.wait_event("record", lambda o: o.get("seq", 0) > before, timeout=a.wait)
+        while True:
+            before = ln.request("status")["seq"]
+            try:
+                ln.request("tune", {"freq_hz": f})
+                break
+            except LinkError as e:
+                # The board is finishing a tune of its own (a carrier was already keyed):
+                # let it end, then ask.
+                if "busy" not in str(e) or time.monotonic() > deadline:
+                    raise
+                ln.wait_event("record", lambda o, b=before: o.get("seq", 0) > b,
+                              timeout=max(0.1, deadline - time.monotonic()))
+        rec = ln.wait_event("record", lambda o: o.get("seq", 0) > before,
+                            timeout=max(0.1, deadline - time.monotonic()))
         if rec is None:
             recs = ln.records_since(before)
             rec = recs[0] if recs else None
