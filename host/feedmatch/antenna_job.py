@@ -32,10 +32,19 @@ def run_antenna(a: argparse.Namespace) -> int:
 
     ant = load_antenna(a.antenna)
     f = np.array(bands.parse_sweep(a.sweep))
+    how = None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        z = np.asarray(ant.impedance(f), dtype=complex)
+        if hasattr(ant, "sweep"):
+            how = ant.sweep(f, exact=a.exact)
+            z = how.z
+        else:
+            z = np.asarray(ant.impedance(f), dtype=complex)
     notes = [str(w.message) for w in caught]
+    method = None
+    if how is not None:
+        method = {"engine": f"necpp {how.engine}", "solved": how.n_solved, "points": len(f),
+                  "est_err": how.est_err}
     g = np.abs((z - 50) / (z + 50))
     swr = np.where(g < 1, (1 + g) / np.maximum(1 - g, 1e-12), np.inf)
     rows = []
@@ -49,14 +58,20 @@ def run_antenna(a: argparse.Namespace) -> int:
                      "swr_50": (1 + gc) / (1 - gc) if gc < 1 else None})
     res = resonances(f, z)
     if a.s1p:
-        write_s1p(a.s1p, f, z, comment=f"feedmatch antenna sweep: {ant.describe()}")
+        comment = f"feedmatch antenna sweep: {ant.describe()}"
+        if method is not None:
+            comment += "\n" + _method_line(method)
+        write_s1p(a.s1p, f, z, comment=comment)
     if a.plot:
         _plot(a.plot, f, z, swr, ant.describe())
     if a.json:
-        emit_json({"antenna": ant.describe(), "bands": rows, "resonances": res, "warnings": notes,
+        emit_json({"antenna": ant.describe(), "method": method, "bands": rows, "resonances": res,
+                   "warnings": notes,
                    "sweep": {"freq_hz": f.tolist(), "r_ohm": z.real.tolist(), "x_ohm": z.imag.tolist()}})
         return 0
     print(ant.describe())
+    if method is not None:
+        print(_method_line(method))
     for n in notes:
         print(f"warning: {n}")
     print(f"{'band':>5} {'MHz':>8} {'R ohm':>9} {'X ohm':>10} {'SWR 50':>8}")
@@ -70,6 +85,13 @@ def run_antenna(a: argparse.Namespace) -> int:
     if a.plot:
         print(f"wrote {a.plot}")
     return 0
+
+
+def _method_line(m: dict) -> str:
+    if m["solved"] == m["points"]:
+        return f"{m['engine']}: solved at all {m['points']} frequencies"
+    return (f"{m['engine']}: solved at {m['solved']} of {m['points']} frequencies, the rest interpolated "
+            f"(AAA rational fit, estimated error {100 * m['est_err']:.2f} % of |Z| + 5 ohm; --exact solves all)")
 
 
 def _plot(path: str, f, z, swr, title: str) -> None:

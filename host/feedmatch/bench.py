@@ -122,7 +122,7 @@ def run_bench(quick: bool = False, only: str | None = None) -> dict[str, Any]:
         except ImportError:
             pass
         else:
-            res["nec_sweep_300_s"] = bench_nec_sweep()
+            res.update(bench_nec_sweep())
     if want("boxes"):
         try:
             from .boxes import bench_boxes

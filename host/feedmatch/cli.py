@@ -231,6 +231,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--sweep", default="1.8e6:30e6:300", help="start:stop:points in Hz")
     s.add_argument("--plot", help="PNG of R, X and SWR")
     s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
+    s.add_argument("--exact", action="store_true",
+                   help="solve NEC-2 at every frequency instead of sampling adaptively and interpolating")
     s.add_argument("--json", action="store_true")
     s.set_defaults(fn=cmd_antenna)
 
