@@ -213,3 +213,29 @@ def test_segment_rule_warning():
     d = _vertical(5.0, 0.08)  # 0.24 m segments are only 6 radii
     with pytest.warns(nec.NecWarning, match="radii"):
         nec.sweep(d, [7e6])
+
+
+def test_drawn_vertical_corpus_is_physical():
+    # The scorer's default vertical corpus (NEC-2): every frequency in an amateur band, every
+    # radiator at most 0.42 wavelength, R > 0, and a plain radiator shorter than 0.2 wavelength
+    # is capacitive (a monopole below its first resonance; Balanis, Antenna Theory, 3rd ed.).
+    from feedmatch import bands
+    from feedmatch.loads import MAX_H_OVER_LAMBDA, drawn_verticals, vertical_loads
+
+    rng = np.random.default_rng(5)
+    drawn = drawn_verticals(90, rng)
+    assert sum(len(fs) for _, fs in drawn) == 90
+    checked = 0
+    for d, fs in drawn:
+        z = nec.sweep(d, fs)
+        h = d["radiator"]["height_m"]
+        for f, zz in zip(fs, z):
+            assert any(b.low_hz <= f <= b.high_hz for b in bands.HF_BANDS)
+            assert h * f / C0 <= MAX_H_OVER_LAMBDA
+            assert zz.real > 0
+            if "top_hat" not in d and h * f / C0 < 0.2:
+                assert zz.imag < 0
+                checked += 1
+    assert checked > 10
+    loads = vertical_loads(90, seed=5)
+    assert [ld.freq_hz for ld in loads] == [f for _, fs in drawn for f in fs]

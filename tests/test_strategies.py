@@ -42,8 +42,8 @@ def test_model_strategy_against_the_oracle(scored):
 
 
 def test_short_verticals_are_found():
-    # Strongly reactive feed points (|gamma| up to 0.999): the closed-form monopole (Balanis) over
-    # random heights, losses and bands; reference: the exhaustive oracle.
+    # Strongly reactive feed points (|gamma| up to 0.999): NEC-2 verticals with radials over
+    # random heights, soils and bands; reference: the exhaustive oracle.
     from feedmatch.loads import vertical_loads
 
     res = score(vertical_loads(150, seed=21), NET, NET, ScoreConfig(strategy="model"), workers=1)

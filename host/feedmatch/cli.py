@@ -114,7 +114,7 @@ def cmd_loads(a: argparse.Namespace) -> int:
             raise InputError("--verticals needs a positive count")
         from .loads import vertical_loads
 
-        loads = vertical_loads(a.verticals, seed=a.seed)
+        loads = vertical_loads(a.verticals, seed=a.seed, model=a.vertical_model)
     elif a.smith is not None:
         if a.smith < 1:
             raise InputError("--smith needs a positive count")
@@ -192,6 +192,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("loads", help="write a load corpus CSV for the scorer")
     s.add_argument("--smith", type=int, help="N loads spread evenly over the reflection disc")
     s.add_argument("--verticals", type=int, help="N feed-point loads of short and medium verticals")
+    s.add_argument("--vertical-model", choices=["nec", "closed-form"], default="nec",
+                   help="--verticals from NEC-2 antennas with radials (default) or the closed-form monopole")
     s.add_argument("--antenna", help="loads of an antenna over the bands")
     s.add_argument("--bands", default="all")
     s.add_argument("--points", type=int, default=11, help="frequencies per band (--antenna)")

@@ -101,21 +101,78 @@ def smith_loads(n: int, seed: int = 1, z0: float = 50.0, gamma_max: float = 0.97
     return out
 
 
-def vertical_loads(n: int, seed: int = 1) -> list[Load]:
-    """n feed-point impedances of verticals 2.5-9 m tall with 1-20 ohm of ground loss, at random
-    frequencies in the amateur bands (closed-form monopole, heights up to 0.42 wavelength):
-    the strongly reactive short-vertical loads this box exists for."""
-    from .antenna import Monopole
+# Soil for the drawn verticals: conductivity S/m, relative permittivity.  The usual
+# modelling classes of the trade (poor / average / very good ground; common practice,
+# values from memory).
+SOILS = ((0.001, 5.0), (0.005, 13.0), (0.03, 20.0))
+MAX_H_OVER_LAMBDA = 0.42  # short and medium verticals: below the half-wave anti-resonance
 
+
+def _draw_band_freqs(rng, h: float, k: int) -> list[float]:
+    fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= MAX_H_OVER_LAMBDA]
+    out = []
+    for _ in range(k):
+        b = fit[int(rng.integers(len(fit)))]
+        out.append(round(b.low_hz + (b.high_hz - b.low_hz) * rng.random(), 1))
+    return out
+
+
+def vertical_loads(n: int, seed: int = 1, model: str = "nec") -> list[Load]:
+    """n feed-point impedances of verticals 2.5-9 m tall at random frequencies in the amateur
+    bands (heights up to 0.42 wavelength): the strongly reactive short-vertical loads this box
+    exists for.
+
+    model "nec" (the default) draws whole antennas and solves them with NEC-2: a radiator
+    12-40 mm thick (thinner on the shortest), 4, 8 or 16 radials of 2-8 m over poor, average
+    or very good soil, a quarter of them with a four-wire top hat, 40 frequencies each
+    (results are cached on disk).
+    model "closed-form" is the fast fallback: the induced-EMF monopole with 1-20 ohm of ground
+    loss, one antenna per load.
+    """
     rng = np.random.default_rng(seed)
     out: list[Load] = []
-    while len(out) < n:
-        h = rng.uniform(2.5, 9.0)
-        loss = rng.uniform(1.0, 20.0)
-        b = bands.HF_BANDS[int(rng.integers(len(bands.HF_BANDS)))]
-        f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
-        if h * f / 299_792_458.0 > 0.42:
-            continue
-        z = complex(Monopole(h, 0.012, loss).impedance(f))
-        out.append(Load(round(f, 1), z.real, z.imag))
+    if model == "closed-form":
+        from .antenna import Monopole
+
+        while len(out) < n:
+            h = rng.uniform(2.5, 9.0)
+            loss = rng.uniform(1.0, 20.0)
+            b = bands.HF_BANDS[int(rng.integers(len(bands.HF_BANDS)))]
+            f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
+            if h * f / 299_792_458.0 > MAX_H_OVER_LAMBDA:
+                continue
+            z = complex(Monopole(h, 0.012, loss).impedance(f))
+            out.append(Load(round(f, 1), z.real, z.imag))
+        return out
+    if model != "nec":
+        raise InputError(f"vertical model must be 'nec' or 'closed-form', got {model!r}")
+    from .nec import sweep
+
+    for desc, fs in drawn_verticals(n, rng):
+        z = sweep(desc, fs)
+        out.extend(Load(f, zz.real, zz.imag) for f, zz in zip(fs, z))
+    return out
+
+
+def drawn_verticals(n: int, rng, per: int = 40) -> list[tuple[dict, list[float]]]:
+    """The NEC-2 antennas behind vertical_loads: (validated description, frequencies) pairs
+    with n frequencies in all."""
+    from .nec import validate
+
+    out: list[tuple[dict, list[float]]] = []
+    left = n
+    while left > 0:
+        k = min(per, left)
+        h = round(float(rng.uniform(2.5, 9.0)), 2)
+        sigma, er = SOILS[int(rng.integers(len(SOILS)))]
+        d = {"kind": "nec",
+             # thin enough that a segment stays eight radii long (NEC-2's thin-wire rule)
+             "radiator": {"height_m": h, "diameter_m": round(float(rng.uniform(0.012, min(0.04, h / 90))), 4)},
+             "ground": {"type": "radials", "conductivity_s_m": sigma, "permittivity": er,
+                        "radials": int(rng.choice([4, 8, 16])),
+                        "radial_length_m": round(float(rng.uniform(2.0, 8.0)), 2)}}
+        if rng.random() < 0.25:
+            d["top_hat"] = {"wires": 4, "length_m": round(float(rng.uniform(0.5, 1.5)), 2)}
+        out.append((validate(d, "drawn vertical"), _draw_band_freqs(rng, h, k)))
+        left -= k
     return out
