@@ -167,7 +167,11 @@ class Strategy:
                 if predict is not None:
                     # MicroPython's sort is not stable: break ties explicitly.
                     cands.sort(key=lambda st: (predict(st), st))
-                    cands = cands[:4]
+                    if step > 1:
+                        cands = cands[:4]
+                    # At the finest step all neighbours stay, in the model's order:
+                    # with a high-Q load a misfit model can rank the one way
+                    # out last, and the fallback grid is too coarse to find it.
                 for s in cands:
                     g = yield from self._measure(s)
                     if g < bg:
