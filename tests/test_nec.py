@@ -200,6 +200,10 @@ def test_top_hat_and_coil_lower_the_resonance():
     ({"radiator": {"height_m": 5, "diameter_m": 0.02}, "ground": {"type": "swamp"}}, "'type'"),
     ({"radiator": {"height_m": 5, "diameter_m": 0.02}, "coil": {"height_m": 6, "inductance_uh": 3},
       "ground": {"type": "perfect"}}, "below the top"),
+    # 120 radials of 60 m: 2900 segments, minutes per frequency; refused before NEC-2 starts
+    ({"radiator": {"height_m": 5, "diameter_m": 0.02},
+      "ground": {"type": "radials", "conductivity_s_m": 0.01, "permittivity": 13, "radials": 120,
+                 "radial_length_m": 60}}, "segments up to 30 MHz"),
 ])
 def test_bad_geometry_is_a_clear_error(desc, msg):
     with warnings.catch_warnings():
@@ -213,6 +217,11 @@ def test_segment_rule_warning():
     d = _vertical(5.0, 0.08)  # 0.24 m segments are only 6 radii
     with pytest.warns(nec.NecWarning, match="radii"):
         nec.sweep(d, [7e6])
+    big = _vertical(5.0, 0.02, {"type": "radials", "conductivity_s_m": 0.01, "permittivity": 13,
+                                "radials": 60, "radial_length_m": 12})
+    # 12 segments per wavelength at 30 MHz (9.99 m): 15 per 12 m radial; the radiator's minimum 21
+    assert nec.segment_count(big, 30e6) == 21 + 60 * 15
+    assert any("s per frequency" in n for n in nec.check_segments(big, 30e6))
 
 
 def test_drawn_vertical_corpus_is_physical():
@@ -239,3 +248,17 @@ def test_drawn_vertical_corpus_is_physical():
     assert checked > 10
     loads = vertical_loads(90, seed=5)
     assert [ld.freq_hz for ld in loads] == [f for _, fs in drawn for f in fs]
+
+
+def test_cache_stays_bounded(monkeypatch):
+    monkeypatch.setattr(nec, "CACHE_KEEP", 3)
+    d = _vertical(5.0, 0.02)
+    for k in range(5):
+        nec.sweep(d, [7e6 + 1e4 * k])
+    files = sorted(nec.cache_dir().glob("*.json"), key=lambda p: p.stat().st_mtime)
+    assert len(files) == 3
+    calls = []
+    real = nec._Runner.__call__
+    monkeypatch.setattr(nec._Runner, "__call__", lambda self, f: calls.append(len(f)) or real(self, f))
+    nec.sweep(d, [7e6 + 1e4 * 4])  # the newest is still served from the cache
+    assert calls == []
