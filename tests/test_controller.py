@@ -81,6 +81,31 @@ def test_never_switches_above_hot_switch_limit(tmp_path):
     assert m.violations == [] and b.sets == 1
 
 
+def test_reverse_power_from_the_antenna_side_also_blocks_switching(tmp_path):
+    # 100 W arriving at the antenna port (the box wired backwards, or a transmitter nearby):
+    # the forward detector sees only leakage, so a guard on forward power alone would let the
+    # relays switch under full power.  The network carries that power whichever way it flows.
+    m, b, ctl = _setup(tmp_path)
+    run(ctl, 20)
+    m.key_reverse(100, 7.1e6)
+    run(ctl, 20)
+    assert "reverse power" in ctl.why
+    b.inbox += link.encode("Q", 5, "set", {"l": 3, "c": 3, "sh": 1})
+    b.inbox += link.encode("Q", 6, "bypass", {"on": False})
+    run(ctl, 50)
+    fr = {f[1]: f for f in _frames(b) if f[0] == "A"}
+    assert fr[5][2] == "err" and fr[5][3]["why"] == "hot"
+    assert fr[6][2] == "err" and fr[6][3]["why"] == "hot"
+    assert m.violations == [] and b.sets == 1
+    m.key_reverse(0)
+    run(ctl, 20)
+    assert ctl.why == "reverse power gone"
+    b.inbox += link.encode("Q", 7, "set", {"l": 3, "c": 3, "sh": 1})
+    run(ctl, 20)
+    fr = {f[1]: f for f in _frames(b) if f[0] == "A"}
+    assert fr[7][2] == "ok" and b.sets == 2  # below the limit the relays move again
+
+
 def test_power_rising_mid_tune_aborts_and_holds(tmp_path):
     m, b, ctl = _setup(tmp_path)
     m.key(10, 7.1e6)

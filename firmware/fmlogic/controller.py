@@ -42,6 +42,7 @@ class Controller:
         self.relays = (0, 0, 1)
         self.bypass = True
         self.fwd = 0.0
+        self.rf_w = 0.0
         self.ref = 0.0
         self.raw = (0.0, 0.0)
         self.freq = 0.0
@@ -114,18 +115,20 @@ class Controller:
         c = self.board.read_detectors()
         self.raw = c
         self.fwd, self.ref = self.meter.powers(c[0], c[1])
+        self.rf_w = self.meter.rf_present_w(c[0], c[1])
         return self.fwd, self.ref
 
     def _swr(self):
         return swr_from_gamma(gamma_from_powers(self.fwd, self.ref))
 
     def _switch(self, state, bypass):
-        """Change relays only with forward power at or below the hot-switch limit."""
+        """Change relays only with RF power at or below the hot-switch limit,
+        whichever way it flows through the coupler."""
         want = (state[0], state[1], state[2])
         if want == self.relays and bypass == self.bypass:
             return True
         self._read()
-        if self.fwd > self.p["hot_switch_w"]:
+        if self.rf_w > self.p["hot_switch_w"]:
             self.hot_refusals += 1
             return False
         self.board.set_relays(want[0], want[1], want[2], bypass)
@@ -148,6 +151,13 @@ class Controller:
         req = self.tune_req
         if fwd <= 0.0:
             self.freq = 0.0
+            if self.rf_w > self.p["min_tune_w"]:
+                if "reverse" not in self.why:
+                    self._set_state(self.state, "reverse power %.1f W from the antenna side: relays held "
+                                    "above the hot-switch limit; check the wiring and nearby "
+                                    "transmitters" % self.rf_w)
+            elif self.why.startswith("reverse power "):
+                self._set_state(self.state, "reverse power gone")
             if req is not None and self.board.ticks_diff(now, req["t"]) > self.t["rf_wait_ms"]:
                 self.tune_req = None
                 self._record(req.get("freq_hz", 0.0), self._state_list(), self._state_list(),

@@ -137,6 +137,14 @@ class Meter:
         self.ref = ref_cal
         self.min_fwd_w = float(min_fwd_w)
 
+    def rf_present_w(self, fwd_counts, ref_counts):
+        """The larger of the powers seen by either detector, with no threshold:
+        power coming in from the antenna side (a nearby transmitter, the box
+        wired backwards) shows on the reflected detector alone."""
+        pf = self.fwd.watts(fwd_counts)
+        pr = self.ref.watts(ref_counts)
+        return pf if pf > pr else pr
+
     def powers(self, fwd_counts, ref_counts):
         """(forward W, reflected W); forward 0.0 means no RF."""
         pf = self.fwd.watts(fwd_counts)

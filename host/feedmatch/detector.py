@@ -80,6 +80,21 @@ class DetectorModel:
         fs = self.full_scale()
         return (float(min(max(round(cf), 0), fs)), float(min(max(round(cr), 0), fs)))
 
+    def read_reverse(self, p_w: float, f_hz: float, rng: random.Random | None) -> tuple[float, float]:
+        """Raw (forward, reflected) counts with p_w flowing from the antenna port towards a
+        matched transmitter port: the reflected detector sees the wave, the forward one
+        only the coupler's leakage."""
+        if self.ideal:
+            return (0.0, p_w)
+        v_main, v_leak = self.port_voltages(p_w, 0j, f_hz)
+        cf = self._counts(v_leak, self.fwd_gain_db)
+        cr = self._counts(v_main, self.ref_gain_db)
+        if rng is not None and self.noise_counts > 0:
+            cf += rng.gauss(0.0, self.noise_counts)
+            cr += rng.gauss(0.0, self.noise_counts)
+        fs = self.full_scale()
+        return (float(min(max(round(cf), 0), fs)), float(min(max(round(cr), 0), fs)))
+
     def nominal_counts(self, p_w: float) -> float:
         """Noise-free counts of the nominal detector for p_w into a matched load."""
         return self._counts(math.sqrt(2.0 * 50.0 * p_w) / self.turns, 0.0)

@@ -43,6 +43,7 @@ class StationModel:
         self.rng = random.Random(seed)
         self.relays = (0, 0, 1, 1)
         self.tx_w = 0.0
+        self.rev_w = 0.0
         self.freq_hz = 0.0
         self.violations: list[Violation] = []
         self.switches = 0
@@ -53,6 +54,13 @@ class StationModel:
 
     def key(self, power_w: float, freq_hz: float) -> None:
         self.tx_w = max(0.0, power_w)
+        if freq_hz:
+            self.freq_hz = freq_hz
+
+    def key_reverse(self, power_w: float, freq_hz: float = 0.0) -> None:
+        """Power arriving from the antenna side (a nearby transmitter, or the box wired
+        with the transmitter on its antenna port); only while our own carrier is off."""
+        self.rev_w = max(0.0, power_w)
         if freq_hz:
             self.freq_hz = freq_hz
 
@@ -84,6 +92,8 @@ class StationModel:
         return math.inf if g >= 1 else (1 + g) / (1 - g)
 
     def read(self) -> tuple[float, float]:
+        if self.tx_w <= 0 and self.rev_w > 0:
+            return self.det.read_reverse(self.rev_w, self.freq_hz or 14e6, self.rng)
         if self.tx_w <= 0:
             if self.det.ideal:
                 return (0.0, 0.0)
@@ -98,8 +108,9 @@ class StationModel:
         new = (int(l), int(c), int(sh), int(byp))
         if new != self.relays:
             self.switches += 1
-            if self.tx_w > self.hot_switch_w:
-                self.violations.append(Violation(self.clock(), self.tx_w, self.relays, new))
+            p = max(self.tx_w, self.rev_w)
+            if p > self.hot_switch_w:
+                self.violations.append(Violation(self.clock(), p, self.relays, new))
         self.relays = new
 
 
