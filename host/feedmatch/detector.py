@@ -72,8 +72,10 @@ class DetectorModel:
             g2 = abs(gamma) ** 2
             return (p_inc_w, p_inc_w * g2)
         vf, vr = self.port_voltages(p_inc_w, gamma, f_hz)
-        cf = self._counts(vf, self.fwd_gain_db)
-        cr = self._counts(vr, self.ref_gain_db)
+        return self._adc(self._counts(vf, self.fwd_gain_db), self._counts(vr, self.ref_gain_db), rng)
+
+    def _adc(self, cf: float, cr: float, rng: random.Random | None) -> tuple[float, float]:
+        """Noise, rounding and the converter's range on a pair of detector outputs."""
         if rng is not None and self.noise_counts > 0:
             cf += rng.gauss(0.0, self.noise_counts)
             cr += rng.gauss(0.0, self.noise_counts)
@@ -87,13 +89,7 @@ class DetectorModel:
         if self.ideal:
             return (0.0, p_w)
         v_main, v_leak = self.port_voltages(p_w, 0j, f_hz)
-        cf = self._counts(v_leak, self.fwd_gain_db)
-        cr = self._counts(v_main, self.ref_gain_db)
-        if rng is not None and self.noise_counts > 0:
-            cf += rng.gauss(0.0, self.noise_counts)
-            cr += rng.gauss(0.0, self.noise_counts)
-        fs = self.full_scale()
-        return (float(min(max(round(cf), 0), fs)), float(min(max(round(cr), 0), fs)))
+        return self._adc(self._counts(v_leak, self.fwd_gain_db), self._counts(v_main, self.ref_gain_db), rng)
 
     def nominal_counts(self, p_w: float) -> float:
         """Noise-free counts of the nominal detector for p_w into a matched load."""
