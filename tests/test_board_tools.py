@@ -175,6 +175,63 @@ def test_calibration_against_the_virtual_station(tmp_path):
     assert d == pytest.approx(det.directivity_db(14.2e6), abs=2.5)
 
 
+def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
+    # A station whose reflected detector reads 1.5 dB hot (another diode, a divider off by
+    # 19 %): the forward pass alone copies the forward curve to both, so the reflected power
+    # reads wrong; the reversed pass recovers the reflected detector's own curve.
+    import io
+
+    from feedmatch.calibrate import run_calibrate
+    from feedmatch.station import load_station
+    from feedmatch.virtual import VirtualStation
+    from fmlogic.swr import Calibration
+
+    st = load_station()
+    st.antenna = FixedLoad(50.0, 0.0)
+    st.detector = DetectorModel(ref_gain_db=1.5)
+    vs = VirtualStation(st, tmp_path / "flash")
+    pty = vs.start()
+    cfgp = tmp_path / "cfg.json"
+    cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
+
+    class A:
+        port = pty
+        baud = 115200
+        timeout = 2.0
+        powers = "2,5,10,25,50,100"
+        config = str(cfgp)
+        samples = 16
+        yes = True
+        reflected = False
+
+    out = io.StringIO()
+    try:
+        time.sleep(1.0)
+        run_calibrate(A, io.StringIO(), out, on_prompt=lambda p: (vs.key(p, 14.2e6), time.sleep(0.2)))
+        vs.key(0)
+        after_forward = json.loads(cfgp.read_text())["detector"]
+        A.reflected = True
+        run_calibrate(A, io.StringIO(), out,
+                      on_prompt=lambda p: (vs.key_reverse(p, 14.2e6), time.sleep(0.2)))
+    finally:
+        vs.key(0)
+        vs.key_reverse(0)
+        vs.stop()
+    det = st.detector
+    text = out.getvalue()
+    assert "reverse the box" in text and "reflected points" in text
+    final = json.loads(cfgp.read_text())["detector"]
+    assert final["fwd"] == after_forward["fwd"]  # the reflected pass leaves the forward table alone
+    ref_cal = Calibration(final["ref"], 2.0)
+    copied = Calibration(after_forward["ref"], 2.0)
+    for p in (3.0, 7.0, 20.0, 70.0):
+        c = det.nominal_counts(p, "ref")  # the station's reflected detector (simulator truth)
+        assert ref_cal.watts(c) == pytest.approx(p, rel=0.04)
+        assert abs(copied.watts(c) / p - 1) > 0.15  # what the forward table alone would read
+    d = float(text.rsplit("effective directivity ", 1)[1].split(" dB")[0])
+    assert d == pytest.approx(det.directivity_db(14.2e6), abs=2.5)  # same coupler, other direction
+
+
 def test_calibration_rejects_a_non_monotonic_detector():
     from feedmatch.calibrate import fit_table
 

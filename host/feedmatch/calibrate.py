@@ -5,9 +5,12 @@ wattmeter reads; the board's raw forward and reflected readings are averaged.
 The forward curve becomes the (counts, watts) table; it must rise with power.
 The reflected reading into a dummy load is the coupler's leakage: it gives
 the effective directivity and so the lowest SWR the box can resolve.
-Both detectors are assumed alike (same diode, same divider), so the reflected
-table is the forward one; a builder who can reverse the coupler should
-calibrate the reflected side the same way (hardware_notes/calibration.md).
+The first pass writes the forward table into both detectors (alike when
+built alike).  The second pass (--reflected) calibrates the reflected detector
+on its own: with the box reversed (transmitter into the antenna port, dummy
+load on the transmitter port) the reflected detector sees the wave and the
+forward one sees the leakage, so a mismatched diode or divider no longer reads
+as SWR.
 """
 
 from __future__ import annotations
@@ -22,14 +25,14 @@ from .errors import InputError, LinkError
 from .jsonfile import load_json, write_json_with_backup
 
 
-def fit_table(points: list[tuple[float, float]]) -> list[list[float]]:
+def fit_table(points: list[tuple[float, float]], side: str = "forward") -> list[list[float]]:
     """Check and sort the (counts, watts) points into a calibration table."""
     pts = sorted(points, key=lambda p: p[1])
     for (c0, w0), (c1, w1) in zip(pts, pts[1:]):
         if w1 <= w0:
             raise InputError(f"two readings at the same power ({w0:g} W): repeat one")
         if c1 <= c0:
-            raise InputError(f"forward reading did not rise from {w0:g} W to {w1:g} W "
+            raise InputError(f"{side} reading did not rise from {w0:g} W to {w1:g} W "
                              f"({c0:.1f} -> {c1:.1f} counts): detector or wiring fault")
     if len(pts) < 3:
         raise InputError("at least 3 powers are needed for a calibration")
@@ -58,10 +61,20 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
         raise InputError(f"--powers must be a list of watts, got '{a.powers}'") from None
     if len(powers) < 3 or any(p <= 0 for p in powers):
         raise InputError("--powers needs at least 3 positive powers")
-    print("Calibration into a 50 ohm dummy load. Key each power with the transmitter into the box,"
-          " with the dummy load on the antenna port. Do not touch the box while keyed.", file=out)
+    reflected = bool(getattr(a, "reflected", False))
+    det_cfg = cfg.get("detector", {})
+    if reflected and not isinstance(det_cfg.get("fwd"), list):
+        raise InputError("run the forward pass first: the config has no detector.fwd table")
+    if reflected:
+        print("Reflected-detector calibration: reverse the box (transmitter into the ANT port, "
+              "50 ohm dummy load on the TX port). Key each power; do not touch the box while keyed.",
+              file=out)
+    else:
+        print("Calibration into a 50 ohm dummy load. Key each power with the transmitter into the box,"
+              " with the dummy load on the antenna port. Do not touch the box while keyed.", file=out)
+    main, leak = ("ref_counts", "fwd_counts") if reflected else ("fwd_counts", "ref_counts")
     points = []
-    refs = []
+    leaks = []
     with BoardLink(a.port, a.baud, timeout=a.timeout) as ln:
         ln.request("bypass", {"on": True})
         for p in powers:
@@ -78,29 +91,35 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
                     raise InputError("calibration stopped: no answer")
                 watts = float(line.strip()) if line.strip() else p
             r = ln.request("cal-read", {"n": max(1, min(64, a.samples))})
-            if r["fwd_counts"] <= 0:
-                raise LinkError(f"no forward reading at {watts:g} W: is the carrier keyed?")
-            points.append((float(r["fwd_counts"]), watts))
-            refs.append((float(r["ref_counts"]), watts))
+            if r[main] <= 0:
+                what = "reflected" if reflected else "forward"
+                hint = " Is the box reversed?" if reflected else ""
+                raise LinkError(f"no {what} reading at {watts:g} W: is the carrier keyed?{hint}")
+            points.append((float(r[main]), watts))
+            leaks.append((float(r[leak]), watts))
             print(f"  {watts:7.2f} W: forward {r['fwd_counts']:8.1f} counts, reflected "
                   f"{r['ref_counts']:6.1f} counts", file=out)
-    table = fit_table(points)
-    floor = float(cfg.get("detector", {}).get("floor_counts", 2.0))
-    cal = Calibration(table, floor)
-    # Residual reflection at the highest power: reflected counts through the same curve.
-    c_ref, w = refs[-1]
-    res = residual_directivity(w, cal.watts(c_ref))
-    old = cfg.get("detector", {})
-    cfg["detector"] = dict(old, fwd=table, ref=table, floor_counts=floor)
+    table = fit_table(points, "reflected" if reflected else "forward")
+    floor = float(det_cfg.get("floor_counts", 2.0))
+    # The leakage at the highest power, read through the other detector's curve.
+    other = Calibration(det_cfg["fwd"], floor) if reflected else Calibration(table, floor)
+    c_leak, w = leaks[-1]
+    res = residual_directivity(w, other.watts(c_leak))
+    if reflected:
+        cfg["detector"] = dict(det_cfg, ref=table, floor_counts=floor)
+    else:
+        cfg["detector"] = dict(det_cfg, fwd=table, ref=table, floor_counts=floor)
     from fmlogic import config as fcfg
 
     errs = fcfg.validate(cfg)
     if errs:
         raise InputError(f"the new calibration does not validate: {errs[0]}")
     write_json_with_backup(cfg_path, cfg)
-    print(f"residual reflected reading into the dummy load: |gamma| {res['gamma']:.3f} "
+    where = "towards the transmitter port" if reflected else "into the dummy load"
+    print(f"residual leakage {where}: |gamma| {res['gamma']:.3f} "
           f"(effective directivity {res['directivity_db']:.1f} dB): SWR below "
           f"{res['lowest_swr']:.2f} cannot be told apart", file=out)
-    print(f"wrote {len(table)} points into {cfg_path} (previous copy {cfg_path}.bak); "
+    side = "reflected" if reflected else "forward (and, until --reflected is run, reflected)"
+    print(f"wrote {len(table)} {side} points into {cfg_path} (previous copy {cfg_path}.bak); "
           "deploy it with feedmatch deploy", file=out)
     return 0

@@ -97,4 +97,7 @@ def add_board_commands(sub) -> None:
     s.add_argument("--config", required=True, help="board config JSON to update (a backup is kept)")
     s.add_argument("--samples", type=int, default=16)
     s.add_argument("--yes", action="store_true", help="take each power as confirmed (scripts and tests)")
+    s.add_argument("--reflected", action="store_true",
+                   help="second pass with the box reversed (transmitter on ANT, dummy load on TX): "
+                        "calibrates the reflected detector on its own")
     s.set_defaults(fn=cmd_calibrate)

@@ -91,9 +91,11 @@ class DetectorModel:
         v_main, v_leak = self.port_voltages(p_w, 0j, f_hz)
         return self._adc(self._counts(v_leak, self.fwd_gain_db), self._counts(v_main, self.ref_gain_db), rng)
 
-    def nominal_counts(self, p_w: float) -> float:
-        """Noise-free counts of the nominal detector for p_w into a matched load."""
-        return self._counts(math.sqrt(2.0 * 50.0 * p_w) / self.turns, 0.0)
+    def nominal_counts(self, p_w: float, side: str = "") -> float:
+        """Noise-free counts for p_w of a wave at a detector: the nominal one, or with the
+        gain of side "fwd" or "ref"."""
+        gain = {"": 0.0, "fwd": self.fwd_gain_db, "ref": self.ref_gain_db}[side]
+        return self._counts(math.sqrt(2.0 * 50.0 * p_w) / self.turns, gain)
 
     def calibration_points(self, p_min: float = 0.05, p_max: float = 200.0,
                            n: int = 16) -> list[tuple[float, float]]:

@@ -267,6 +267,11 @@ class VirtualStation:
         with self.lock:
             self.model.key(power_w, freq_hz)
 
+    def key_reverse(self, power_w: float, freq_hz: float = 0.0) -> None:
+        """Feed power in at the antenna port (StationModel.key_reverse)."""
+        with self.lock:
+            self.model.key_reverse(power_w, freq_hz)
+
     def press_button(self) -> None:
         with self.lock:
             self.model.button = True
