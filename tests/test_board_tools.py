@@ -129,6 +129,13 @@ def test_board_validator_same_under_unix_port(micropython):
 
 
 # -- calibration -------------------------------------------------------------------
+def _cal_args(pty, cfgp):
+    import argparse
+
+    return argparse.Namespace(port=pty, baud=115200, timeout=2.0, powers="2,5,10,25,50,100",
+                              config=str(cfgp), samples=16, yes=True, reflected=False)
+
+
 def test_calibration_against_the_virtual_station(tmp_path):
     from feedmatch.calibrate import run_calibrate
     from feedmatch.station import load_station
@@ -142,15 +149,7 @@ def test_calibration_against_the_virtual_station(tmp_path):
     cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
     old = cfgp.read_text()
 
-    class A:
-        port = pty
-        baud = 115200
-        timeout = 2.0
-        powers = "2,5,10,25,50,100"
-        config = str(cfgp)
-        samples = 16
-        yes = True
-
+    A = _cal_args(pty, cfgp)
     import io
 
     out = io.StringIO()
@@ -194,16 +193,7 @@ def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
     cfgp = tmp_path / "cfg.json"
     cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
 
-    class A:
-        port = pty
-        baud = 115200
-        timeout = 2.0
-        powers = "2,5,10,25,50,100"
-        config = str(cfgp)
-        samples = 16
-        yes = True
-        reflected = False
-
+    A = _cal_args(pty, cfgp)
     out = io.StringIO()
     try:
         time.sleep(1.0)
