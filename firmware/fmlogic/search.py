@@ -178,6 +178,19 @@ class Strategy:
                         bg = g
                         best = s
                         improved = True
+                        # Pattern move: while the same direction keeps paying, double
+                        # it, so a long shallow valley costs a few readings, not one
+                        # per code (Hooke and Jeeves, J. ACM 8(2), 1961).
+                        dl, dc = s[0] - l, s[1] - c
+                        k = 2
+                        while self._valid(best[0] + k * dl, best[1] + k * dc):
+                            t = (best[0] + k * dl, best[1] + k * dc, sh)
+                            gt = yield from self._measure(t)
+                            if gt >= bg:
+                                break
+                            bg = gt
+                            best = t
+                            k *= 2
                         break
         return best
 
