@@ -262,3 +262,13 @@ def test_cache_stays_bounded(monkeypatch):
     monkeypatch.setattr(nec._Runner, "__call__", lambda self, f: calls.append(len(f)) or real(self, f))
     nec.sweep(d, [7e6 + 1e4 * 4])  # the newest is still served from the cache
     assert calls == []
+
+
+@pytest.mark.parametrize("junk", ["", "{not json", '{"re": [1], "im": [2]}', '{"re": "x", "im": 3, "solved": 0}'])
+def test_damaged_cache_entry_is_recomputed_not_trusted(junk):
+    d = _vertical(5.0, 0.02)
+    z = nec.sweep(d, [7e6, 7.1e6])
+    (entry,) = nec.cache_dir().glob("*.json")
+    entry.write_text(junk)  # a torn write, a foreign file, a wrong shape
+    assert np.allclose(nec.sweep(d, [7e6, 7.1e6]), z, rtol=1e-12)
+    assert json.loads(entry.read_text())["solved"] == [0, 1]  # rewritten whole
