@@ -320,7 +320,7 @@ def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
     ctl = Controller(b, board_config(tune__strategy="model", memory__bin_hz=100.0), str(tmp_path))
     rng = random.Random(5)
     book = Logbook(tmp_path / "log.sqlite")
-    for ld in smith_loads(160, seed=12):
+    for ld in smith_loads(320, seed=12):  # the board keeps the last 256 records
         m.antenna = FixedLoad(ld.r_ohm, ld.x_ohm)
         m._zcache.clear()
         m._cache.clear()
@@ -342,7 +342,9 @@ def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
     assert r.returncode == 0, r.stderr
     res = json.loads(r.stdout)
     # Stated error: within 5 % for every element the tunes exercised at least 20 times, through the
-    # realistic detector with this box's drawn gain, offset and leakage errors (measured: under 2 %).
+    # realistic detector with this box's drawn gain, offset and leakage errors.  Measured from 256
+    # tunes on boxes 21-25: worst element 3.3 %; from 160 tunes one box's largest inductor was 18 %
+    # off, hence fit-box's caution below 200 tunes.
     for vals, drawn, n in ((res["inductors_uh"], box.network.inductors_uh, res["inductor_readings"]),
                            (res["capacitors_pf"], box.network.capacitors_pf, res["capacitor_readings"])):
         for v, d, k in zip(vals, drawn, n):

