@@ -467,9 +467,40 @@ class ModelFit(Strategy):
             yield from self._scan()
             yield from self._jumps()
         yield from self._polish()
+        if self.best_g > self.target_g:
+            yield from self._rows()
         if self._model_agrees():
             return  # the model explains the readings and knows nothing better
         yield from self._coarse_then_descend()
+
+    def _rows(self):
+        """Golden-section search along C on the neighbouring L codes.
+
+        With a high-Q load one L code moves the match by tens of C codes, so
+        the valley runs diagonally between L rows and no single-code step
+        reaches the next row's minimum; each row is unimodal in C.
+        """
+        l0, _, sh = self.best_state
+        for dl in (1, -1):
+            l = l0 + dl
+            if not self._valid(l, 0):
+                continue
+            lo, hi = 0, self.bank.c_max
+            while hi - lo > 3:
+                m1 = lo + (hi - lo) * 382 // 1000
+                m2 = hi - (hi - lo) * 382 // 1000
+                if m2 <= m1:
+                    m2 = m1 + 1
+                g1 = yield from self._measure((l, m1, sh))
+                g2 = yield from self._measure((l, m2, sh))
+                if g1 <= g2:
+                    hi = m2
+                else:
+                    lo = m1
+            for c in range(lo, hi + 1):
+                yield from self._measure((l, c, sh))
+        if self.best_state[0] != l0:
+            yield from self._descend(self.best_state, (2, 1))
 
     def _jumps(self):
         for _ in range(_MAX_JUMPS):
