@@ -152,10 +152,9 @@ class Controller:
         if fwd <= 0.0:
             self.freq = 0.0
             if self.rf_w > self.p["min_tune_w"]:
-                if "reverse" not in self.why:
-                    self._set_state(self.state, "reverse power %.1f W from the antenna side: relays held "
-                                    "above the hot-switch limit; check the wiring and nearby "
-                                    "transmitters" % self.rf_w)
+                held = "; relays held" if self.rf_w > self.p["hot_switch_w"] else ""
+                self._set_state(self.state, "reverse power from the antenna side" + held +
+                                ": check the wiring and nearby transmitters")
             elif self.why.startswith("reverse power "):
                 self._set_state(self.state, "reverse power gone")
             if req is not None and self.board.ticks_diff(now, req["t"]) > self.t["rf_wait_ms"]:

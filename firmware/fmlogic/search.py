@@ -485,19 +485,26 @@ class ModelFit(Strategy):
             l = l0 + dl
             if not self._valid(l, 0):
                 continue
-            lo, hi = 0, self.bank.c_max
-            while hi - lo > 3:
-                m1 = lo + (hi - lo) * 382 // 1000
-                m2 = hi - (hi - lo) * 382 // 1000
-                if m2 <= m1:
-                    m2 = m1 + 1
-                g1 = yield from self._measure((l, m1, sh))
-                g2 = yield from self._measure((l, m2, sh))
+            # Golden section on integer codes: each step keeps one interior point.
+            a, b = 0, self.bank.c_max
+            x1 = b - (b - a) * 618 // 1000
+            x2 = a + (b - a) * 618 // 1000
+            g1 = yield from self._measure((l, x1, sh))
+            g2 = yield from self._measure((l, x2, sh))
+            while b - a > 3:
                 if g1 <= g2:
-                    hi = m2
+                    b, x2, g2 = x2, x1, g1
+                    x1 = b - (b - a) * 618 // 1000
+                    if x1 >= x2:
+                        x1 = x2 - 1
+                    g1 = yield from self._measure((l, x1, sh))
                 else:
-                    lo = m1
-            for c in range(lo, hi + 1):
+                    a, x1, g1 = x1, x2, g2
+                    x2 = a + (b - a) * 618 // 1000
+                    if x2 <= x1:
+                        x2 = x1 + 1
+                    g2 = yield from self._measure((l, x2, sh))
+            for c in range(a, b + 1):
                 yield from self._measure((l, c, sh))
         if self.best_state[0] != l0:
             yield from self._descend(self.best_state, (2, 1))
