@@ -29,6 +29,7 @@ wire-order-dependent answers over real ground and is warned about.
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import math
@@ -190,8 +191,10 @@ def segment_count(desc: dict, f_max_hz: float) -> int:
     return n
 
 
+@functools.cache
 def engine() -> str:
-    """The installed necpp build, e.g. '2.3.4+feedmatch.1' for the fixed one."""
+    """The installed necpp build, e.g. '2.3.4+feedmatch.1' for the fixed one (looked up
+    once: it is part of every cache key)."""
     from importlib.metadata import PackageNotFoundError, version
 
     try:
@@ -213,8 +216,11 @@ def _warn_unfixed(desc: dict) -> None:
                       "(third_party/necpp/README.md)", NecWarning, stacklevel=3)
 
 
-def _build(necpp, nec, desc: dict, f_max_hz: float) -> tuple[int, int]:
-    """The geometry and ground; returns the feed tag and the coil tag (0 when none)."""
+FEED_TAG = 1  # the radiator's first wire, fed at its base segment
+
+
+def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
+    """The geometry and ground; returns the coil's tag (0 when none)."""
 
     def ok(rc: int, what: str) -> None:
         if rc != 0:
@@ -225,7 +231,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> tuple[int, int]:
     z_base = 0.0 if g["type"] == "perfect" else g["radial_height_m"]
     h = r["height_m"]
     a = r["diameter_m"] / 2
-    tag = 1
+    tag = FEED_TAG
     coil = desc.get("coil")
     nv = _nseg(h, f_max_hz, MIN_RADIATOR_SEGS)
     coil_tag = 0
@@ -269,7 +275,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> tuple[int, int]:
         ok(necpp.nec_gn_card(nec, 1, 0, 0, 0, 0, 0, 0, 0), "ground")
     else:
         ok(necpp.nec_gn_card(nec, 2, 0, g["permittivity"], g["conductivity_s_m"], 0, 0, 0, 0), "ground")
-    return 1, coil_tag
+    return coil_tag
 
 
 def _solve(desc: dict, f_mhz: list[float], f_max_hz: float) -> list[complex]:
@@ -283,14 +289,14 @@ def _solve(desc: dict, f_mhz: list[float], f_max_hz: float) -> list[complex]:
     for fm in f_mhz:
         nec = necpp.nec_create()
         try:
-            feed_tag, coil_tag = _build(necpp, nec, desc, f_max_hz)
+            coil_tag = _build(necpp, nec, desc, f_max_hz)
             rcs = []
             if coil is not None:
                 lh = coil["inductance_uh"] * 1e-6
                 rcs.append(necpp.nec_ld_card(nec, 0, coil_tag, 1, 1, 2 * math.pi * fm * 1e6 * lh / coil["q"],
                                              lh, 0.0))
             rcs.append(necpp.nec_fr_card(nec, 0, 1, fm, 0.0))
-            rcs.append(necpp.nec_ex_card(nec, 0, feed_tag, 1, 0, 1.0, 0, 0, 0, 0, 0))
+            rcs.append(necpp.nec_ex_card(nec, 0, FEED_TAG, 1, 0, 1.0, 0, 0, 0, 0, 0))
             rcs.append(necpp.nec_xq_card(nec, 0))
             if any(rcs):
                 raise InputError(f"NEC-2 failed at {fm:g} MHz: {necpp.nec_error_message()}")
