@@ -105,7 +105,8 @@ def test_deployed_tree_boots_on_the_unix_port_up_to_the_hardware(tmp_path, micro
     board = tmp_path / "board"
     board.mkdir()
     t = deploy.DirTarget(board)
-    deploy.apply(deploy.plan("rp2040", deploy.CONFIGS / "rp2040.json", compiled, t, tmp_path / "w"), t)
+    # Compiled for the unix port's own architecture: the viper kernels are machine code.
+    deploy.apply(deploy.plan("rp2040", deploy.CONFIGS / "rp2040.json", compiled, t, tmp_path / "w", arch="x64"), t)
     r = subprocess.run([micropython, "main.py"], cwd=str(board), capture_output=True, text=True, timeout=60)
     # The loader found the version, imported the app and the logic; only 'machine' is missing here.
     assert "machine" in (r.stderr + r.stdout), r.stderr + r.stdout

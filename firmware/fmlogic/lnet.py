@@ -72,23 +72,26 @@ def _tabulate(table, values):
 
 
 def _nearest(table, step, value):
-    # Binary weighting makes value/step a good first guess; a few neighbours
-    # absorb banks whose effective values are off nominal.
+    # Binary weighting makes value/step a good first guess; walking downhill a
+    # few codes absorbs banks whose effective values are off nominal.
     top = len(table) - 1
     if value <= 0.0:
         return 0
-    guess = int(value / step + 0.5)
-    if guess > top:
-        guess = top
-    best = guess
-    err = abs(table[guess] - value)
-    lo = guess - 3 if guess > 3 else 0
-    hi = guess + 3 if guess + 3 < top else top
-    for code in range(lo, hi + 1):
-        e = abs(table[code] - value)
-        if e < err:
+    best = int(value / step + 0.5)
+    if best > top:
+        best = top
+    err = abs(table[best] - value)
+    for d in (1, -1):
+        code = best + d
+        k = 0
+        while 0 <= code <= top and k < 3:
+            e = abs(table[code] - value)
+            if e >= err:
+                break
             err = e
             best = code
+            code += d
+            k += 1
     return best
 
 
@@ -121,6 +124,39 @@ def load_matched_by(bank, f_mhz, l_code, c_code, shunt):
         return 1.0 / (1.0 / z0 - yc) - zs
     except ZeroDivisionError:
         return None
+
+
+def mobius(bank, f_mhz, l_code, c_code, shunt):
+    """The state as a bilinear map of the load's reflection coefficient g:
+
+        gamma_in = (a g + b) / (c g + 1)
+
+    A two-port's input reflection is a Moebius transform of its load's
+    (Pozar, Microwave Engineering, 4th ed., section 4.3, from its S-parameters);
+    here from the ABCD matrix normalised to z0.  A reading |gamma| of this
+    state is therefore a circle in the plane of g, which is what the search
+    fits.  Losses are included (series R = X_L/Q_L, parallel G = B_C/Q_C).
+    """
+    z0 = bank.z0
+    w = TWO_PI * f_mhz
+    x = w * bank.lv[l_code] / z0
+    z = complex(x / bank.ql, x) if bank.ql > 0.0 else complex(0.0, x)
+    b = w * bank.cv[c_code] * 1e-6 * z0
+    y = complex(b / bank.qc, b) if bank.qc > 0.0 else complex(0.0, b)
+    zy = z * y
+    if shunt == SHUNT_ANT:
+        # A = 1 + zy, B = z, C = y, D = 1
+        al = 1.0 + zy - z - y + 1.0
+        be = 1.0 + zy + z - y - 1.0
+        ga = 1.0 + zy - z + y - 1.0
+        de = 1.0 + zy + z + y + 1.0
+    else:
+        # A = 1, B = z, C = y, D = 1 + zy
+        al = 2.0 - z - y + zy
+        be = z - y - zy
+        ga = y - z - zy
+        de = 2.0 + z + y + zy
+    return (al / de, be / de, ga / de)
 
 
 def gamma_of(z, z0):

