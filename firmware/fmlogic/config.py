@@ -23,6 +23,10 @@ DEFAULTS = {
         "ref": [[30.0, 0.05], [4000.0, 200.0]],
         "floor_counts": 2.0,
         "burst": 16,
+        # The coupler's leakage |gamma| into a matched dummy load, as
+        # `feedmatch calibrate` measures it (0.056 = 25 dB directivity, a
+        # typical home-built tandem coupler until calibrated; common practice).
+        "leak": 0.056,
     },
     "power": {
         "min_tune_w": 2.0,
@@ -68,6 +72,7 @@ _RANGES = {
     ("counter", "gate_ms"): ("i", 5, 1000),
     ("detector", "floor_counts"): ("n", 0.0, 100000.0),
     ("detector", "burst"): ("i", 1, 1024),
+    ("detector", "leak"): ("n", 0.0, 0.5),
     ("network", "z0_ohm"): ("n", 1.0, 1000.0),
     ("network", "inductor_q"): ("n", 1.0, 100000.0),
     ("network", "capacitor_q"): ("n", 1.0, 100000.0),

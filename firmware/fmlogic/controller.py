@@ -16,7 +16,7 @@ import json
 
 from fmlogic import config as fcfg
 from fmlogic import link, memory, search
-from fmlogic.swr import SWR_MAX, gamma_from_powers, swr_from_gamma
+from fmlogic.swr import gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
 _RECORDS_BYTES = 900
@@ -198,7 +198,7 @@ class Controller:
         if name == "recall" and hint is None:
             name = "model"
         strat = search.make(name, self.bank, f if f > 0 else 14.0e6, self.t["target_swr"],
-                            self.t["budget"], hint[:4] if hint else None)
+                            self.t["budget"], hint[:4] if hint else None, self.cfg["detector"]["leak"])
         before = self._state_list()
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
@@ -216,7 +216,9 @@ class Controller:
             self._end_tune("time limit")
             return
         st = s.propose()
-        if not self._switch(st, False):
+        # The search's BYPASS is the antenna alone: the bypass relay, as the
+        # box ends when nothing beats it.
+        if not self._switch(st, st == search.BYPASS):
             self._end_tune("power above hot-switch limit", abort=True)
             return
         b.sleep_ms(self.t["settle_ms"])
@@ -235,46 +237,32 @@ class Controller:
         tn = self.tune
         self.tune = None
         s = tn["s"]
-        best, best_swr = s.result()
-        target = self.t["target_swr"]
         f = tn["f"]
-        outcome = LOCKED
-        if best_swr < 0:
-            outcome = "aborted"
+        outcome, final, byp, best_swr, keep, note = conclude(s, abort)
+        if outcome == LOCKED:
+            why = note
+        elif note:
+            why = why + "; " + note
+        if final is None:
             final, byp = (self.relays, self.bypass)
-        elif best_swr <= target:
-            final, byp = (best, False)
-            why = "matched"
-        else:
-            # Through beats a poor match only when the antenna alone is better.
-            through_swr = s.seen.get(search.BYPASS)
-            through_swr = swr_from_gamma(through_swr) if through_swr is not None else SWR_MAX
-            if through_swr < best_swr:
-                final, byp = ((0, 0, 1), True)
-            else:
-                final, byp = (best, False)
-            outcome = "aborted" if abort else (THROUGH if byp else BEST)
         switched = self._switch(final, byp)
         if not switched:
             why = why + "; relays held (power above hot-switch limit)"
-        after_swr = best_swr if (switched and best_swr > 0 and not byp) else -1.0
-        if byp and switched:
-            ts = s.seen.get(search.BYPASS)
-            after_swr = swr_from_gamma(ts) if ts is not None else -1.0
+        after_swr = best_swr if (switched and best_swr > 0) else -1.0
         dur = self.board.ticks_diff(self.board.ticks_ms(), tn["t0"])
-        if (outcome == LOCKED or (outcome == BEST and best_swr <= _KEEP_BEST_SWR)) and not abort:
-            # Best-effort states are kept too: a return to the bin then costs
-            # one reading that reproduces the stored SWR, not a full search.
+        if keep and switched:
             self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)
         self.mem.set_last(f, self.relays, self.bypass)
         self.mem.flush()
         self.lock_bin = self.mem.bin_of(f) if f > 0 else None
         memory.journal_take(self.d)
-        hit = tn["hint"] and s.n == 1 and outcome in (LOCKED, BEST)
+        hit = tn["hint"] and s.n == 1 and outcome == LOCKED
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
                      outcome, why, hit, tn["name"], _trace(s))
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
+        elif outcome == FAULT:
+            self._fault(why)
         else:
             self._set_state(outcome, why)
 
@@ -480,6 +468,39 @@ class Controller:
 
 
 TRACE_MAX = 40
+
+
+def conclude(s, abort=False):
+    """What the box does when a search ends, shared with the host's scorer:
+    (outcome, final state or None to hold, through?, SWR after, keep in memory?,
+    note for the record).
+
+    locked: the best reading is at or below the search's accept level, where the
+    coupler's leakage cannot hide a true SWR above target; a reading between
+    that and the target is best-effort, said so.  The search's result is bypass
+    when nothing beat the antenna alone with confidence: then the box goes
+    through.  States above target are kept too (up to _KEEP_BEST_SWR): a return
+    to the frequency starts from them."""
+    if s.fault is not None:
+        return (FAULT, (0, 0, 1), True, -1.0, False, "search fault: " + s.fault)
+    best, swr = s.result()
+    if swr < 0.0:
+        return ("aborted", None, False, -1.0, False, "")
+    through = best == search.BYPASS
+    final = (0, 0, 1) if through else best
+    g = s.seen.get(best, 2.0)
+    if g <= s.accept_g:
+        outcome, note = LOCKED, ("matched without the network" if through else "matched")
+    elif g <= s.target_g:
+        outcome = THROUGH if through else BEST
+        note = "SWR %.2f read: within the coupler's uncertainty of the target" % swr
+    else:
+        outcome = THROUGH if through else BEST
+        note = "antenna alone is best; relays through" if through else ""
+    if abort:
+        return ("aborted", final, through, swr, False, note)
+    keep = outcome == LOCKED or (outcome == BEST and swr <= _KEEP_BEST_SWR)
+    return (outcome, final, through, swr, keep, note)
 
 
 def _trace(s):

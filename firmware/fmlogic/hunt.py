@@ -179,11 +179,12 @@ def _reach(grid, flags, n: int, xm8: int, bm8: int, x2m: int, b2m: int):
 
 
 @micropython.viper
-def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int):
+def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int) -> int:
     # pen[i] += min(16 * ((p2 - m2) / sigma)^2, cap) for the predicted |gamma|^2
     # p2 of hypothesis i through the state with Moebius coefficients co
     # (a, b, c as biased Q12 pairs: gamma = (a g + b) / (c g + 1)).
-    # Hypotheses already at or above cut are out and are not updated.
+    # Hypotheses already at or above cut are out and are not updated.  Returns
+    # how many were (for the cost model).
     g = ptr16(grid)
     p = ptr32(pen)
     c = ptr16(co)
@@ -193,9 +194,11 @@ def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int):
     bi = int(c[3]) - 32768
     cr = int(c[4]) - 32768
     ci = int(c[5]) - 32768
+    k = 0
     for i in range(n):
         if int(p[i]) >= cut:
             continue
+        k += 1
         gx = int(g[2 * i]) - 32768
         gy = int(g[2 * i + 1]) - 32768
         nr = ((ar * gx - ai * gy) >> 12) + br
@@ -212,6 +215,7 @@ def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int):
         if e > cap:
             e = cap
         p[i] = int(p[i]) + e
+    return k
 
 
 @micropython.viper
@@ -254,6 +258,8 @@ class Hunt:
         self.pen = array("i", bytes(4 * N))
         self.tried = bytearray(N)
         self.co = array("H", bytes(12))
+        self.evals = 0    # hypothesis updates and scans (the cost model counts them)
+        self.scans = 0
         xm8 = int(min(xm, 120.0) * 1.1 * 256)
         bm8 = int(min(bm, 120.0) * 1.1 * 256)
         # Unreachable hypotheses start as tried: never aimed at.
@@ -273,14 +279,17 @@ class Hunt:
         inv = int(16.0 * ONE / (s2 * ONE) + 0.5)
         if inv > 60000:
             inv = 60000
-        _update(GRID, self.pen, N, co, int(m * m * ONE + 0.5), inv, self.CAP, self.CUT)
+        self.evals += _update(GRID, self.pen, N, co, int(m * m * ONE + 0.5), inv, self.CAP, self.CUT)
 
     def pick(self):
+        self.scans += 1
         return _pick(self.pen, self.tried, N, self.CUT)
 
     def left(self):
+        self.scans += 1
         return _count(self.pen, self.tried, N, self.CUT)
 
     def best(self):
         """The least penalised hypothesis overall (tried or not)."""
+        self.scans += 1
         return _pick(self.pen, _NONE, N, 1 << 30)

@@ -75,8 +75,15 @@ def atomic_write(d, name, data, bak=None, new=None):
     os.rename(newp, path)
 
 
+# How far either side of a frequency a stored state is still worth a first
+# reading: 2 % (an operator's step within a band, or a move to its other end on
+# the narrow bands), at least one bin.
+REACH = 0.02
+
+
 class Memory:
-    """Good states per frequency bin, bounded, persisted atomically."""
+    """Good states per frequency bin, bounded, persisted atomically (d is the
+    directory; None keeps the memory in RAM only, as the host's scorer does)."""
 
     def __init__(self, d, bin_hz, max_entries):
         self.d = d
@@ -92,6 +99,8 @@ class Memory:
         return int(f_hz // self.bin_hz)
 
     def load(self):
+        if self.d is None:
+            return False
         best = None
         errors = []
         for name in (MEM, NEW, BAK):
@@ -111,17 +120,21 @@ class Memory:
         return best is not None
 
     def lookup(self, f_hz):
-        """Stored (l, c, shunt, swr) for the bin of f_hz or its neighbours."""
+        """The stored (l, c, shunt, swr, t) nearest to f_hz within REACH, or None;
+        of two equally near, the one with the lower SWR."""
         b = self.bin_of(f_hz)
         e = self.entries.get(b)
-        if e is None:
-            e1 = self.entries.get(b - 1)
-            e2 = self.entries.get(b + 1)
-            if e1 is not None and (e2 is None or e1[3] <= e2[3]):
-                e = e1
-            else:
-                e = e2
-        return e
+        if e is not None:
+            return e
+        span = int(REACH * f_hz / self.bin_hz) + 1
+        for k in range(1, span + 1):
+            e1 = self.entries.get(b - k)
+            e2 = self.entries.get(b + k)
+            if e1 is not None or e2 is not None:
+                if e1 is not None and (e2 is None or e1[3] <= e2[3]):
+                    return e1
+                return e2
+        return None
 
     def store(self, f_hz, state, swr, t):
         b = self.bin_of(f_hz)
@@ -156,7 +169,8 @@ class Memory:
         self.flush()
 
     def flush(self):
-        if not self.dirty:
+        if not self.dirty or self.d is None:
+            self.dirty = False
             return False
         self.gen += 1
         lines = []

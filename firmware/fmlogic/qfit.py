@@ -48,10 +48,13 @@ def q14(x):
 def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
     # The least misfit on a (2 half + 1)^2 grid around (cx, cy) (half 0: the
     # point itself), points outside the chart skipped; out[0], out[1] get its
-    # coordinates (biased), the return value is its misfit (-1: no point inside).
+    # coordinates (biased), out[2], out[3] the rows evaluated (low, high 16
+    # bits, for the cost model), the return value is its misfit (-1: no point
+    # inside).
     r = ptr16(rows)
     o = ptr16(out)
     best = -1
+    cnt = 0
     bx = cx
     by = cy
     for i in range(2 * half + 1):
@@ -62,6 +65,7 @@ def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
                 continue
             e = 0
             for k in range(n):
+                cnt += 1
                 q = k * 8
                 ar = int(r[q]) - 32768
                 ai = int(r[q + 1]) - 32768
@@ -92,6 +96,8 @@ def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
                 by = gy
     o[0] = bx + 32768
     o[1] = by + 32768
+    o[2] = cnt & 0xFFFF
+    o[3] = (cnt >> 16) & 0xFFFF
     return best
 
 
@@ -102,7 +108,9 @@ class Rows:
         self.cap = cap
         self.r = array("H", bytes(2 * ROW * cap))
         self.n = 0
-        self.out = array("H", bytes(4))
+        self.out = array("H", bytes(8))
+        self.evals = 0    # row evaluations by the kernel (the cost model counts them)
+        self.calls = 0
 
     def put(self, k, a, b, c, m, w):
         """Row k: coefficients of gamma = (a g + b) / (c g + 1), reading m (|gamma|),
@@ -123,7 +131,10 @@ class Rows:
 
     def cost(self, g):
         """Misfit of load g (complex gamma) over the rows; 65535 outside the chart."""
-        e = _grid(self.r, self.n, q14(g.real) - BIAS, q14(g.imag) - BIAS, 0, 0, self.out)
+        out = self.out
+        e = _grid(self.r, self.n, q14(g.real) - BIAS, q14(g.imag) - BIAS, 0, 0, out)
+        self.evals += out[2] + (out[3] << 16)
+        self.calls += 1
         return e if e >= 0 else 65535
 
     def refine(self, g, levels=3, spacing=0.3):
@@ -144,6 +155,8 @@ class Rows:
             if step < 1:
                 step = 1
             e = _grid(self.r, self.n, cx, cy, step, 2, out)
+            self.evals += out[2] + (out[3] << 16)
+            self.calls += 1
             if e < 0:
                 break
             nx = out[0] - BIAS

@@ -88,6 +88,9 @@ class Strategy:
         self.guard = None
         self._bad = 0
         self._check = None    # the state whose zero reading awaits a contrast reading
+        # Operation counts for the host's model of the board's compute time:
+        # Moebius maps, float predictions, fits, ideal states, locality weights.
+        self.ops = [0, 0, 0, 0, 0]
         self._gen = self._run()
         self._next = None
 
@@ -146,6 +149,20 @@ class Strategy:
             self._finish()
             return
         self._advance(g)
+
+    def costs(self):
+        """Operation counts of this tune (cost.py turns them into board time)."""
+        out = {"read": self.n, "coef": self.ops[0], "pred": self.ops[1], "fit": self.ops[2],
+               "ideal": self.ops[3], "near": self.ops[4], "row": 0, "grid": 0, "hyp": 0, "scan": 0}
+        rows = getattr(self, "rows", None)
+        if rows is not None:
+            out["row"] = rows.evals
+            out["grid"] = rows.calls
+        h = getattr(self, "h", None)
+        if h is not None:
+            out["hyp"] = h.evals
+            out["scan"] = h.scans + 1
+        return out
 
     def result(self):
         """(state, SWR) to end in: the best reading, unless it does not beat bypass
@@ -360,11 +377,13 @@ class ModelFit(Strategy):
     def _coef(self, st):
         c = self.co.get(st)
         if c is None:
+            self.ops[0] += 1
             c = lnet.mobius(self.bank, self.f_mhz, st[0], st[1], st[2])
             self.co[st] = c
         return c
 
     def _pred(self, g, st):
+        self.ops[1] += 1
         a, b, c = self._coef(st)
         return abs((a * g + b) / (c * g + 1.0))
 
@@ -392,6 +411,7 @@ class ModelFit(Strategy):
         # exactly; other codes share it as far as they share elements (the
         # bits they differ in, weighed by value: lv[a ^ b]).  The other element
         # errs only a little, and the other shunt side not at all alike.
+        self.ops[4] += 1
         if st[2] != center[2]:
             return 0.02
         b = self.bank
@@ -411,6 +431,7 @@ class ModelFit(Strategy):
         (the readings may allow two or three places).  center: weigh readings
         by how much they say about the effective load at that state (_near_w),
         so the fit describes the network where the search is."""
+        self.ops[2] += 1
         rows = self.rows
         order = self.order
         ws = self._w
@@ -478,6 +499,7 @@ class ModelFit(Strategy):
         transformation (C across the antenna, L into it), the other element
         then set to its best value for that code (the valley of a high-Q load
         runs diagonally across the codes)."""
+        self.ops[3] += 1
         best = None
         bv = 0
         for st in self._valley(g):

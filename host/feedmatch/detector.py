@@ -43,10 +43,23 @@ class DetectorModel:
     ref_gain_db: float = 0.0
     offset_counts: float = 0.0
     ideal: bool = False
+    directivity_flat_db: float | None = None
 
     def directivity_db(self, f_hz: float) -> float:
+        """Directivity at f_hz: flat when directivity_flat_db is set, else the
+        frequency-dependent default (capacitive leakage: 20 dB per decade)."""
+        if self.directivity_flat_db is not None:
+            return self.directivity_flat_db
         d = self.directivity_db_28mhz + 20.0 * math.log10(28e6 / max(f_hz, 1.0))
         return min(d, self.directivity_max_db)
+
+    def calibrated_leak(self, f_hz: float = 14.2e6, p_w: float = 25.0) -> float:
+        """The coupler leakage |gamma| that `feedmatch calibrate` reports for this
+        box: the reading into a matched dummy load at f_hz, noise averaged out."""
+        if self.ideal:
+            return 0.0
+        pf, pr = self.meter().powers(*self.read(p_w, 0j, f_hz, None))
+        return math.sqrt(pr / pf) if pf > 0 and pr > 0 else 0.0
 
     def full_scale(self) -> int:
         return (1 << self.adc_bits) - 1
@@ -136,13 +149,13 @@ class _IdealMeter:
 
 _KEYS = {"turns", "directivity_db_28mhz", "directivity_max_db", "directivity_phase_deg",
          "diode_vt", "front_gain", "adc_bits", "adc_vref", "noise_counts", "fwd_gain_db",
-         "ref_gain_db", "offset_counts", "ideal"}
+         "ref_gain_db", "offset_counts", "ideal", "directivity_flat_db"}
 
 
 def detector_from_dict(d: dict[str, Any], where: str = "detector") -> DetectorModel:
     check_keys(d, _KEYS, set(), where)
     m = DetectorModel()
-    for k in _KEYS - {"ideal", "adc_bits"}:
+    for k in _KEYS - {"ideal", "adc_bits", "directivity_flat_db"}:
         if k in d:
             pos = k in {"turns", "diode_vt", "front_gain", "adc_vref"}
             setattr(m, k, number(d, k, where, positive=pos))
@@ -151,6 +164,8 @@ def detector_from_dict(d: dict[str, Any], where: str = "detector") -> DetectorMo
         if not isinstance(b, int) or isinstance(b, bool) or not 6 <= b <= 24:
             raise InputError(f"{where}: field 'adc_bits' must be an integer 6..24")
         m.adc_bits = b
+    if d.get("directivity_flat_db") is not None:
+        m.directivity_flat_db = number(d, "directivity_flat_db", where, minimum=6.0, maximum=60.0)
     if "ideal" in d:
         if not isinstance(d["ideal"], bool):
             raise InputError(f"{where}: field 'ideal' must be true or false")

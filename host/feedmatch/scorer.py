@@ -2,8 +2,16 @@
 
 The strategies are the firmware's own objects (fmlogic.search); they see only
 what a real box sees: the firmware's calibration applied to simulated detector
-counts.  For each load the whole state table is computed once (vectorised),
-so every reading is a table look-up plus the detector model.
+counts, the nominal (or fitted) element values, and the coupler leakage that
+`feedmatch calibrate` would report on that box.  How a tune ends (locked,
+best-effort, through) and what is kept in memory is the controller's own
+decision (fmlogic.controller.conclude); with memory on, the loads are tuned in
+order and each tune's hint is what the firmware's memory code
+(fmlogic.memory.Memory) holds from the earlier ones.  Nothing is ever derived
+from the oracle, the true load or the true box.
+
+For each load the whole state table of the true box is computed once
+(vectorised), so every reading is a table look-up plus the detector model.
 """
 
 from __future__ import annotations
@@ -21,25 +29,31 @@ import numpy as np
 
 from .detector import DetectorModel
 from .loads import Load
-from .network import SHUNTS, Network, StateTable, all_states_zin, gamma
+from .network import SHUNTS, Network, StateTable
 
-# Rough ratio of the RP2040's MicroPython float speed to CPython on this kind
-# of code, for the estimated tune time (from memory, an order of magnitude).
-BOARD_COMPUTE_FACTOR = 60.0
+
+def _fw_default(section: str, key: str):
+    from fmlogic.config import DEFAULTS
+
+    return DEFAULTS[section][key]
 
 
 @dataclass
 class ScoreConfig:
     strategy: str = "model"
-    target_swr: float = 1.5
-    budget: int = 80
+    target_swr: float = field(default_factory=lambda: _fw_default("tune", "target_swr"))
+    budget: int = field(default_factory=lambda: _fw_default("tune", "budget"))
     settle_ms: float = 10.0
     sample_ms: float = 2.0
     tune_power_w: float = 10.0
-    hot_switch_w: float = 20.0
+    hot_switch_w: float = field(default_factory=lambda: _fw_default("power", "hot_switch_w"))
     seed: int = 1
-    stale_hint_fraction: float = 0.2
     detector: DetectorModel = field(default_factory=DetectorModel)
+    # The coupler leakage |d| the firmware is told; None: what calibrate would
+    # measure on this box's detector (at 14.2 MHz into a dummy load).
+    leak: float | None = None
+    # Tune the loads in order with the firmware's memory carried from one to the next.
+    memory: bool = False
 
 
 def _popcount(x: int) -> int:
@@ -51,39 +65,48 @@ def relay_ops(a: tuple[int, int, int], b: tuple[int, int, int]) -> int:
     return _popcount(a[0] ^ b[0]) + _popcount(a[1] ^ b[1]) + (1 if a[2] != b[2] else 0)
 
 
-def _hint_for(net: Network, load: Load, rng: random.Random, cfg: ScoreConfig) -> tuple[int, int, int]:
-    """A stored state as memory would hold it: the optimum half a bin away
-    (here 1 % in frequency, load held), or with some probability a stale one."""
-    if rng.random() < cfg.stale_hint_fraction:
-        return (rng.randrange(1 << net.n_l), rng.randrange(1 << net.n_c), rng.randrange(2))
-    gm = np.abs(gamma(all_states_zin(net, load.freq_hz * 1.01, load.z), net.z0_ohm))
-    sh, l, c = np.unravel_index(int(np.argmin(gm)), gm.shape)
-    return (int(l), int(c), int(sh))
+def new_memory():
+    """The firmware's memory of states, in RAM, with the firmware's own bins."""
+    from fmlogic import memory
+    from fmlogic.config import DEFAULTS
+
+    m = DEFAULTS["memory"]
+    return memory.Memory(None, m["bin_hz"], m["max_entries"])
 
 
 def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
-              seed: int, det: DetectorModel | None = None) -> dict[str, Any]:
-    """Run one strategy on one load; true figures come from true_net."""
-    from fmlogic import search
+              seed: int, det: DetectorModel | None = None, mem=None) -> dict[str, Any]:
+    """Run one strategy on one load; true figures come from true_net.
+
+    mem: the firmware memory carried between tunes (recall takes its hint
+    there, and the tune's result is kept there as the controller keeps it)."""
+    from fmlogic import controller, search
 
     det = det or cfg.detector
     rng = random.Random(seed)
-    st = _table_for(true_net)
-    gm = st.gamma_mag(load.freq_hz, load.z)
-    table = st._g
+    table = _table_for(true_net)
+    gm = table.gamma_mag(load.freq_hz, load.z)
+    tg = table._g
     idx = int(np.argmin(gm))
     o_sh, o_l, o_c = np.unravel_index(idx, gm.shape)
     oracle_g = float(gm.flat[idx])
+    z0 = true_net.z0_ohm
+    g_through = (load.z - z0) / (load.z + z0)
+    bypass_g = abs(g_through)
     bank = nominal.firmware_bank()
     meter = det.meter()
-    hint = _hint_for(true_net, load, rng, cfg) if cfg.strategy == "recall" else None
-    s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget, hint)
+    leak = cfg.leak if cfg.leak is not None else det.calibrated_leak()
+    hint = mem.lookup(load.freq_hz) if (mem is not None and cfg.strategy == "recall") else None
+    s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget,
+                    hint[:4] if hint else None, leak)
     prev = (0, 0, 1)
     ops = 0
     hot = 0
     t0 = time.perf_counter()
     while not s.done:
         st = s.propose()
+        if s.done:
+            break
         n_ops = relay_ops(prev, st)
         ops += n_ops
         # The controller drops to tune power before switching; count a hot
@@ -91,21 +114,33 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
         if n_ops and cfg.tune_power_w > cfg.hot_switch_w:
             hot += 1
         prev = st
-        g = complex(table[st[2], st[0], st[1]])
+        # BYPASS is the bypass relay (the antenna alone), as the controller switches it.
+        g = g_through if st == search.BYPASS else complex(tg[st[2], st[0], st[1]])
         fwd, ref = det.read(cfg.tune_power_w, g, load.freq_hz, rng)
         pf, pr = meter.powers(fwd, ref)
         s.observe(pf, pr)
     compute_s = time.perf_counter() - t0
-    (l, c, sh), est_swr = s.result()
-    true_g = float(gm[sh, l, c])
+    outcome, final, through, est_swr, keep, _note = controller.conclude(s)
+    if final is None or through:
+        final, true_g = (0, 0, 1), bypass_g
+        through = True
+    else:
+        true_g = float(gm[final[2], final[0], final[1]])
+    if mem is not None and keep:
+        mem.store(load.freq_hz, final, est_swr, 0)
+    l, c, sh = final
     n = s.n
-    est_ms = n * (cfg.settle_ms + cfg.sample_ms) + compute_s * 1e3 * BOARD_COMPUTE_FACTOR
+    from .cost import board_ms
+
+    est_ms = n * (cfg.settle_ms + cfg.sample_ms) + board_ms(s)
     return {"freq_hz": load.freq_hz, "r_ohm": load.r_ohm, "x_ohm": load.x_ohm,
-            "l_code": l, "c_code": c, "shunt": SHUNTS[sh], "swr": _swr(true_g),
-            "estimated_swr": est_swr, "oracle_swr": _swr(oracle_g),
+            "l_code": l, "c_code": c, "shunt": SHUNTS[sh], "through": bool(through),
+            "outcome": outcome, "swr": _swr(true_g), "estimated_swr": est_swr,
+            "oracle_swr": _swr(oracle_g), "bypass_swr": _swr(bypass_g),
             "oracle_state": [int(o_l), int(o_c), SHUNTS[int(o_sh)]],
-            "measurements": n, "relay_ops": ops, "hot_switches": hot,
-            "tune_ms": round(est_ms, 1), "compute_ms": round(compute_s * 1e3, 3),
+            "hint": bool(hint), "measurements": n, "relay_ops": ops, "hot_switches": hot,
+            "tune_ms": round(est_ms, 1), "board_compute_ms": round(board_ms(s), 1),
+            "host_compute_ms": round(compute_s * 1e3, 3),
             "trace": [[st[0], st[1], st[2], s.seen[st]] for st in s.order]}
 
 
@@ -129,19 +164,23 @@ def _swr(g: float) -> float:
 
 def _worker(args):
     loads, true_net, nominal, cfg, seeds, det = args
-    return [score_one(ld, true_net, nominal, cfg, sd, det) for ld, sd in zip(loads, seeds)]
+    mem = new_memory() if cfg.memory else None
+    return [score_one(ld, true_net, nominal, cfg, sd, det, mem) for ld, sd in zip(loads, seeds)]
 
 
 def score(loads: list[Load], true_net: Network, nominal: Network, cfg: ScoreConfig,
           det: DetectorModel | None = None, workers: int | None = None,
           progress: bool = False) -> list[dict[str, Any]]:
-    """Score every load; seeds derive from cfg.seed and the load's index."""
+    """Score every load; seeds derive from cfg.seed and the load's index.
+
+    With cfg.memory the loads are one session, tuned in order in one process."""
     seeds = [cfg.seed * 1_000_003 + i for i in range(len(loads))]
     workers = workers if workers is not None else min(2, os.cpu_count() or 1)
-    if workers <= 1 or len(loads) < 50:
+    if workers <= 1 or len(loads) < 50 or cfg.memory:
         out = []
+        mem = new_memory() if cfg.memory else None
         for i, (ld, sd) in enumerate(zip(loads, seeds)):
-            out.append(score_one(ld, true_net, nominal, cfg, sd, det))
+            out.append(score_one(ld, true_net, nominal, cfg, sd, det, mem))
             if progress and (i % 20 == 0 or i == len(loads) - 1):
                 _bar(i + 1, len(loads))
         if progress:
@@ -162,6 +201,17 @@ def score(loads: list[Load], true_net: Network, nominal: Network, cfg: ScoreConf
     return out
 
 
+def run_parallel(jobs: list[tuple], workers: int = 2) -> list[list[dict[str, Any]]]:
+    """Several independent score() runs (boxes, sessions) spread over processes:
+    each job is (loads, true_net, nominal, cfg, det)."""
+    args = [(ld, tn, nm, cfg, [cfg.seed * 1_000_003 + i for i in range(len(ld))], det)
+            for ld, tn, nm, cfg, det in jobs]
+    if workers <= 1:
+        return [_worker(a) for a in args]
+    with ProcessPoolExecutor(max_workers=workers) as ex:
+        return list(ex.map(_worker, args))
+
+
 def _bar(i: int, n: int) -> None:
     w = 30
     k = int(w * i / max(n, 1))
@@ -169,19 +219,27 @@ def _bar(i: int, n: int) -> None:
     sys.stderr.flush()
 
 
-def summarise(results: list[dict[str, Any]], target_swr: float) -> dict[str, Any]:
-    """Figures over the matchable loads; unmatchable ones are counted apart."""
-    ok = [r for r in results if r["oracle_swr"] <= target_swr]
+def summarise(results: list[dict[str, Any]], target_swr: float,
+              matchable_swr: float | None = None) -> dict[str, Any]:
+    """Figures over the matchable loads (oracle SWR at or below matchable_swr,
+    the target by default); unmatchable ones are counted apart.  The false-lock
+    and worse-than-bypass rates are over every tune."""
+    lim = target_swr if matchable_swr is None else matchable_swr
+    ok = [r for r in results if r["oracle_swr"] <= lim]
     bad = len(results) - len(ok)
+    n_all = max(len(results), 1)
+    false_locks = sum(1 for r in results if r["outcome"] == "locked" and r["swr"] > target_swr)
+    worse = sum(1 for r in results if not r["through"] and r["swr"] > r["bypass_swr"] * (1 + 1e-9))
+    base = {"loads": len(results), "matchable": len(ok), "unmatchable": bad,
+            "matchable_swr": lim, "false_lock_rate": false_locks / n_all,
+            "worse_than_bypass_rate": worse / n_all,
+            "hot_switches": sum(r["hot_switches"] for r in results)}
     if not ok:
-        return {"loads": len(results), "matchable": 0, "unmatchable": bad}
+        return base
     meas = sorted(r["measurements"] for r in ok)
     succ = sum(1 for r in ok if r["swr"] <= target_swr)
     ratio = [r["swr"] / r["oracle_swr"] for r in ok]
-    return {
-        "loads": len(results),
-        "matchable": len(ok),
-        "unmatchable": bad,
+    base.update({
         "success_rate": succ / len(ok),
         "median_measurements": statistics.median(meas),
         "p95_measurements": float(np.percentile(meas, 95)),
@@ -190,5 +248,5 @@ def summarise(results: list[dict[str, Any]], target_swr: float) -> dict[str, Any
         "median_tune_ms": statistics.median(r["tune_ms"] for r in ok),
         "median_swr": statistics.median(r["swr"] for r in ok),
         "median_swr_over_oracle": statistics.median(ratio),
-        "hot_switches": sum(r["hot_switches"] for r in results),
-    }
+    })
+    return base

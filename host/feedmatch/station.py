@@ -204,8 +204,10 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
                                                "capacitor_q": net.capacitor_q or 0.0})
     cfg["network"] = {k: v for k, v in cfg["network"].items() if k in fcfg.DEFAULTS["network"]}
     if "detector" not in cfg:
+        # As `feedmatch calibrate` would set it up on this station's box.
         pts = [list(p) for p in det.calibration_points()]
-        cfg["detector"] = {"fwd": pts, "ref": pts, "floor_counts": 2.0}
+        cfg["detector"] = {"fwd": pts, "ref": pts, "floor_counts": 2.0,
+                           "leak": round(det.calibrated_leak(), 4)}
     errs = fcfg.validate(cfg)
     if errs:
         raise InputError(f"{where}: board: {errs[0]}")
