@@ -219,6 +219,15 @@ def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int) -> i
 
 
 @micropython.viper
+def _out(pen, tried, n: int, cut: int):
+    p = ptr32(pen)
+    t = ptr8(tried)
+    for i in range(n):
+        if int(t[i]):
+            p[i] = cut
+
+
+@micropython.viper
 def _pick(pen, tried, n: int, cut: int) -> int:
     # The least penalised hypothesis not yet tried (lowest index on a tie), or -1.
     p = ptr32(pen)
@@ -262,8 +271,10 @@ class Hunt:
         self.scans = 0
         xm8 = int(min(xm, 120.0) * 1.1 * 256)
         bm8 = int(min(bm, 120.0) * 1.1 * 256)
-        # Unreachable hypotheses start as tried: never aimed at.
+        # Unreachable hypotheses start as tried, never aimed at, and out: no
+        # reading updates them (a load there cannot be matched anyway).
         _reach(GRID, self.tried, N, xm8, bm8, int(1 + (xm * 1.1) ** 2), int(1 + (bm * 1.1) ** 2))
+        _out(self.pen, self.tried, N, self.CUT)
 
     def add(self, a, b, c, m, sigma):
         """One reading m (|gamma|) of a state with Moebius coefficients a, b, c, with

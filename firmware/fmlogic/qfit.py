@@ -32,6 +32,7 @@ except ImportError:  # CPython: the same code, run as plain Python
 ONE = 16384
 BIAS = 32768
 ROW = 8          # ar ai br bi cr ci m2 w
+MAX_PTS = 24     # starts ranked in one kernel pass
 CAP = 256        # (4 sigma)^2 * 16
 
 
@@ -101,6 +102,64 @@ def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
     return best
 
 
+@micropython.viper
+def _points(rows, n: int, pts, k: int, costs):
+    # The misfit of each of k points (biased Q14 pairs in pts) into costs[]
+    # (-1 outside the chart), costs[k] the rows evaluated (for the cost model).
+    r = ptr16(rows)
+    p = ptr16(pts)
+    cs = ptr32(costs)
+    cnt = 0
+    for t in range(k):
+        gx = int(p[2 * t]) - 32768
+        gy = int(p[2 * t + 1]) - 32768
+        if gx * gx + gy * gy >= 268402689:
+            cs[t] = -1
+            continue
+        e = 0
+        for j in range(n):
+            cnt += 1
+            q = j * 8
+            ar = int(r[q]) - 32768
+            ai = int(r[q + 1]) - 32768
+            br = int(r[q + 2]) - 32768
+            bi = int(r[q + 3]) - 32768
+            cr = int(r[q + 4]) - 32768
+            ci = int(r[q + 5]) - 32768
+            nr = ((ar * gx - ai * gy) >> 14) + br
+            ni = ((ar * gy + ai * gx) >> 14) + bi
+            dr = ((cr * gx - ci * gy) >> 14) + 16384
+            di = (cr * gy + ci * gx) >> 14
+            n2 = ((nr * nr) >> 1) + ((ni * ni) >> 1)
+            d2 = ((dr * dr) >> 1) + ((di * di) >> 1)
+            p2 = n2 // ((d2 >> 14) + 1)
+            if p2 > 16384:
+                p2 = 16384
+            z = ((p2 - int(r[q + 6])) * int(r[q + 7])) >> 14
+            if z > 64 or z < -64:
+                e += 256
+            else:
+                e += (z * z) >> 4
+        cs[t] = e
+    cs[k] = cnt
+
+
+@micropython.viper
+def _compact(rows, n: int, dst, wmin: int) -> int:
+    # Copy the rows whose weight is at least wmin into dst; returns how many.
+    r = ptr16(rows)
+    d = ptr16(dst)
+    m = 0
+    for k in range(n):
+        q = k * 8
+        if int(r[q + 7]) >= wmin:
+            o = m * 8
+            for j in range(8):
+                d[o + j] = r[q + j]
+            m += 1
+    return m
+
+
 class Rows:
     """The readings of one tune as rows for the kernels, preallocated."""
 
@@ -109,6 +168,10 @@ class Rows:
         self.r = array("H", bytes(2 * ROW * cap))
         self.n = 0
         self.out = array("H", bytes(8))
+        self.sel = array("H", bytes(2 * ROW * cap))
+        self.m = 0      # rows in sel (the weighty ones, for fits of many readings)
+        self.pts = array("H", bytes(4 * MAX_PTS))
+        self.pcost = array("i", bytes(4 * (MAX_PTS + 1)))
         self.evals = 0    # row evaluations by the kernel (the cost model counts them)
         self.calls = 0
 
@@ -117,22 +180,58 @@ class Rows:
         weight w = 1 / sigma of m^2 (sets how much a misfit counts)."""
         r = self.r
         o = k * ROW
-        i = 0
-        for z in (a, b, c):
-            r[o + i] = q14(z.real)
-            r[o + i + 1] = q14(z.imag)
-            i += 2
-        r[o + 6] = int(m * m * ONE + 0.5)
-        self.weigh(k, w)
+        # A passive state's coefficients stay within +-1.1 (well inside Q14's +-2),
+        # so the biased value is positive and int() rounds it.
+        r[o] = int(a.real * 16384.0 + 32768.5)
+        r[o + 1] = int(a.imag * 16384.0 + 32768.5)
+        r[o + 2] = int(b.real * 16384.0 + 32768.5)
+        r[o + 3] = int(b.imag * 16384.0 + 32768.5)
+        r[o + 4] = int(c.real * 16384.0 + 32768.5)
+        r[o + 5] = int(c.imag * 16384.0 + 32768.5)
+        r[o + 6] = int(m * m * 16384.0 + 0.5)
+        v = int(16.0 * w + 0.5)
+        r[o + 7] = v if v < 65535 else 65535
 
     def weigh(self, k, w):
         v = int(16.0 * w + 0.5)
         self.r[k * ROW + 7] = v if v < 65535 else 65535
 
+    def select(self, share=0.01):
+        """Fit with the rows whose weight is at least share of the largest only:
+        the rest cannot move the answer but would cost a kernel pass each."""
+        r = self.r
+        top = 0
+        for k in range(self.n):
+            w = r[k * ROW + 7]
+            if w > top:
+                top = w
+        self.m = _compact(r, self.n, self.sel, int(top * share))
+
+    def rank(self, starts):
+        """The misfit of each start (list of complex gamma), in one kernel pass:
+        a list of ints, 65535 outside the chart."""
+        pts = self.pts
+        k = len(starts)
+        if k > MAX_PTS:
+            k = MAX_PTS
+        for i in range(k):
+            g = starts[i]
+            pts[2 * i] = int(g.real * 16384.0 + 32768.5)
+            pts[2 * i + 1] = int(g.imag * 16384.0 + 32768.5)
+        pc = self.pcost
+        _points(self.sel, self.m, pts, k, pc)
+        self.evals += pc[k]
+        self.calls += 1
+        out = []
+        for i in range(k):
+            e = pc[i]
+            out.append(e if e >= 0 else 65535)
+        return out
+
     def cost(self, g):
-        """Misfit of load g (complex gamma) over the rows; 65535 outside the chart."""
+        """Misfit of load g (complex gamma) over the selected rows; 65535 outside the chart."""
         out = self.out
-        e = _grid(self.r, self.n, q14(g.real) - BIAS, q14(g.imag) - BIAS, 0, 0, out)
+        e = _grid(self.sel, self.m, q14(g.real) - BIAS, q14(g.imag) - BIAS, 0, 0, out)
         self.evals += out[2] + (out[3] << 16)
         self.calls += 1
         return e if e >= 0 else 65535
@@ -154,7 +253,7 @@ class Rows:
             step = int(s * (1.0 - u) * 0.5 * ONE + 0.5)
             if step < 1:
                 step = 1
-            e = _grid(self.r, self.n, cx, cy, step, 2, out)
+            e = _grid(self.sel, self.m, cx, cy, step, 2, out)
             self.evals += out[2] + (out[3] << 16)
             self.calls += 1
             if e < 0:

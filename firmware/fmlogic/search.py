@@ -442,6 +442,7 @@ class ModelFit(Strategy):
             rows.weigh(k, ws[k] * (self._near_w(order[k], center) if center is not None else 1.0))
         self._wc = center
         self._wn = rows.n
+        rows.select()
         starts = []
         if self.g is not None:
             starts.append(self.g)
@@ -455,7 +456,7 @@ class ModelFit(Strategy):
                 # around it find both places two readings allow.
                 r = self.best_g
                 pc = complex(p.real, -p.imag)
-                for k in range(0, _WIDE, 1 if wide else 2):
+                for k in range(0, _WIDE, 2 if wide else 4):
                     h = r * _UNIT[k]
                     starts.append((h + p) / (1.0 + pc * h))
         if wide:
@@ -464,20 +465,23 @@ class ModelFit(Strategy):
                 r = m0 if m0 < 0.995 else 0.995
                 for k in range(_WIDE):
                     starts.append(r * _UNIT[k])
-        ranked = []
-        for g0 in starts:
-            ranked.append((rows.cost(g0), g0))
-        ranked.sort(key=_key)
+        es = rows.rank(starts)
         out = []
-        for e, g in ranked:
-            if len(out) >= 2:
+        # Refine the two best starts that are not next to each other (ties to
+        # the earlier start: the list order is fixed, so every port agrees).
+        for _ in range(2):
+            bi = -1
+            for i in range(len(es)):
+                if es[i] < 65535 and (bi < 0 or es[i] < es[bi]) and not _near(out, starts[i]):
+                    bi = i
+            if bi < 0:
                 break
-            if _near(out, g):
-                continue
-            e, g = rows.refine(g)
+            e, g = rows.refine(starts[bi])
+            es[bi] = 65535
             if e >= 0 and not _near(out, g):
                 out.append((e, g))
-        out.sort(key=_key)
+        if len(out) == 2 and (out[1][0] < out[0][0] or (out[1][0] == out[0][0] and _key(out[1]) < _key(out[0]))):
+            out.reverse()
         if out:
             self.g = out[0][1]
         return out
@@ -498,11 +502,16 @@ class ModelFit(Strategy):
         on either shunt side, rounded both ways in the element that sets the
         transformation (C across the antenna, L into it), the other element
         then set to its best value for that code (the valley of a high-Q load
-        runs diagonally across the codes)."""
+        runs diagonally across the codes).  The candidates are ranked by what
+        is left of the mismatch once the other element cancels the reactance,
+        and the two best by the full model."""
         self.ops[3] += 1
+        cands = self._valley(g)
+        cands.sort()
         best = None
         bv = 0
-        for st in self._valley(g):
+        for i in range(len(cands) if len(cands) < 2 else 2):
+            st = cands[i][1]
             v = _q(self._pred(g, st))
             if best is None or v < bv or (v == bv and st < best):
                 best = st
@@ -510,8 +519,11 @@ class ModelFit(Strategy):
         return best
 
     def _valley(self, g, around=None):
+        """Candidate states for load g as [(residual, state)], residual the
+        mismatch (|gamma|, in 1e-4, lossless) left by the transforming code."""
         b = self.bank
-        zl = lnet.z_from_gamma(g, b.z0)
+        z0 = b.z0
+        zl = lnet.z_from_gamma(g, z0)
         w = lnet.TWO_PI * self.f_mhz
         out = []
         for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
@@ -536,17 +548,23 @@ class ModelFit(Strategy):
                     if not 0 <= k <= b.c_max:
                         continue
                     # Capacitor across the load fixed: the series L that cancels
-                    # what reactance is left.
+                    # what reactance is left; the resistance left is the mismatch.
                     zp = 1.0 / (1.0 / zl + complex(0.0, w * b.cv[k] * 1e-6)) if zl != 0 else 0j
                     x = -zp.imag
-                    out.append((b.l_code_for(x / w if x > 0.0 else 0.0), k, sh))
+                    r = zp.real
+                    st = (b.l_code_for(x / w if x > 0.0 else 0.0), k, sh)
+                    e = abs(r - z0) / (r + z0) if x >= 0.0 else 1.0
                 else:
                     if not 0 <= k <= b.l_max:
                         continue
                     # Series L fixed: the shunt C that cancels the susceptance left.
                     zs = zl + complex(0.0, w * b.lv[k])
-                    bc = -(1.0 / zs).imag if zs != 0 else 0.0
-                    out.append((k, b.c_code_for(bc / w * 1e6 if bc > 0.0 else 0.0), sh))
+                    ys = 1.0 / zs if zs != 0 else 0j
+                    bc = -ys.imag
+                    gg = ys.real * z0
+                    st = (k, b.c_code_for(bc / w * 1e6 if bc > 0.0 else 0.0), sh)
+                    e = abs(gg - 1.0) / (gg + 1.0) if bc >= 0.0 else 1.0
+                out.append((_q(e), st))
         return out
 
     # -- the search -------------------------------------------------------------
@@ -690,7 +708,7 @@ class ModelFit(Strategy):
                 nb.append((_q(self._pred(g, t)), t, 0, 0))
             # Along the valley: the next code of the transforming element, the
             # other element where the model puts its best.
-            for t in self._valley(g, c0):
+            for e, t in self._valley(g, c0):
                 if t not in self.seen and t != c0:
                     nb.append((_q(self._pred(g, t)), t, 0, 0))
         nb.sort()

@@ -157,7 +157,7 @@ def cmd_score(a: argparse.Namespace) -> int:
 def cmd_bench(a: argparse.Namespace) -> int:
     from .bench import run_bench
 
-    res = run_bench(quick=a.quick, only=a.only)
+    res = run_bench(quick=a.quick, only=a.only, save_costs=a.save_costs)
     if a.json:
         emit_json(res)
     else:
@@ -226,6 +226,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.add_argument("--quick", action="store_true", help="fewer repetitions")
     s.add_argument("--only", help="comma-separated keys to run")
+    s.add_argument("--save-costs", action="store_true",
+                   help="with rp2040: write the fitted board cost model into the package data")
     s.set_defaults(fn=cmd_bench)
 
     s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form)")

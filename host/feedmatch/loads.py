@@ -176,3 +176,42 @@ def drawn_verticals(n: int, rng, per: int = 40) -> list[tuple[dict, list[float]]
         out.append((validate(d, "drawn vertical"), _draw_band_freqs(rng, h, k)))
         left -= k
     return out
+
+
+def session_frequencies(rng, band_list: list, n: int) -> list[float]:
+    """An operator's evening on the bands in band_list: mostly small steps within
+    a band (1-30 kHz either way), now and then a jump within it, sometimes a move
+    to another band; every frequency inside a band (an invented pattern for the
+    scorer, not a survey)."""
+    b = band_list[int(rng.integers(len(band_list)))]
+    f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
+    out = [round(f, 1)]
+    for _ in range(n - 1):
+        x = rng.random()
+        if x < 0.6:
+            step = (1.0 if rng.random() < 0.5 else -1.0) * (1e3 + 29e3 * rng.random())
+            f = min(max(f + step, b.low_hz), b.high_hz)
+        elif x < 0.8:
+            f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
+        else:
+            b = band_list[int(rng.integers(len(band_list)))]
+            f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
+        out.append(round(f, 1))
+    return out
+
+
+def vertical_sessions(n_sessions: int, per: int, seed: int = 1) -> list[list[Load]]:
+    """Operating sessions on drawn NEC-2 verticals (as in vertical_loads): for each
+    antenna, per tunes in the order an operator makes them (session_frequencies)."""
+    from .nec import sweep, validate
+
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n_sessions):
+        (desc, _fs), = drawn_verticals(1, rng, per=1)
+        h = desc["radiator"]["height_m"]
+        fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= MAX_H_OVER_LAMBDA]
+        fs = session_frequencies(rng, fit, per)
+        z = sweep(validate(desc, "drawn vertical"), fs)
+        out.append([Load(f, float(zz.real), float(zz.imag)) for f, zz in zip(fs, z)])
+    return out
