@@ -295,8 +295,13 @@ def test_reported_swr_recomputes_from_published_box_values(tmp_path):
                       inductor_q_each=bn["inductor_q_each"], capacitor_q_each=bn["capacitor_q_each"],
                       relay_open_pf=bn["relay_open_pf"], lead_nh=bn["lead_nh"],
                       stray_in_pf=bn["stray_in_pf"], stray_out_pf=bn["stray_out_pf"])
-        e = evaluate(net, row["freq_hz"], complex(row["r_ohm"], row["x_ohm"]), row["l_code"], row["c_code"],
-                     row["shunt"])
+        zl = complex(row["r_ohm"], row["x_ohm"])
+        if row["through"]:
+            # Through: the bypass relay, the antenna alone (Pozar 4th ed. eq. 2.35, 2.43).
+            g = abs((zl - 50) / (zl + 50))
+            assert (1 + g) / (1 - g) == pytest.approx(row["swr"], rel=1e-9)
+            continue
+        e = evaluate(net, row["freq_hz"], zl, row["l_code"], row["c_code"], row["shunt"])
         assert float(e["swr"]) == pytest.approx(row["swr"], rel=1e-9)
 
 

@@ -84,9 +84,11 @@ def test_budget_respected_and_best_seen_returned(name):
         assert len(seen) <= budget
         state, swr = s.result()
         best = min(seen, key=lambda t: t[1])
-        # The best reading, or bypass when the best does not beat it clearly.
+        # The best reading, or bypass when the best is above target and does not beat it
+        # clearly (the strategy's own margin for the coupler's leakage).
         bypass = [g for st, g in seen if st == search.BYPASS]
-        assert state == best[0] or (state == search.BYPASS and bypass and best[1] > bypass[0] - 0.02)
+        assert state == best[0] or (state == search.BYPASS and bypass and best[1] > s.target_g
+                                    and not s._beats(best[1], bypass[0]))
 
 
 @pytest.mark.parametrize("name", ["grid", "model", "recall"])

@@ -128,7 +128,8 @@ class Controller:
         if want == self.relays and bypass == self.bypass:
             return True
         self._read()
-        if self.rf_w > self.p["hot_switch_w"]:
+        if not self.rf_w <= self.p["hot_switch_w"]:
+            # Above the limit, or not a number (a detector fault): hold.
             self.hot_refusals += 1
             return False
         self.board.set_relays(want[0], want[1], want[2], bypass)

@@ -99,7 +99,12 @@ def _build():
         rq = RING_Q[k]
         # Stagger alternate rings by half a step so points do not line up radially.
         off = (32768 // m) if (k & 1) else 0
-        for j in range(m):
+        for jj in range(m):
+            # Points of a ring go out from the positive real axis, below it first,
+            # alternating: the hunt tries equally likely hypotheses in this order,
+            # and the loads of short verticals (capacitive, high Q) sit just below
+            # that axis, long ones (inductive) just above it.
+            j = (m - (jj + 1) // 2) % m if jj & 1 else jj // 2
             s, c = _isincos(off + (j * 65536) // m)
             pts[2 * i] = BIAS + ((rq * c + (1 << 14)) >> 15)
             pts[2 * i + 1] = BIAS + ((rq * s + (1 << 14)) >> 15)

@@ -37,6 +37,11 @@ LEAK_DEFAULT = 0.056
 _NEAR = 0.6
 # Below this the search is close enough for fits of the nearby readings only.
 _CLOSE = 0.3
+# Above this bypass reading, probes near the edge of the chart say almost
+# nothing about where the load is: the hunt starts at once.
+_PROBE_BELOW = 0.93
+# Readings left for best effort once the hunt finds no matchable load consistent.
+_HOPELESS_EXTRA = const(10)
 # A hunt probe aims two hyperbolic units short of its hypothesis: a reading
 # there of tanh(1) = 0.76 is a hit; below this, the fit can take over.
 _HIT = 0.86
@@ -73,7 +78,7 @@ class Strategy:
         # true SWR above target: the reading plus the largest leakage error,
         # the gain mismatch and the noise.
         t = self.target_g
-        acc = t - self.leak * (1.0 - t * t) - 0.035 * t - 0.005
+        acc = t - self.leak * (1.0 + t * t) - 0.035 * t - 0.005
         self.accept_g = acc if acc > 0.5 * self.target_g else 0.5 * self.target_g
         self.budget = budget
         self.hint = memory_hint
@@ -141,7 +146,12 @@ class Strategy:
         if g <= 0.0 and self._all_zero():
             # Nothing reflected at all, on the first reading: a perfect match or
             # a dead reflected detector.  One reading of a state that no load can
-            # share a match with tells them apart.
+            # share a match with tells them apart; without a reading left for it,
+            # the zero cannot be trusted.
+            if self.n >= self.budget:
+                self.fault = "reflected detector reads nothing"
+                self._finish()
+                return
             self._check = self._contrast(state)
             self._next = self._check
             return
@@ -165,12 +175,13 @@ class Strategy:
         return out
 
     def result(self):
-        """(state, SWR) to end in: the best reading, unless it does not beat bypass
-        with confidence; (BYPASS, -1) when there is no result."""
+        """(state, SWR) to end in: the best reading, unless it is above target and
+        does not beat bypass with confidence; (BYPASS, -1) when there is no result."""
         if self.best_state is None or self.fault is not None:
             return (BYPASS, -1.0)
         gb = self.seen.get(BYPASS)
-        if gb is not None and self.best_state != BYPASS and not self._beats(self.best_g, gb):
+        if (gb is not None and self.best_state != BYPASS and self.best_g > self.target_g
+                and not self._beats(self.best_g, gb)):
             return (BYPASS, swr_from_gamma(gb))
         return (self.best_state, swr_from_gamma(self.best_g))
 
@@ -207,11 +218,11 @@ class Strategy:
             l = b.l_max
         return (l, state[1], state[2])
 
-    @staticmethod
-    def _beats(g, gb):
-        # Clearly better than the antenna alone: readings near full reflection
-        # differ by noise and the coupler's leakage, so the margin grows there.
-        return g < gb - (0.01 + 0.25 * (1.0 - gb) * gb)
+    def _beats(self, g, gb):
+        # Clearly better than the antenna alone: the coupler's leakage can move
+        # each of two readings by |d| (1 + m^2) in opposite directions (the
+        # detectors' gain mismatch moves both alike and cancels).
+        return g < gb - (0.01 + self.leak * (2.0 + g * g + gb * gb))
 
     def _finish(self):
         self.done = True
@@ -389,9 +400,12 @@ class ModelFit(Strategy):
 
     def _sig(self, m):
         # Uncertainty of a reading m (|gamma|): ADC and noise, the coupler's
-        # leakage (|d| (1 - m^2) at most), a 0.3 dB forward/reflected gain
-        # mismatch (3.5 % of m), and the model's own error.
-        return 0.015 + self.leak * (1.0 - m * m) + 0.035 * m
+        # leakage, a 0.3 dB forward/reflected gain mismatch (3.5 % of m), and
+        # the model's own error.  The leakage d enters both ports, the reading
+        # is |gamma + d| / |1 + d gamma|: off by up to |d| (1 + m^2), |d| at a
+        # match and twice that near full reflection, where a complex d even
+        # reads a passive load above 1.  Half of that is taken as one sigma.
+        return 0.015 + 0.5 * self.leak * (1.0 + m * m) + 0.035 * m
 
     def _reading(self, st, m):
         a, b, c = self._coef(st)
@@ -574,18 +588,21 @@ class ModelFit(Strategy):
         yield from self._local()
 
     def _cold(self, m0):
-        if m0 < 0.97:
+        if m0 < _PROBE_BELOW:
             for p in self._probes():
                 yield from self._measure(p)
             yield from self._jumps()
         for _ in range(4):
             if self.best_g <= _NEAR:
                 return
-            found = yield from self._hunt()
-            # A hunt reading that came within reach of a hypothesis anchors the
-            # fit: trilaterate with every reading and go to the match it gives.
+            left = yield from self._hunt()
+            if not left:
+                # No load the network can match is consistent with the readings:
+                # a few readings of best effort, then through or the best found.
+                self.budget = min(self.budget, self.n + _HOPELESS_EXTRA)
+            # Trilaterate with every reading and go to the match it gives.
             yield from self._jumps()
-            if not found:
+            if not left:
                 return
 
     def _probes(self):
