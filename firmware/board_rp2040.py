@@ -35,6 +35,8 @@ class Board(BoardBase):
         self.gate_ms = cfg["counter"]["gate_ms"]
         self.cnt_pin = pins.get("freq_in", 21)  # must be an odd GPIO (PWM channel B)
         self.slice = (self.cnt_pin >> 1) & 7
+        # An input first (the pad's input enable), then over to the PWM block.
+        machine.Pin(self.cnt_pin, machine.Pin.IN)
         machine.mem32[_IO_BANK0 + 8 * self.cnt_pin + 4] = _FUNC_PWM
         self.wdt = machine.WDT(timeout=4000)
         import sys
@@ -56,12 +58,17 @@ class Board(BoardBase):
         machine.mem32[base + 0x00] = 0          # CSR: disabled
         machine.mem32[base + 0x04] = 1 << 4     # DIV = 1.0
         machine.mem32[base + 0x10] = 0xFFFF     # TOP
-        machine.mem32[base + 0x08] = 0          # CTR
         machine.mem32[base + 0x00] = (2 << 4) | 1  # DIVMODE rising edge of B, enable
+        # The count is the counter's advance over the gate (modulo its 16 bits),
+        # whatever it held before.
+        c0 = machine.mem32[base + 0x08] & 0xFFFF
+        t0 = time.ticks_us()
         time.sleep_ms(gate_ms)
-        n = machine.mem32[base + 0x08] & 0xFFFF
+        n = ((machine.mem32[base + 0x08] & 0xFFFF) - c0) & 0xFFFF
+        dt = time.ticks_diff(time.ticks_us(), t0)
         machine.mem32[base + 0x00] = 0
-        return n * self.prescale * 1000.0 / gate_ms
+        # Over the gate as it really lasted (sleep_ms is not exact to the microsecond).
+        return n * self.prescale * 1e6 / (dt if dt > 0 else gate_ms * 1000)
 
     def link_read(self):
         if self.uart is not None:

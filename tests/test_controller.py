@@ -359,3 +359,38 @@ def test_operator_bypass_sticks_until_a_tune_is_asked_for(tmp_path):
     b.inbox += link.encode("Q", 4, "tune", {})
     assert run(ctl, until=lambda c: c.state == LOCKED)
     assert m.relays[3] == 0 and m.violations == []
+
+
+def test_time_limit_and_watchdog_inside_a_long_search(tmp_path):
+    # A board whose clock runs fast while the search computes (a slow chip): the
+    # search feeds the watchdog from inside its own loops and stops at the tune's
+    # time limit mid-search, not only between readings.
+    from feedmatch.antenna import FixedLoad
+
+    m = make_model(antenna=FixedLoad(2.1, -1913.0))  # unmatchable: the longest search
+    b = FakeBoard(m)
+
+    feeds_in_search = []
+
+    class Slow(FakeBoard):
+        def ticks_ms(self):
+            self.t += 7  # every look at the clock costs 7 ms
+            return self.t
+
+    b = Slow(m)
+    ctl = Controller(b, board_config(tune__time_limit_ms=150), str(tmp_path))
+    orig = b.wdt_feed
+
+    def feed():
+        feeds_in_search.append(ctl.tune is not None)
+        orig()
+
+    b.wdt_feed = feed
+    m.key(10, 1.9e6)
+    assert run(ctl, 400, until=lambda c: c.rec.seq >= 1)
+    r = _records(_frames(b))[0]
+    assert r["why"].startswith("time limit")
+    assert r["ms"] <= 150 + 60
+    steps = r["n"]
+    # Fed more often than once per reading: the search fed it inside its work.
+    assert sum(feeds_in_search) > steps

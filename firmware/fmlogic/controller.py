@@ -205,9 +205,17 @@ class Controller:
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
                      "swr0": swr0, "hint": hint is not None, "why": why, "name": name,
                      "fwd": self.fwd}
+        # Inside long work the search feeds the watchdog and stops at the time limit.
+        strat.guard = self._guard
         memory.journal_write(self.d, {"freq_hz": f, "before": before, "swr_before": swr0,
                                       "strategy": name})
         self._set_state(SEEK, why)
+
+    def _guard(self):
+        b = self.board
+        b.wdt_feed()
+        tn = self.tune
+        return tn is not None and b.ticks_diff(b.ticks_ms(), tn["t0"]) > self.t["time_limit_ms"]
 
     def _seek_step(self):
         tn = self.tune
@@ -232,7 +240,7 @@ class Controller:
             return
         s.observe(fwd, ref)
         if s.done:
-            self._end_tune("budget spent" if s.n >= s.budget else "search ended")
+            self._end_tune("time limit" if s.timed_out else ("budget spent" if s.n >= s.budget else "search ended"))
 
     def _end_tune(self, why, abort=False):
         tn = self.tune

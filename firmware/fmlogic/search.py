@@ -91,6 +91,7 @@ class Strategy:
         self.no_rf = False
         self.fault = None
         self.guard = None
+        self.timed_out = False
         self._bad = 0
         self._check = None    # the state whose zero reading awaits a contrast reading
         # Operation counts for the host's model of the board's compute time:
@@ -246,6 +247,7 @@ class Strategy:
     def _tick(self):
         """Inside long work: feed the watchdog, stop when the tune's time is up."""
         if self.guard is not None and self.guard():
+            self.timed_out = True
             raise _Stop()
 
     def _measure(self, state):

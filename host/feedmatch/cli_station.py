@@ -6,7 +6,7 @@ import argparse
 import sys
 import time
 
-from .errors import LinkError
+from .errors import InputError, LinkError
 
 
 def _link(a: argparse.Namespace):
@@ -158,10 +158,21 @@ def cmd_virtual_board(a) -> int:
 
     signal.signal(signal.SIGTERM, _term)
     d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
-    vs = VirtualStation(st, d, use_python=a.python)
-    path = vs.start()
+    if a.emulate:
+        from .emulated import EmulatedStation
+        from .emulator import EmulatorMissing
+
+        vs = EmulatedStation(st, d, uf2=a.image)
+        try:
+            path = vs.start()
+        except EmulatorMissing as e:
+            raise InputError(f"cannot run the emulated {a.emulate}: {e}") from None
+    else:
+        vs = VirtualStation(st, d, use_python=a.python)
+        path = vs.start()
     print(path, flush=True)
-    sys.stderr.write(f"virtual board '{st.board_config.get('board_id')}' on {path} "
+    what = f"emulated {a.emulate}" if a.emulate else "virtual board"
+    sys.stderr.write(f"{what} '{st.board_config.get('board_id')}' on {path} "
                      f"(flash in {d}); Ctrl-C stops it\n")
     try:
         if a.carrier:
@@ -197,6 +208,9 @@ def add_commands(sub) -> None:
     s.add_argument("--dir", help="directory standing in for the board's flash")
     s.add_argument("--carrier", help="key a steady carrier, e.g. 10@7.1e6 (W@Hz or W@band)")
     s.add_argument("--play", action="store_true", help="play the station's operating script once")
+    s.add_argument("--emulate", choices=["rp2040"],
+                   help="run the firmware as deployed on an emulated chip (rp2040js, needs node and npm)")
+    s.add_argument("--image", help="with --emulate: the MicroPython .uf2 image for the Raspberry Pi Pico")
     s.set_defaults(fn=cmd_virtual_board)
 
     s = sub.add_parser("status", help="the board's state, relays, power and SWR")

@@ -132,6 +132,8 @@ class Pico:
         self._lock = threading.Lock()
         self._thread: threading.Thread | None = None
         self.closed = threading.Event()
+        self._fs: bytes | None = None
+        self._fs_ready = threading.Event()
 
     def start(self, timeout: float = 30.0) -> Pico:
         import json
@@ -189,6 +191,14 @@ class Pico:
     def resume(self) -> None:
         self._send("resume")
 
+    def dump_fs(self, timeout: float = 20.0) -> bytes:
+        """The flash file system as the chip has it now (a littlefs image)."""
+        self._fs_ready.clear()
+        self._send("dump")
+        if not self._fs_ready.wait(timeout):
+            raise TimeoutError("the emulator did not send its flash")
+        return self._fs or b""
+
     def _read(self) -> None:
         buf = b""
         conn = self.conn
@@ -213,19 +223,22 @@ class Pico:
             self.on_uart(bytes.fromhex(arg))
         elif cmd == "latch":
             word, oe, nanos = arg.split()
-            self.nanos = int(nanos)
+            self.nanos = int(float(nanos))
             if self.on_latch:
                 self.on_latch(bytes.fromhex(word), int(oe))
             else:
                 self.resume()
         elif cmd == "t":
-            self.nanos = int(arg)
+            self.nanos = int(float(arg))
         elif cmd == "wdt":
             self.resets += 1
             if self.on_wdt:
                 self.on_wdt()
         elif cmd == "booted" and self.on_boot:
             self.on_boot()
+        elif cmd == "fs":
+            self._fs = bytes.fromhex(arg)
+            self._fs_ready.set()
 
     def stop(self) -> None:
         self._send("quit")

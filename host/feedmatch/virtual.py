@@ -35,44 +35,163 @@ def find_micropython() -> str | None:
     return shutil.which("micropython")
 
 
-class VirtualStation:
-    def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
-                 wdt_s: float = 3.0):
+class StationBase:
+    """What every simulated station shares: the station model, the board's link
+    bridged to a pseudo-terminal (pyserial opens it like a USB serial port), and
+    the operator who keys carriers.  Subclasses run the firmware and move bytes:
+    _to_board(data) sends the host's bytes to the board's link; the board's
+    bytes come back through _from_board(data)."""
+
+    def __init__(self, station: Station, workdir: str | Path):
         self.station = station
-        self.dir = Path(workdir).resolve()  # the firmware runs with firmware/ as its cwd
+        self.dir = Path(workdir).resolve()
         self.dir.mkdir(parents=True, exist_ok=True)
-        self.use_python = use_python
-        self.wdt_s = wdt_s
         self.t0 = time.monotonic()
         self.model: StationModel = station.model(clock=lambda: time.monotonic() - self.t0)
         self.lock = threading.RLock()
-        self.proc: subprocess.Popen | None = None
         self.resets = 0
-        self.last_ask = time.monotonic()
         self._stop = threading.Event()
         self._threads: list[threading.Thread] = []
-        self._ser_conn: socket.socket | None = None
         self.master_fd = -1
+        self._slave_fd = -1
         self.pty_path = ""
         self.on_set = None  # test hook, called after each relay change
 
-    # -- life cycle -------------------------------------------------------------
-    def start(self) -> str:
-        cfg_path = self.dir / "config.json"
-        import json
-
-        cfg_path.write_text(json.dumps(self.station.board_config))
-        self.ctl_srv = _listen()
-        self.ser_srv = _listen()
+    def _open_pty(self) -> str:
         self.master_fd, slave_fd = os.openpty()
         tty.setraw(slave_fd)
         self.pty_path = os.ttyname(slave_fd)
         self._slave_fd = slave_fd  # kept open so the pty survives reopen by clients
+        return self.pty_path
+
+    def _thread(self, fn) -> None:
+        t = threading.Thread(target=fn, daemon=True)
+        t.start()
+        self._threads.append(t)
+
+    def _close_pty(self) -> None:
+        for t in self._threads:
+            t.join(timeout=2)
+        for fd in (self.master_fd, self._slave_fd):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
+
+    def _from_board(self, data: bytes) -> bool:
+        """The board's bytes to the pty; False when the pty is gone."""
+        data = self.mangle_out(data)
+        try:
+            os.write(self.master_fd, data)
+            return True
+        except OSError:
+            return False
+
+    def _to_board(self, data: bytes) -> None:
+        raise NotImplementedError
+
+    def _pty_loop(self) -> None:
+        while not self._stop.is_set():
+            try:
+                r, _, _ = select.select([self.master_fd], [], [], 0.2)
+            except (OSError, ValueError):
+                return
+            if not r:
+                continue
+            try:
+                data = os.read(self.master_fd, 4096)
+            except OSError:
+                time.sleep(0.05)
+                continue
+            if data:
+                self._to_board(data)
+
+    def mangle_out(self, data: bytes) -> bytes:
+        """Fault injection hook on the board-to-host bytes (tests replace it)."""
+        return data
+
+    def records_on_flash(self) -> int:
+        """The last tune record sequence number the board has written to its flash."""
+        raise NotImplementedError
+
+    # -- the operator -----------------------------------------------------------
+    def key(self, power_w: float, freq_hz: float = 0.0) -> None:
+        with self.lock:
+            self.model.key(power_w, freq_hz)
+        self._changed()
+
+    def key_reverse(self, power_w: float, freq_hz: float = 0.0) -> None:
+        """Feed power in at the antenna port (StationModel.key_reverse)."""
+        with self.lock:
+            self.model.key_reverse(power_w, freq_hz)
+        self._changed()
+
+    def _changed(self) -> None:
+        pass  # the emulated board refreshes its pins here
+
+    def press_button(self) -> None:
+        with self.lock:
+            self.model.button = True
+        self._changed()
+
+    def play(self, step: Step, target_swr: float, tune_timeout_s: float = 6.0) -> float:
+        """Key a tune carrier until the SWR is good (or give up), then operate, then unkey.
+
+        Returns the SWR the transmitter saw at operating power."""
+        if step.via == "button":
+            self.press_button()
+        self.key(step.tune_w, step.freq_hz)
+        t_end = time.monotonic() + tune_timeout_s
+        quiet_since = time.monotonic()
+        n0 = self.model.switches
+        # The operator keys up once the relays have been quiet for a while (the
+        # tuner is done), or when the SWR is good and steady.
+        while time.monotonic() < t_end:
+            time.sleep(0.02)
+            with self.lock:
+                swr = self.model.swr()
+                moved = self.model.switches != n0
+                n0 = self.model.switches
+            if moved:
+                quiet_since = time.monotonic()
+            quiet = time.monotonic() - quiet_since
+            if quiet > 0.6 or (swr <= target_swr and quiet > 0.25):
+                break
+        # A real operator keys up only after the tuner has stopped; give it a beat.
+        time.sleep(0.1)
+        self.key(step.operate_w, step.freq_hz)
+        with self.lock:
+            swr = self.model.swr()
+        time.sleep(step.operate_s)
+        self.key(0.0)
+        time.sleep(0.1)
+        return swr
+
+
+
+class VirtualStation(StationBase):
+    """The firmware under the MicroPython unix port (or CPython) with board_virtual.py."""
+
+    def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
+                 wdt_s: float = 3.0):
+        StationBase.__init__(self, station, workdir)  # the firmware runs with firmware/ as its cwd
+        self.use_python = use_python
+        self.wdt_s = wdt_s
+        self.proc: subprocess.Popen | None = None
+        self.last_ask = time.monotonic()
+        self._ser_conn: socket.socket | None = None
+
+    # -- life cycle -------------------------------------------------------------
+    def start(self) -> str:
+        import json
+
+        (self.dir / "config.json").write_text(json.dumps(self.station.board_config))
+        self.ctl_srv = _listen()
+        self.ser_srv = _listen()
+        self._open_pty()
         self._spawn()
         for fn in (self._ctl_loop, self._ser_loop, self._pty_loop, self._watchdog):
-            t = threading.Thread(target=fn, daemon=True)
-            t.start()
-            self._threads.append(t)
+            self._thread(fn)
         return self.pty_path
 
     def _cmd(self) -> list[str]:
@@ -122,18 +241,12 @@ class VirtualStation:
             except subprocess.TimeoutExpired:
                 p.kill()
                 p.wait()
-        for s in (self.ctl_srv, self.ser_srv):
+        for srv in (self.ctl_srv, self.ser_srv):
             try:
-                s.close()
+                srv.close()
             except OSError:
                 pass
-        for t in self._threads:
-            t.join(timeout=2)
-        for fd in (self.master_fd, self._slave_fd):
-            try:
-                os.close(fd)
-            except OSError:
-                pass
+        self._close_pty()
 
     # -- the board's sensors ----------------------------------------------------
     def _accepted(self, srv: socket.socket):
@@ -224,90 +337,23 @@ class VirtualStation:
                 return
             if not data:
                 return
-            data = self.mangle_out(data)
-            try:
-                os.write(self.master_fd, data)
-            except OSError:
+            if not self._from_board(data):
                 return
 
-    def _pty_loop(self) -> None:
-        while not self._stop.is_set():
+    def _to_board(self, data: bytes) -> None:
+        conn = self._ser_conn
+        if conn is not None:
             try:
-                r, _, _ = select.select([self.master_fd], [], [], 0.2)
-            except (OSError, ValueError):
-                return
-            if not r:
-                continue
-            try:
-                data = os.read(self.master_fd, 4096)
+                conn.sendall(data)
             except OSError:
-                time.sleep(0.05)
-                continue
-            conn = self._ser_conn
-            if conn is not None and data:
-                try:
-                    conn.sendall(data)
-                except OSError:
-                    pass
+                pass
 
     def records_on_flash(self) -> int:
-        """The last tune record sequence number the board has written to its flash."""
         from fmlogic.memory import Records
 
         r = Records(str(self.dir), 10000)
         r.load()
         return r.seq
-
-    def mangle_out(self, data: bytes) -> bytes:
-        """Fault injection hook on the board-to-host bytes (tests replace it)."""
-        return data
-
-    # -- the operator -----------------------------------------------------------
-    def key(self, power_w: float, freq_hz: float = 0.0) -> None:
-        with self.lock:
-            self.model.key(power_w, freq_hz)
-
-    def key_reverse(self, power_w: float, freq_hz: float = 0.0) -> None:
-        """Feed power in at the antenna port (StationModel.key_reverse)."""
-        with self.lock:
-            self.model.key_reverse(power_w, freq_hz)
-
-    def press_button(self) -> None:
-        with self.lock:
-            self.model.button = True
-
-    def play(self, step: Step, target_swr: float, tune_timeout_s: float = 6.0) -> float:
-        """Key a tune carrier until the SWR is good (or give up), then operate, then unkey.
-
-        Returns the SWR the transmitter saw at operating power."""
-        if step.via == "button":
-            self.press_button()
-        self.key(step.tune_w, step.freq_hz)
-        t_end = time.monotonic() + tune_timeout_s
-        quiet_since = time.monotonic()
-        n0 = self.model.switches
-        # The operator keys up once the relays have been quiet for a while (the
-        # tuner is done), or when the SWR is good and steady.
-        while time.monotonic() < t_end:
-            time.sleep(0.02)
-            with self.lock:
-                swr = self.model.swr()
-                moved = self.model.switches != n0
-                n0 = self.model.switches
-            if moved:
-                quiet_since = time.monotonic()
-            quiet = time.monotonic() - quiet_since
-            if quiet > 0.6 or (swr <= target_swr and quiet > 0.25):
-                break
-        # A real operator keys up only after the tuner has stopped; give it a beat.
-        time.sleep(0.1)
-        self.key(step.operate_w, step.freq_hz)
-        with self.lock:
-            swr = self.model.swr()
-        time.sleep(step.operate_s)
-        self.key(0.0)
-        time.sleep(0.1)
-        return swr
 
 
 def _listen() -> socket.socket:

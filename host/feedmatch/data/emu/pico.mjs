@@ -12,6 +12,7 @@
 //   freq HZ              square wave on the counter pin (0: none)
 //   pin GPIO 0|1         drive an input pin (the tune button)
 //   resume               continue after a relay latch
+//   dump                 send the flash file system back
 //   quit
 // emulator -> host:
 //   booted NANOS         the chip (re)started
@@ -23,6 +24,9 @@
 //   oe 0|1 NANOS         the relay chain's output enable changed
 //   wdt NANOS            the watchdog fired: the chip restarts, flash kept
 //   t NANOS              simulated time, about every 50 ms of it
+//   fs HEX               the flash file system (answer to dump)
+// UART0 bytes from the host are fed at the UART's own baud rate, 10 bits a byte,
+// so the chip's 32-byte receive FIFO sees them as a real line would.
 import fs from 'fs';
 import net from 'net';
 import { decodeBlock } from 'uf2';
@@ -57,6 +61,17 @@ const pinDrive = {};
 let replQueue = [];
 let replReady = false;
 let lastT = 0;
+const uartQueue = [];
+let uartAlarm = null;
+let uartBusy = false;
+
+function uartNext() {
+  const u = sim.rp2040.uart[pins.uart];
+  if (!uartQueue.length) { uartBusy = false; return; }
+  u.feedByte(uartQueue.shift());
+  const baud = u.baudRate > 0 ? u.baudRate : 115200;
+  uartAlarm.schedule(10 * 1e9 / baud);
+}
 
 function boot() {
   if (sim) sim.stop();
@@ -65,6 +80,7 @@ function boot() {
   mcu.loadBootrom(bootromB1);
   mcu.logger = new ConsoleLogger(LogLevel.Error);
   mcu.flash.set(flash);   // the flash survives a watchdog reset
+  attachFlash(mcu);
   mcu.adc.channelValues = adcValues;
   cdc = new USBCDC(mcu.usbCtrl);
   replReady = false;
@@ -82,34 +98,154 @@ function boot() {
   };
   const spi = mcu.spi[0];
   spi.onTransmit = (v) => { spiBytes.push(v & 0xff); if (spiBytes.length > 16) spiBytes.shift(); spi.completeTransmit(0); };
+  for (const u of mcu.uart) {
+    // rp2040js 1.4.1 raises the UART's transmit interrupt on every check, so a
+    // driver that unmasks it (MicroPython's does) never leaves its handler.  As on
+    // the chip: the transmit interrupt is raised when a byte has gone out (the
+    // FIFO drained) and cleared by the interrupt-clear register.
+    u.checkInterrupts = function () {
+      this.rp2040.setInterrupt(this.irq, !!(this.interruptStatus & this.interruptMask));
+    };
+    const write = u.writeUint32.bind(u);
+    u.writeUint32 = function (offset, value) {
+      write(offset, value);
+      if (offset === 0) { this.interruptStatus |= 1 << 5; this.checkInterrupts(); }  // UARTDR: TXINTR
+    };
+  }
+  // rp2040js 1.4.1 tests the PWM pin direction with "&&" for "&", so a B input
+  // never counts an edge while any other pin is an output: the same check, right.
+  mcu.pwm.gpioOnInput = function (index) {
+    if (this.gpioDirection & (1 << index)) return;
+    for (const channel of this.channels) {
+      if (channel.pinB1 === index || channel.pinB2 === index) channel.gpioBChanged();
+    }
+  };
   const uart = mcu.uart[pins.uart];
   uart.onByte = (v) => say('uart ' + hex([v]));
   mcu.gpio[pins.relay_latch].addListener((state, old) => {
     if (state === 1 && old !== 1) {
       const oe = mcu.gpio[pins.relay_oe].value === 1 ? 1 : 0;
-      say(`latch ${hex(spiBytes)} ${oe} ${sim.clock.nanos}`);
+      say(`latch ${hex(spiBytes)} ${oe} ${Math.round(sim.clock.nanos)}`);
       spiBytes = [];
       sim.stop();
     }
   });
-  mcu.gpio[pins.relay_oe].addListener((state) => say(`oe ${state === 1 ? 1 : 0} ${sim.clock.nanos}`));
+  mcu.gpio[pins.relay_oe].addListener((state) => say(`oe ${state === 1 ? 1 : 0} ${Math.round(sim.clock.nanos)}`));
   mcu.peripherals[0x40058].onWatchdogTrigger = () => {   // WATCHDOG_BASE
-    say(`wdt ${sim.clock.nanos}`);
-    flash.set(mcu.flash);
+    say(`wdt ${Math.round(sim.clock.nanos)}`);
+    flash.set(mcu.flash.subarray(0, flash.length));
     setImmediate(boot);
   };
   for (const [g, v] of Object.entries(pinDrive)) mcu.gpio[Number(g)].setInputValue(v);
   freqAlarm = sim.clock.createAlarm(toggle);
-  if (freqHz > 0) freqAlarm.schedule(5e8 / freqHz);
+  uartAlarm = sim.clock.createAlarm(uartNext);
+  uartBusy = false;
+  if (freqHz > 0) startWave();
   mcu.core.PC = 0x10000000;
-  say(`booted ${sim.clock.nanos}`);
+  say(`booted ${Math.round(sim.clock.nanos)}`);
   run();
 }
 
+// The QSPI flash behind the SSI, as far as MicroPython's flash writes need it:
+// rp2040js 1.4.1 emulates flash only for reads (XIP), and leaves IO_QSPI (the
+// chip select the boot ROM's flash routines force) unimplemented.  Commands, by
+// the usual serial NOR flash set (a W25Q16JV-like part): 06 write enable,
+// 05/35 status (never busy), 02 page program (bits only cleared, within the
+// 256-byte page), 20/52/D8 erase 4/32/64 KB, C7/60 chip erase, 03/0B read,
+// 9F JEDEC id, 4B unique id; status register 2 reads with its quad-enable bit
+// set, so the boot stage 2 never rewrites it.  A command is the bytes between
+// chip-select low and high: forced by the boot ROM's routines through IO_QSPI,
+// or driven by the SSI itself, which lets it go when its transmit FIFO has
+// emptied (the code then polls the status register: that ends the command).
+function attachFlash(mcu) {
+  const ssi = mcu.peripherals[0x18000];
+  const ioq = mcu.peripherals[0x40018];
+  const flash = mcu.flash;
+  const regs = {};
+  const rx = [];
+  let cmd = [];
+  let cs = 1;
+  let forced = false;
+  const addr = (k) => ((cmd[k] << 16) | (cmd[k + 1] << 8) | cmd[k + 2]) >>> 0;
+  function respond(n) {
+    const c = cmd[0];
+    if (c === 0x03 && n >= 4) return flash[(addr(1) + n - 4) % flash.length];
+    if (c === 0x0b && n >= 5) return flash[(addr(1) + n - 5) % flash.length];
+    if (c === 0x9f) return [0xef, 0x40, 0x15][n - 1] || 0;
+    if (c === 0x35 && n >= 1) return 0x02;
+    if (c === 0x4b && n >= 5) return [0xfe, 0xed, 0x0b, 0x0a, 0x71, 0x2f, 0x15, 0x26][(n - 5) & 7];
+    return 0;
+  }
+  function endCmd() {
+    const c = cmd[0];
+    if (c === 0x02 && cmd.length > 4) {
+      const a = addr(1);
+      for (let i = 0; i < cmd.length - 4; i++) {
+        const at = ((a & ~0xff) | ((a + i) & 0xff)) % flash.length;
+        flash[at] &= cmd[4 + i];
+      }
+    } else if ((c === 0x20 || c === 0x52 || c === 0xd8) && cmd.length >= 4) {
+      const size = c === 0x20 ? 4096 : c === 0x52 ? 32768 : 65536;
+      const a = addr(1) & ~(size - 1);
+      flash.fill(0xff, a, Math.min(a + size, flash.length));
+    } else if (c === 0xc7 || c === 0x60) {
+      flash.fill(0xff);
+    }
+    cmd = [];
+  }
+  ioq.readUint32 = (off) => regs[off] || 0;
+  ioq.writeUint32 = (off, v) => {
+    regs[off] = v;
+    if (off === 0x0c) {                  // GPIO_QSPI_SS_CTRL: OUTOVER in bits 8-9
+      const over = (v >> 8) & 3;
+      const level = over === 2 ? 0 : 1;  // 2: drive low; otherwise idle high
+      if (level === 1 && cs === 0) endCmd();
+      if (level === 0 && cs === 1) cmd = [];
+      cs = level;
+      forced = over >= 2;
+    }
+  };
+  const ssiRead = ssi.readUint32.bind(ssi);
+  const ssiWrite = ssi.writeUint32.bind(ssi);
+  ssi.readUint32 = (off) => {
+    if (off === 0x60) return rx.length ? rx.shift() : 0;         // DR0
+    if (off === 0x28) {                                          // SR: TFNF, TFE, RFNE
+      if (!forced && cmd.length) endCmd();
+      return 0x6 | (rx.length ? 0x8 : 0);
+    }
+    if (off === 0x24) return rx.length;                          // RXFLR
+    if (off === 0x20) return 0;                                  // TXFLR: sent at once
+    return ssiRead(off);
+  };
+  ssi.writeUint32 = (off, v) => {
+    if (off === 0x08) {                                          // SSIENR: FIFOs cleared
+      rx.length = 0;
+      if (!forced) cmd = [];
+    }
+    if (off === 0x60) {
+      cmd.push(v & 0xff);
+      rx.push(respond(cmd.length - 1));
+      return;
+    }
+    ssiWrite(off, v);
+  };
+}
+
+// The counter pin's square wave: each edge at its own time on a fixed grid
+// (an alarm fires at the first instruction after its time; rescheduling from
+// there would stretch every period by that overshoot).
+let freqNext = 0;
 function toggle() {
   if (freqHz <= 0) return;
   freqLevel = !freqLevel;
   sim.rp2040.gpio[pins.freq_in].setInputValue(freqLevel);
+  const half = 5e8 / freqHz;
+  const now = sim.clock.nanos;
+  freqNext = freqNext + half > now ? freqNext + half : now + half;
+  freqAlarm.schedule(freqNext - now);
+}
+function startWave() {
+  freqNext = sim.clock.nanos + 5e8 / freqHz;
   freqAlarm.schedule(5e8 / freqHz);
 }
 
@@ -119,7 +255,7 @@ function run() {
 
 setInterval(() => {
   if (sim && sim.clock.nanos - lastT > 5e7) {
-    lastT = sim.clock.nanos;
+    lastT = Math.round(sim.clock.nanos);
     say('t ' + lastT);
   }
 }, 20);
@@ -142,13 +278,20 @@ sock.on('data', (d) => {
     const arg = sp < 0 ? '' : line.slice(sp + 1);
     if (cmd === 'repl') { replQueue.push(arg); flushRepl(); }
     else if (cmd === 'cdc') { for (const b of Buffer.from(arg, 'hex')) cdc.sendSerialByte(b); }
-    else if (cmd === 'uart') { const u = sim.rp2040.uart[pins.uart]; for (const b of Buffer.from(arg, 'hex')) u.feedByte(b); }
+    else if (cmd === 'uart') {
+      for (const b of Buffer.from(arg, 'hex')) uartQueue.push(b);
+      if (!uartBusy) { uartBusy = true; uartNext(); }
+    }
+    else if (cmd === 'dump') {
+      flash.set(sim.rp2040.flash.subarray(0, flash.length));
+      say('fs ' + Buffer.from(flash.subarray(FLASH_FS_START)).toString('hex'));
+    }
     else if (cmd === 'adc') { const [ch, v] = arg.split(' ').map(Number); adcValues[ch] = v; }
     else if (cmd === 'freq') {
       const f = Number(arg);
       const was = freqHz;
       freqHz = f;
-      if (f > 0 && was <= 0) freqAlarm.schedule(5e8 / f);
+      if (f > 0 && was <= 0) startWave();
     }
     else if (cmd === 'pin') { const [g, v] = arg.split(' ').map(Number); pinDrive[g] = !!v; sim.rp2040.gpio[g].setInputValue(!!v); }
     else if (cmd === 'resume') { if (!sim.executing) run(); }
