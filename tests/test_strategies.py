@@ -193,6 +193,7 @@ def test_identical_decisions_in_single_precision():
     assert run_mpy(mp, DECISIONS).replace(" ", "") == _decisions_here()
 
 
+@pytest.mark.parametrize("arch", ["armv6m", "xtensawin", "x64"])
 def test_every_firmware_file_compiles_with_mpy_cross(tmp_path, arch):
     # For the RP2040, the ESP32 and the unix port: the viper kernels are machine code.
     from .conftest import BIN
