@@ -498,7 +498,7 @@ def conclude(s, abort=False):
     through = best == search.BYPASS
     final = (0, 0, 1) if through else best
     g = s.seen.get(best, 2.0)
-    if g <= s.accept_g:
+    if g <= s.accept_g or (s.confirmed and best == s.order[0]):
         outcome, note = LOCKED, ("matched without the network" if through else "matched")
     elif g <= s.target_g:
         outcome = THROUGH if through else BEST

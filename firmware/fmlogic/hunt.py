@@ -92,6 +92,7 @@ def _build():
     for k in range(len(RING_N)):
         n += RING_N[k]
     pts = array("H", bytes(4 * n))
+    uu = array("H", bytes(2 * n))
     ring = bytearray(n)
     i = 0
     for k in range(len(RING_N)):
@@ -106,14 +107,17 @@ def _build():
             # that axis, long ones (inductive) just above it.
             j = (m - (jj + 1) // 2) % m if jj & 1 else jj // 2
             s, c = _isincos(off + (j * 65536) // m)
-            pts[2 * i] = BIAS + ((rq * c + (1 << 14)) >> 15)
-            pts[2 * i + 1] = BIAS + ((rq * s + (1 << 14)) >> 15)
+            gx = (rq * c + (1 << 14)) >> 15
+            gy = (rq * s + (1 << 14)) >> 15
+            pts[2 * i] = BIAS + gx
+            pts[2 * i + 1] = BIAS + gy
+            uu[i] = (gx * gx + gy * gy) >> 12
             ring[i] = k
             i += 1
-    return pts, ring, n
+    return pts, uu, ring, n
 
 
-GRID, RING, N = _build()
+GRID, UU, RING, N = _build()
 
 
 def point(i):
@@ -184,34 +188,41 @@ def _reach(grid, flags, n: int, xm8: int, bm8: int, x2m: int, b2m: int):
 
 
 @micropython.viper
-def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int) -> int:
-    # pen[i] += min(16 * ((p2 - m2) / sigma)^2, cap) for the predicted |gamma|^2
-    # p2 of hypothesis i through the state with Moebius coefficients co
-    # (a, b, c as biased Q12 pairs: gamma = (a g + b) / (c g + 1)).
-    # Hypotheses already at or above cut are out and are not updated.  Returns
-    # how many were (for the cost model).
+def _update(grid, uu, pen, act, na: int, co, m2: int, inv_s: int, cap: int, cut: int) -> int:
+    # For each hypothesis i still in act[0:na]: pen[i] += min(16 ((p2 - m2) / sigma)^2,
+    # cap) for the predicted |gamma|^2 p2 through the state with Moebius
+    # coefficients co: gamma = (a g + b) / (c g + 1), so, with u = |g|^2
+    # (tabulated in uu),
+    #   |a g + b|^2 = |a|^2 u + 2 Re(a conj(b) g) + |b|^2
+    #   |c g + 1|^2 = |c|^2 u + 2 Re(c g) + 1,
+    # six multiplications a hypothesis.  co holds, biased, Q12: |a|^2, re and im of
+    # a conj(b), |b|^2, |c|^2, re and im of c.  Hypotheses that reach cut leave
+    # act (compacted in place); returns how many stay.
     g = ptr16(grid)
+    u = ptr16(uu)
     p = ptr32(pen)
+    q = ptr16(act)
     c = ptr16(co)
-    ar = int(c[0]) - 32768
-    ai = int(c[1]) - 32768
-    br = int(c[2]) - 32768
-    bi = int(c[3]) - 32768
-    cr = int(c[4]) - 32768
-    ci = int(c[5]) - 32768
+    a2 = int(c[0]) - 32768
+    pr = int(c[1]) - 32768
+    pi = int(c[2]) - 32768
+    b2 = (int(c[3]) - 32768) << 12
+    c2 = int(c[4]) - 32768
+    cr = int(c[5]) - 32768
+    ci = int(c[6]) - 32768
     k = 0
-    for i in range(n):
-        if int(p[i]) >= cut:
-            continue
-        k += 1
+    for j in range(na):
+        i = int(q[j])
         gx = int(g[2 * i]) - 32768
         gy = int(g[2 * i + 1]) - 32768
-        nr = ((ar * gx - ai * gy) >> 12) + br
-        ni = ((ar * gy + ai * gx) >> 12) + bi
-        dr = ((cr * gx - ci * gy) >> 12) + 4096
-        di = (cr * gy + ci * gx) >> 12
-        n2 = nr * nr + ni * ni
-        d2 = dr * dr + di * di
+        ui = int(u[i])
+        n2 = a2 * ui + 2 * (pr * gx - pi * gy) + b2
+        d2 = c2 * ui + 2 * (cr * gx - ci * gy) + 16777216
+        # Rounding can take either just below zero where the true value is ~0.
+        if n2 < 0:
+            n2 = 0
+        if d2 < 4096:
+            d2 = 4096
         p2 = (n2 << 3) // ((d2 >> 9) + 1)
         if p2 > 4096:
             p2 = 4096
@@ -219,51 +230,64 @@ def _update(grid, pen, n: int, co, m2: int, inv_s: int, cap: int, cut: int) -> i
         e = (z * z) >> 4
         if e > cap:
             e = cap
-        p[i] = int(p[i]) + e
+        v = int(p[i]) + e
+        p[i] = v
+        if v < cut:
+            q[k] = i
+            k += 1
     return k
 
 
 @micropython.viper
-def _out(pen, tried, n: int, cut: int):
-    p = ptr32(pen)
+def _active(tried, act, n: int) -> int:
+    # The hypotheses not marked in tried (the reachable ones) into act; how many.
     t = ptr8(tried)
+    q = ptr16(act)
+    k = 0
     for i in range(n):
-        if int(t[i]):
-            p[i] = cut
+        if int(t[i]) == 0:
+            q[k] = i
+            k += 1
+    return k
 
 
 @micropython.viper
-def _pick(pen, tried, n: int, cut: int) -> int:
-    # The least penalised hypothesis not yet tried (lowest index on a tie), or -1.
+def _pick(pen, tried, act, na: int) -> int:
+    # The least penalised active hypothesis not yet tried (lowest index on a tie), or -1.
     p = ptr32(pen)
     t = ptr8(tried)
+    q = ptr16(act)
     best = -1
-    bv = cut
-    for i in range(n):
+    bv = 0
+    for j in range(na):
+        i = int(q[j])
         if int(t[i]) == 0:
             v = int(p[i])
-            if v < bv:
+            if best < 0 or v < bv or (v == bv and i < best):
                 bv = v
                 best = i
     return best
 
 
 @micropython.viper
-def _count(pen, tried, n: int, cut: int) -> int:
+def _least(pen, act, na: int) -> int:
     p = ptr32(pen)
-    t = ptr8(tried)
-    k = 0
-    for i in range(n):
-        if int(t[i]) == 0 and int(p[i]) < cut:
-            k += 1
-    return k
-
-
-_NONE = bytearray(N)  # "nothing tried", for best()
+    q = ptr16(act)
+    best = -1
+    bv = 0
+    for j in range(na):
+        i = int(q[j])
+        v = int(p[i])
+        if best < 0 or v < bv or (v == bv and i < best):
+            bv = v
+            best = i
+    return best
 
 
 class Hunt:
-    """Penalties of every hypothesis for one tune; about 7 KB."""
+    """Penalties of the hypotheses for one tune; about 9 KB.  Only hypotheses the
+    network can reach at this frequency and that the readings have not ruled out
+    are kept in act, so a reading costs in proportion to what is still open."""
 
     CAP = 144   # one reading adds at most (3 sigma)^2 * 16: a bad reading cannot condemn alone
     CUT = 432   # three readings at the cap: out
@@ -271,7 +295,8 @@ class Hunt:
     def __init__(self, xm, bm):
         self.pen = array("i", bytes(4 * N))
         self.tried = bytearray(N)
-        self.co = array("H", bytes(12))
+        self.act = array("H", bytes(2 * N))
+        self.co = array("H", bytes(14))
         self.evals = 0    # hypothesis updates and scans (the cost model counts them)
         self.scans = 0
         xm8 = int(min(xm, 120.0) * 1.1 * 256)
@@ -279,33 +304,42 @@ class Hunt:
         # Unreachable hypotheses start as tried, never aimed at, and out: no
         # reading updates them (a load there cannot be matched anyway).
         _reach(GRID, self.tried, N, xm8, bm8, int(1 + (xm * 1.1) ** 2), int(1 + (bm * 1.1) ** 2))
-        _out(self.pen, self.tried, N, self.CUT)
+        self.na = _active(self.tried, self.act, N)
+        self._last = 0
 
     def add(self, a, b, c, m, sigma):
         """One reading m (|gamma|) of a state with Moebius coefficients a, b, c, with
         the uncertainty sigma of m."""
         co = self.co
-        co[0] = q12(a.real)
-        co[1] = q12(a.imag)
-        co[2] = q12(b.real)
-        co[3] = q12(b.imag)
-        co[4] = q12(c.real)
-        co[5] = q12(c.imag)
+        p = a * complex(b.real, -b.imag)
+        co[0] = q12(a.real * a.real + a.imag * a.imag)
+        co[1] = q12(p.real)
+        co[2] = q12(p.imag)
+        co[3] = q12(b.real * b.real + b.imag * b.imag)
+        co[4] = q12(c.real * c.real + c.imag * c.imag)
+        co[5] = q12(c.real)
+        co[6] = q12(c.imag)
         s2 = 2.0 * m * sigma + sigma * sigma  # sigma of |gamma|^2
         inv = int(16.0 * ONE / (s2 * ONE) + 0.5)
         if inv > 60000:
             inv = 60000
-        self.evals += _update(GRID, self.pen, N, co, int(m * m * ONE + 0.5), inv, self.CAP, self.CUT)
+        self.evals += self.na
+        if self.na:
+            # The last one standing is remembered: best() still has an answer
+            # when every hypothesis is out.
+            self._last = _least(self.pen, self.act, self.na)
+        self.na = _update(GRID, UU, self.pen, self.act, self.na, co, int(m * m * ONE + 0.5), inv,
+                          self.CAP, self.CUT)
 
     def pick(self):
         self.scans += 1
-        return _pick(self.pen, self.tried, N, self.CUT)
+        return _pick(self.pen, self.tried, self.act, self.na)
 
     def left(self):
-        self.scans += 1
-        return _count(self.pen, self.tried, N, self.CUT)
+        return self.na
 
     def best(self):
-        """The least penalised hypothesis overall (tried or not)."""
+        """The least penalised hypothesis still open (or the last one to leave)."""
         self.scans += 1
-        return _pick(self.pen, _NONE, N, 1 << 30)
+        i = _least(self.pen, self.act, self.na)
+        return i if i >= 0 else self._last

@@ -81,17 +81,17 @@ def _nearest(table, step, value):
     if best > top:
         best = top
     err = abs(table[best] - value)
-    for d in (1, -1):
-        code = best + d
-        k = 0
-        while 0 <= code <= top and k < 3:
-            e = abs(table[code] - value)
-            if e >= err:
-                break
-            err = e
-            best = code
-            code += d
-            k += 1
+    d = 1 if table[best] < value else -1
+    code = best + d
+    k = 0
+    while 0 <= code <= top and k < 3:
+        e = abs(table[code] - value)
+        if e >= err:
+            break
+        err = e
+        best = code
+        code += d
+        k += 1
     return best
 
 

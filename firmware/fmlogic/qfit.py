@@ -236,7 +236,7 @@ class Rows:
         self.calls += 1
         return e if e >= 0 else 65535
 
-    def refine(self, g, levels=3, spacing=0.3):
+    def refine(self, g, levels=2, spacing=0.3):
         """The best load near g: grids of 5 x 5 points, hyperbolic spacing
         `spacing` then two and a half times finer per level; a coarse best on
         the grid's rim moves the grid there (three times at most).

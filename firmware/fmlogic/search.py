@@ -42,6 +42,8 @@ _CLOSE = 0.3
 _PROBE_BELOW = 0.93
 # Readings left for best effort once the hunt finds no matchable load consistent.
 _HOPELESS_EXTRA = const(10)
+# How far a stored lock's reading may come back above the accept level (noise).
+_REPEAT = 0.02
 # A hunt probe aims two hyperbolic units short of its hypothesis: a reading
 # there of tanh(1) = 0.76 is a hit; below this, the fit can take over.
 _HIT = 0.86
@@ -92,6 +94,9 @@ class Strategy:
         self.fault = None
         self.guard = None
         self.timed_out = False
+        # A stored lock whose reading came back within noise of the accept level:
+        # two readings of the same state now stand behind it.
+        self.confirmed = False
         self._bad = 0
         self._check = None    # the state whose zero reading awaits a contrast reading
         # Operation counts for the host's model of the board's compute time:
@@ -656,7 +661,7 @@ class ModelFit(Strategy):
             if self.best_g <= _NEAR:
                 break
             s = None
-            for _try in range(16):
+            for _try in range(8):
                 i = h.pick()
                 if i < 0:
                     left = False
@@ -707,7 +712,7 @@ class ModelFit(Strategy):
             if step > 1:
                 step >>= 1
             elif self.n == n0:
-                if self.best_g <= self.target_g or tried_wide:
+                if self.best_g <= self.accept_g or tried_wide:
                     return
                 # Stuck above target: the other places the readings allow.
                 tried_wide = True
@@ -775,9 +780,14 @@ class Recall(ModelFit):
         if hint is not None and self._valid(hint[0], hint[1]) and hint[2] in (0, 1):
             st = (hint[0], hint[1], hint[2])
             g = yield from self._measure(st)
+            stored = gamma_from_swr(hint[3]) if len(hint) > 3 and hint[3] >= 1.0 else 2.0
+            if g <= self.accept_g + _REPEAT and stored <= self.accept_g:
+                # The state was a lock here and reads so again, within a reading's noise.
+                self.confirmed = True
+                return
             if g <= _NEAR:
                 yield from self._local()
-                if self.best_g <= self.target_g:
+                if self.best_g <= self.accept_g:
                     return
         yield from ModelFit._run(self)
 
