@@ -27,3 +27,62 @@ def test_band_table_counts():
     rows = [_row(i, 7.1e6, 100, 90) for i in range(3)] + [dict(_row(9, 7.1e6, 5, 5), outcome="best-effort")]
     b = band_table(rows)[0]
     assert b["tunes"] == 4 and b["success_rate"] == 0.75 and b["most_used_state"] == [100, 90, "tx"]
+
+
+def _logbook_with_one_tune(path):
+    from feedmatch.logbook import Logbook
+
+    book = Logbook(path)
+    book.start_session("hollow-oak-1", "/dev/null")
+    book.add({"board_id": "hollow-oak-1", "seq": 1, "freq_hz": 7.1e6, "swr_before": 3.0, "swr_after": 1.2,
+              "outcome": "locked", "n": 5, "ms": 400})
+    book.close()
+
+
+def test_readers_leave_a_foreign_database_untouched(tmp_path):
+    import sqlite3
+
+    import pytest
+    from feedmatch.errors import InputError
+    from feedmatch.fitbox import traces_from_logbook
+    from feedmatch.report import make_report
+
+    foreign = tmp_path / "other.sqlite"
+    db = sqlite3.connect(foreign)
+    db.execute("CREATE TABLE contacts (call TEXT)")
+    db.commit()
+    db.close()
+    before = foreign.read_bytes()
+    for reader in (make_report, traces_from_logbook):
+        with pytest.raises(InputError, match="not a feedmatch logbook"):
+            reader(str(foreign))
+    assert foreign.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["other.sqlite"]  # no -wal, no -shm
+
+
+def test_a_reader_does_not_write_a_real_logbook(tmp_path):
+    from feedmatch.report import make_report
+
+    book = tmp_path / "station.sqlite"
+    _logbook_with_one_tune(book)
+    book.chmod(0o444)  # a reader must manage without write access
+    before = book.read_bytes()
+    assert make_report(str(book))["tunes"] == 1
+    assert book.read_bytes() == before
+
+
+def test_a_corrupt_logbook_is_reported_not_read_as_empty(tmp_path):
+    import pytest
+    from feedmatch.errors import InputError
+    from feedmatch.report import make_report
+
+    book = tmp_path / "station.sqlite"
+    _logbook_with_one_tune(book)
+    raw = bytearray(book.read_bytes())
+    # Overwrite the middle of the second page (the first table's b-tree): SQLite's
+    # page layout, https://sqlite.org/fileformat2.html (page size at offset 16).
+    page = int.from_bytes(raw[16:18], "big")
+    raw[page + 8: page + page // 2] = b"\xa5" * (page // 2 - 8)
+    book.write_bytes(bytes(raw))
+    with pytest.raises(InputError, match="integrity|not a usable"):
+        make_report(str(book))

@@ -6,7 +6,7 @@ import argparse
 import sys
 import time
 
-from .errors import InputError, LinkError
+from .errors import BoardRefused, InputError, LinkError
 
 
 def _link(a: argparse.Namespace):
@@ -60,10 +60,10 @@ def cmd_tune(a) -> int:
             try:
                 ln.request("tune", {"freq_hz": f})
                 break
-            except LinkError as e:
+            except BoardRefused as e:
                 # The board is finishing a tune of its own (a carrier was already keyed):
                 # let it end, then ask.
-                if "busy" not in str(e) or time.monotonic() > deadline:
+                if e.why != "busy" or time.monotonic() > deadline:
                     raise
                 ln.wait_event("record", lambda o, b=before: o.get("seq", 0) > b,
                               timeout=max(0.1, deadline - time.monotonic()))

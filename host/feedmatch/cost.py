@@ -13,10 +13,11 @@ from __future__ import annotations
 
 import json
 from functools import lru_cache
-from pathlib import Path
 from typing import Any
 
-COSTS_FILE = Path(__file__).parent / "data" / "rp2040_costs.json"
+from .resources import DATA
+
+COSTS_FILE = DATA / "rp2040_costs.json"
 KEYS = ("read", "coef", "pred", "fit", "ideal", "near", "row", "grid", "hyp", "scan")
 
 

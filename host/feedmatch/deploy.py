@@ -23,9 +23,9 @@ from pathlib import Path
 
 from .errors import InputError, LinkError
 from .jsonfile import load_json
-from .virtual import FIRMWARE
+from .resources import DATA, FIRMWARE
 
-CONFIGS = Path(__file__).parent / "data" / "boards"
+CONFIGS = DATA / "boards"
 
 
 @dataclass

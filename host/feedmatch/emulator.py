@@ -25,10 +25,12 @@ from collections.abc import Callable
 from pathlib import Path
 
 from .errors import InputError
+from .resources import DATA, FIRMWARE
 
-EMU_DATA = Path(__file__).parent / "data" / "emu"
-ROOT = Path(__file__).resolve().parents[2]
-SHARED_UF2 = ROOT.parent / "shared" / "rp2040" / "micropython-v1.28.0-rpi-pico.uf2"
+EMU_DATA = DATA / "emu"
+# The image a development checkout finds beside it (../shared/rp2040); users
+# bring the official one (--image, or FEEDMATCH_PICO_UF2).
+SHARED_UF2 = FIRMWARE.parent.parent / "shared" / "rp2040" / "micropython-v1.28.0-rpi-pico.uf2"
 # The Pico's flash file system as MicroPython's rp2 port lays it out: 1408 KB at
 # the end of 2 MB (ports/rp2, MICROPY_HW_FLASH_STORAGE_BYTES), 4 KB blocks.
 LFS_BLOCK = 4096

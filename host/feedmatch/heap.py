@@ -7,7 +7,8 @@ import os
 import subprocess
 import tempfile
 
-from .virtual import FIRMWARE, find_micropython
+from .resources import FIRMWARE
+from .virtual import find_micropython
 
 # Runs inside MicroPython: the real controller, a board whose detectors answer
 # from the firmware's own network model for a fixed load (no host in the loop).

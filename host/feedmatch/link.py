@@ -17,7 +17,7 @@ import serial
 import serial.tools.list_ports
 from fmlogic import link as frames
 
-from .errors import LinkError
+from .errors import BoardRefused, LinkError
 
 
 def resolve_port(port: str) -> str:
@@ -44,7 +44,11 @@ class BoardLink:
         self.bad_frames = 0
         self.reconnects = 0
         self.on_event: Callable[[str, dict], None] | None = None
-        self._answers: dict[int, tuple[str, dict]] = {}
+        # Only the answer to the request being awaited is kept; a late answer to
+        # one that timed out is dropped (counted), never handed to a later one.
+        self._awaited: int | None = None
+        self._answer: tuple[str, dict] | None = None
+        self.stale_answers = 0
         self.stop_event = None  # set by an owner that must be able to stop us mid-retry
 
     # -- open / close -----------------------------------------------------------
@@ -129,7 +133,10 @@ class BoardLink:
             kind, seq, word, obj = d
             n += 1
             if kind == "A":
-                self._answers[seq] = (word, obj)
+                if seq == self._awaited and self._answer is None:
+                    self._answer = (word, obj)
+                else:
+                    self.stale_answers += 1
             elif kind == "E":
                 self.events.append((word, obj))
                 if self.on_event:
@@ -146,24 +153,29 @@ class BoardLink:
                 raise LinkError("stopped")
             self.seq = (self.seq % 65535) + 1
             seq = self.seq
-            self._write(frames.encode("Q", seq, word, args or {}))
-            deadline = time.monotonic() + timeout
-            bad0 = self.bad_frames
-            while time.monotonic() < deadline:
-                self.pump()
-                if self.bad_frames != bad0 and seq not in self._answers:
-                    # A frame arrived damaged: likely our answer; ask again now rather
-                    # than at the timeout (a late good answer to the old seq is ignored).
+            self._awaited, self._answer = seq, None
+            try:
+                self._write(frames.encode("Q", seq, word, args or {}))
+                deadline = time.monotonic() + timeout
+                bad0 = self.bad_frames
+                while time.monotonic() < deadline:
                     self.pump()
-                    if seq not in self._answers:
-                        last_err = f"answer to {word} arrived damaged"
-                        break
-                if seq in self._answers:
-                    status, obj = self._answers.pop(seq)
-                    if status == "ok":
-                        return obj
-                    raise LinkError(f"board refused {word}: {obj.get('why')} {obj.get('msg', '')}".strip())
-            last_err = f"no answer to {word} within {timeout:g} s"
+                    if self.bad_frames != bad0 and self._answer is None:
+                        # A frame arrived damaged: likely our answer; ask again now rather
+                        # than at the timeout (a late good answer to the old seq is dropped).
+                        self.pump()
+                        if self._answer is None:
+                            last_err = f"answer to {word} arrived damaged"
+                            break
+                    if self._answer is not None:
+                        status, obj = self._answer
+                        if status == "ok":
+                            return obj
+                        raise BoardRefused(word, str(obj.get("why", "refused")), obj)
+                else:
+                    last_err = f"no answer to {word} within {timeout:g} s"
+            finally:
+                self._awaited, self._answer = None, None
         raise LinkError(last_err)
 
     def records_since(self, seq: int, each: Callable[[dict], None] | None = None) -> list[dict[str, Any]]:

@@ -43,7 +43,7 @@ _MIGRATIONS = {
 
 
 def _now() -> str:
-    return dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds")
+    return dt.datetime.now(dt.UTC).isoformat(timespec="milliseconds")
 
 
 class Logbook:
@@ -146,8 +146,48 @@ class Logbook:
         return rows
 
 
-def open_existing(path: str | Path) -> Logbook:
-    p = Path(path)
-    if not p.exists():
-        raise InputError(f"logbook {p} does not exist")
-    return Logbook(p, create=False)
+class LogbookReader:
+    """A logbook opened read-only, for report and fit-box: nothing is migrated,
+    no journal mode is changed, and a database that is not a feedmatch logbook
+    (or fails SQLite's integrity check) is refused untouched."""
+
+    def __init__(self, path: str | Path):
+        self.path = p = Path(path)
+        if not p.exists():
+            raise InputError(f"logbook {p} does not exist")
+        if not p.is_file():
+            raise InputError(f"logbook {p} is not a file")
+        with p.open("rb") as f:
+            head = f.read(16)
+        if head != b"SQLite format 3\x00":
+            raise InputError(f"{p} is not an SQLite logbook; nothing was changed")
+        try:
+            self.db = sqlite3.connect(p.resolve().as_uri() + "?mode=ro", uri=True, timeout=10)
+            v = self.db.execute("PRAGMA user_version").fetchone()[0]
+            tables = {r[0] for r in self.db.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+            check = self.db.execute("PRAGMA quick_check").fetchone()[0]
+        except sqlite3.DatabaseError as e:
+            raise InputError(f"{p} is not a usable SQLite logbook: {e}") from None
+        if v == 0 or not {"boards", "sessions", "tunes"} <= tables:
+            self.db.close()
+            raise InputError(f"{p} is an SQLite database but not a feedmatch logbook; nothing was changed")
+        if v > SCHEMA_VERSION:
+            self.db.close()
+            raise InputError(f"logbook {p} has schema {v}, newer than this program's {SCHEMA_VERSION}")
+        if v < SCHEMA_VERSION:
+            self.db.close()
+            raise InputError(f"logbook {p} has the older schema {v}; `feedmatch log` upgrades it")
+        if check != "ok":
+            self.db.close()
+            raise InputError(f"logbook {p} fails SQLite's integrity check ({check}); its rows cannot be "
+                             "trusted: keep a copy and recover it with sqlite3's .recover")
+
+    tunes = Logbook.tunes
+
+    def close(self) -> None:
+        self.db.close()
+
+
+def open_existing(path: str | Path) -> LogbookReader:
+    """The logbook at path, read-only (see LogbookReader)."""
+    return LogbookReader(path)

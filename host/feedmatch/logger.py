@@ -35,7 +35,7 @@ class Logger:
 
     def _when(self, rec: dict[str, Any]) -> str:
         """Best estimate of when a record happened (the board has no clock)."""
-        now = dt.datetime.now(dt.timezone.utc)
+        now = dt.datetime.now(dt.UTC)
         st = self.status
         if st.get("boot") == rec.get("boot") and isinstance(rec.get("t_ms"), int) and st.get("uptime_ms"):
             age = max(0.0, (st["uptime_ms"] - rec["t_ms"]) / 1000.0)

@@ -21,10 +21,11 @@ import numpy as np
 
 from .errors import InputError
 from .jsonfile import check_keys, load_json, number, number_list
+from .resources import DATA
 
 MAX_BITS = 12
 SHUNTS = ("tx", "ant")
-DEFAULT_NETWORK = Path(__file__).parent / "data" / "network_default.json"
+DEFAULT_NETWORK = DATA / "network_default.json"
 
 
 @dataclass

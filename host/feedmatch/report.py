@@ -9,7 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from . import bands
-from .logbook import Logbook
+from .logbook import open_existing
 
 # A band is flagged when its recent tunes differ from its own earlier ones by
 # more than these (common practice for trend alarms: a fixed margin over a
@@ -84,11 +84,7 @@ def health(ok: list, bin_hz: float = 25e3) -> dict[str, Any]:
 
 
 def make_report(db: str, since: str | None = None) -> dict[str, Any]:
-    book = Logbook(db, create=False) if Path(db).exists() else None
-    if book is None:
-        from .errors import InputError
-
-        raise InputError(f"logbook {db} does not exist")
+    book = open_existing(db)
     rows = book.tunes(since)
     book.close()
     return {"tunes": len(rows), "bands": band_table(rows), "rows": rows,

@@ -21,8 +21,9 @@ from .detector import DetectorModel, detector_from_dict
 from .errors import InputError
 from .jsonfile import check_keys, load_json, number
 from .network import Network, evaluate, load_network, network_from_dict
+from .resources import DATA
 
-DEFAULT_STATION = Path(__file__).parent / "data" / "station_demo.json"
+DEFAULT_STATION = DATA / "station_demo.json"
 
 
 @dataclass

@@ -23,9 +23,8 @@ import tty
 from pathlib import Path
 
 from .errors import InputError
+from .resources import FIRMWARE
 from .station import Station, StationModel, Step
-
-FIRMWARE = Path(__file__).resolve().parents[2] / "firmware"
 
 
 def find_micropython() -> str | None:
