@@ -2,10 +2,10 @@
 
 from __future__ import annotations
 
-from feedmatch.antenna import Monopole
-from feedmatch.detector import DetectorModel
-from feedmatch.network import load_network
-from feedmatch.station import StationModel
+from feedmatch.rf.antenna import Monopole
+from feedmatch.rf.detector import DetectorModel
+from feedmatch.rf.network import load_network
+from feedmatch.sim.station import StationModel
 
 
 class FakeBoard:

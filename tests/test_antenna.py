@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import skrf
-from feedmatch.antenna import (
+from feedmatch.errors import InputError
+from feedmatch.rf.antenna import (
     C0,
     FixedLoad,
     Monopole,
@@ -14,7 +15,6 @@ from feedmatch.antenna import (
     short_monopole_radiation_resistance,
     write_s1p,
 )
-from feedmatch.errors import InputError
 
 
 def test_quarter_wave_monopole_balanis():

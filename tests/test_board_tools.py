@@ -10,17 +10,17 @@ import statistics
 import subprocess
 import threading
 import time
-from pathlib import Path
 
 import pytest
-from feedmatch import deploy
-from feedmatch.antenna import FixedLoad
-from feedmatch.boxes import draw_box
-from feedmatch.detector import DetectorModel
+from feedmatch.board import deploy
 from feedmatch.errors import InputError, LinkError
-from feedmatch.loads import smith_loads
-from feedmatch.network import Network, evaluate, load_network, network_from_dict
-from feedmatch.scorer import ScoreConfig, score
+from feedmatch.resources import DATA
+from feedmatch.rf.antenna import FixedLoad
+from feedmatch.rf.detector import DetectorModel
+from feedmatch.rf.network import Network, evaluate, load_network, network_from_dict
+from feedmatch.sim.boxes import draw_box
+from feedmatch.sim.loads import smith_loads
+from feedmatch.sim.scorer import ScoreConfig, score
 
 from .conftest import FIRMWARE, run_cli, run_mpy
 from .fakes import FakeBoard, board_config
@@ -138,9 +138,9 @@ def _cal_args(pty, cfgp):
 
 
 def test_calibration_against_the_virtual_station(tmp_path):
-    from feedmatch.calibrate import run_calibrate
-    from feedmatch.station import load_station
-    from feedmatch.virtual import VirtualStation
+    from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.sim.station import load_station
+    from feedmatch.sim.virtual import VirtualStation
 
     st = load_station()
     st.antenna = FixedLoad(50.0, 0.0)  # the dummy load
@@ -181,9 +181,9 @@ def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
     # reads wrong; the reversed pass recovers the reflected detector's own curve.
     import io
 
-    from feedmatch.calibrate import run_calibrate
-    from feedmatch.station import load_station
-    from feedmatch.virtual import VirtualStation
+    from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.sim.station import load_station
+    from feedmatch.sim.virtual import VirtualStation
     from fmlogic.swr import Calibration
 
     st = load_station()
@@ -224,7 +224,7 @@ def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
 
 
 def test_calibration_rejects_a_non_monotonic_detector():
-    from feedmatch.calibrate import fit_table
+    from feedmatch.board.calibrate import fit_table
 
     with pytest.raises(InputError, match="did not rise"):
         fit_table([(100, 2), (90, 5), (300, 10)])
@@ -238,7 +238,7 @@ def test_ratings_against_hand_calculation():
     # L-network design, e.g. Bowick, RF Circuit Design, 2nd ed., ch. 4). For R_L = 12.5 ohm with
     # the capacitor across the 50 ohm side: V_C = sqrt(P * 50), I_L = sqrt(P / 12.5).
     lossless = Network(50, [0.02 * 2**i for i in range(10)], [2.0 * 2**i for i in range(10)])
-    from feedmatch.simulate import best_point
+    from feedmatch.sim.simulate import best_point
 
     p = best_point(lossless, 7.1e6, 12.5 + 0j, 100.0)
     assert p["shunt"] == "tx" and p["swr"] < 1.02
@@ -249,7 +249,7 @@ def test_ratings_against_hand_calculation():
     assert p["shunt"] == "ant"
     assert p["v_cap_peak"] == pytest.approx(math.sqrt(2) * math.sqrt(100 * 200), rel=0.02)
     assert p["i_ind_rms"] == pytest.approx(math.sqrt(100 / 50), rel=0.02)
-    r = run_cli("simulate", "--antenna", str(Path(deploy.__file__).parent / "data" / "antennas" /
+    r = run_cli("simulate", "--antenna", str(DATA / "antennas" /
                                               "hollow_oak_closed_form.json"),
                 "--ratings", "--bands", "40m,20m", "--power", "100", "--json")
     assert r.returncode == 0, r.stderr
@@ -316,8 +316,8 @@ def test_strays_change_the_network():
 # -- fit-box -----------------------------------------------------------------------
 def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
     """Draw a box, run tunes on the (in-process) virtual station, log them, fit, compare."""
-    from feedmatch.logbook import Logbook
-    from feedmatch.station import StationModel
+    from feedmatch.logbook.store import Logbook
+    from feedmatch.sim.station import StationModel
     from fmlogic.controller import Controller
 
     box = draw_box(NET, 21, 0.05, "none")

@@ -365,7 +365,7 @@ def test_time_limit_and_watchdog_inside_a_long_search(tmp_path):
     # A board whose clock runs fast while the search computes (a slow chip): the
     # search feeds the watchdog from inside its own loops and stops at the tune's
     # time limit mid-search, not only between readings.
-    from feedmatch.antenna import FixedLoad
+    from feedmatch.rf.antenna import FixedLoad
 
     m = make_model(antenna=FixedLoad(2.1, -1913.0))  # unmatchable: the longest search
     b = FakeBoard(m)

@@ -15,9 +15,9 @@ from pathlib import Path
 
 import pytest
 import serial
-from feedmatch.logger import Logger
-from feedmatch.station import load_station
-from feedmatch.virtual import VirtualStation
+from feedmatch.logbook.logger import Logger
+from feedmatch.sim.station import load_station
+from feedmatch.sim.virtual import VirtualStation
 
 from .conftest import BIN, run_cli
 
@@ -32,12 +32,12 @@ def _rows(db):
     return rows
 
 
-from feedmatch.demo import _wait  # noqa: E402
+from feedmatch.sim.demo import _wait  # noqa: E402
 
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
-    from feedmatch.demo import run_demo
+    from feedmatch.sim.demo import run_demo
 
     out = tmp_path_factory.mktemp("demo")
     # A relative output directory, as `make demo` uses (the firmware runs in firmware/).
@@ -247,7 +247,7 @@ def test_firmware_under_cpython_too(tmp_path):
     vs, st = _station(tmp_path, use_python=True)
     pty = vs.start()
     try:
-        from feedmatch.link import BoardLink
+        from feedmatch.board.link import BoardLink
 
         with BoardLink(pty) as ln:
             assert _wait(lambda: _try_status(ln), 10)

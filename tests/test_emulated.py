@@ -16,9 +16,9 @@ import time
 from pathlib import Path
 
 import pytest
-from feedmatch.emulator import EmulatorMissing, default_uf2, emu_dir
-from feedmatch.link import BoardLink
-from feedmatch.station import load_station, station_from_dict
+from feedmatch.board.link import BoardLink
+from feedmatch.sim.emulator import EmulatorMissing, default_uf2, emu_dir
+from feedmatch.sim.station import load_station, station_from_dict
 
 from .conftest import BIN, run_cli
 
@@ -48,7 +48,7 @@ def _status(ln, timeout=40.0):
 
 
 def _station(tmp_path, kit, station=None):
-    from feedmatch.emulated import EmulatedStation
+    from feedmatch.sim.emulated import EmulatedStation
 
     return EmulatedStation(station or load_station(), tmp_path / "flash", uf2=kit)
 

@@ -13,10 +13,10 @@ import statistics
 from dataclasses import replace
 
 import pytest
-from feedmatch.boxes import draw_box
-from feedmatch.loads import Load, smith_loads, vertical_loads, vertical_sessions
-from feedmatch.network import load_network
-from feedmatch.scorer import ScoreConfig, run_parallel, score, score_one, summarise
+from feedmatch.rf.network import load_network
+from feedmatch.sim.boxes import draw_box
+from feedmatch.sim.loads import Load, smith_loads, vertical_loads, vertical_sessions
+from feedmatch.sim.scorer import ScoreConfig, run_parallel, score, score_one, summarise
 
 NET = load_network()
 
@@ -96,7 +96,7 @@ def test_no_hint_without_memory():
 
 def test_a_stored_state_above_target_is_a_start_not_an_answer():
     # The memory holds a poor state for this frequency: recall measures it, then searches on.
-    from feedmatch.scorer import new_memory
+    from feedmatch.sim.scorer import new_memory
 
     mem = new_memory()
     mem.store(14.2e6, (5, 5, 1), 2.4, 0)
@@ -110,7 +110,7 @@ def test_a_stored_state_above_target_is_a_start_not_an_answer():
 
 def test_memory_reaches_a_few_percent_in_frequency():
     # An operator's step of 1 % (70 kHz at 7 MHz, three 25 kHz bins) still finds the state.
-    from feedmatch.scorer import new_memory
+    from feedmatch.sim.scorer import new_memory
 
     mem = new_memory()
     mem.store(7.10e6, (60, 80, 0), 1.2, 0)

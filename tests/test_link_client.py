@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import pytest
+from feedmatch.board.link import BoardLink
 from feedmatch.errors import BoardRefused, LinkError
-from feedmatch.link import BoardLink
 from fmlogic import link as frames
 
 

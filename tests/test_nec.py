@@ -4,14 +4,14 @@ from __future__ import annotations
 
 import json
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
 import skrf
-from feedmatch import nec
-from feedmatch.antenna import C0, Monopole, load_antenna, short_monopole_radiation_resistance
 from feedmatch.errors import InputError
+from feedmatch.resources import DATA
+from feedmatch.rf import nec
+from feedmatch.rf.antenna import C0, Monopole, load_antenna, short_monopole_radiation_resistance
 
 from .conftest import run_cli
 
@@ -87,7 +87,7 @@ def test_real_ground_with_radials_adds_loss_and_s1p_round_trip(tmp_path):
 
 
 def test_antenna_command_reports_how_the_sweep_was_made(tmp_path):
-    src = str(Path(nec.__file__).parent / "data/antennas/topload_coil_example.json")
+    src = str(DATA / "antennas" / "topload_coil_example.json")
     out = tmp_path / "c.s1p"
     r = run_cli("antenna", "--antenna", src, "--sweep", "1.8e6:30e6:120", "--json", "--s1p", str(out))
     assert r.returncode == 0, r.stderr
@@ -168,7 +168,7 @@ def test_adaptive_sweep_matches_solving_every_frequency(name):
     if name == "demo":
         d = nec.validate(nec.DEMO_VERTICAL, "t")
     else:
-        d = load_antenna(Path(nec.__file__).parent / "data/antennas/topload_coil_example.json").desc
+        d = load_antenna(DATA / "antennas" / "topload_coil_example.json").desc
     f = np.linspace(1.8e6, 30e6, 300)
     fast = nec.sweep_result(d, f, use_cache=False)
     full = nec.sweep_result(d, f, use_cache=False, exact=True)
@@ -228,8 +228,8 @@ def test_drawn_vertical_corpus_is_physical():
     # The scorer's default vertical corpus (NEC-2): every frequency in an amateur band, every
     # radiator at most 0.42 wavelength, R > 0, and a plain radiator shorter than 0.2 wavelength
     # is capacitive (a monopole below its first resonance; Balanis, Antenna Theory, 3rd ed.).
-    from feedmatch import bands
-    from feedmatch.loads import MAX_H_OVER_LAMBDA, drawn_verticals, vertical_loads
+    from feedmatch.rf import bands
+    from feedmatch.sim.loads import MAX_H_OVER_LAMBDA, drawn_verticals, vertical_loads
 
     rng = np.random.default_rng(5)
     drawn = drawn_verticals(90, rng)

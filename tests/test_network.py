@@ -8,7 +8,7 @@ import random
 import numpy as np
 import pytest
 import skrf
-from feedmatch.network import (
+from feedmatch.rf.network import (
     Network,
     all_states_zin,
     best_state,
@@ -215,8 +215,8 @@ def test_simulate_cli_json_contract():
 
 
 def test_state_table_equals_the_model_with_and_without_strays():
-    from feedmatch.boxes import draw_box
-    from feedmatch.network import StateTable
+    from feedmatch.rf.network import StateTable
+    from feedmatch.sim.boxes import draw_box
 
     for net in (NET, draw_box(NET, 4, 0.05, "default").network):
         t = StateTable(net)

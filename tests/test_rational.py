@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from feedmatch.rational import aaa, adaptive_sample
+from feedmatch.rf.rational import aaa, adaptive_sample
 
 
 def _parallel_rlc(f, r=2000.0, l_h=2e-6, c_f=200e-12):

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 
 import pytest
-from feedmatch.network import load_network
+from feedmatch.rf.network import load_network
 from fmlogic import search
 from fmlogic.swr import BAD_READING, NO_RF, reading_gamma
 from hypothesis import given, settings

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from feedmatch.report import band_table, health
+from feedmatch.logbook.report import band_table, health
 
 
 def _row(seq, f, l, c, swr=1.2):
@@ -30,7 +30,7 @@ def test_band_table_counts():
 
 
 def _logbook_with_one_tune(path):
-    from feedmatch.logbook import Logbook
+    from feedmatch.logbook.store import Logbook
 
     book = Logbook(path)
     book.start_session("hollow-oak-1", "/dev/null")
@@ -44,8 +44,8 @@ def test_readers_leave_a_foreign_database_untouched(tmp_path):
 
     import pytest
     from feedmatch.errors import InputError
-    from feedmatch.fitbox import traces_from_logbook
-    from feedmatch.report import make_report
+    from feedmatch.logbook.report import make_report
+    from feedmatch.sim.fitbox import traces_from_logbook
 
     foreign = tmp_path / "other.sqlite"
     db = sqlite3.connect(foreign)
@@ -61,7 +61,7 @@ def test_readers_leave_a_foreign_database_untouched(tmp_path):
 
 
 def test_a_reader_does_not_write_a_real_logbook(tmp_path):
-    from feedmatch.report import make_report
+    from feedmatch.logbook.report import make_report
 
     book = tmp_path / "station.sqlite"
     _logbook_with_one_tune(book)
@@ -74,7 +74,7 @@ def test_a_reader_does_not_write_a_real_logbook(tmp_path):
 def test_a_corrupt_logbook_is_reported_not_read_as_empty(tmp_path):
     import pytest
     from feedmatch.errors import InputError
-    from feedmatch.report import make_report
+    from feedmatch.logbook.report import make_report
 
     book = tmp_path / "station.sqlite"
     _logbook_with_one_tune(book)

@@ -7,10 +7,10 @@ import random
 import subprocess
 
 import pytest
-from feedmatch.detector import DetectorModel
-from feedmatch.loads import smith_loads
-from feedmatch.network import load_network
-from feedmatch.scorer import ScoreConfig, score, summarise
+from feedmatch.rf.detector import DetectorModel
+from feedmatch.rf.network import load_network
+from feedmatch.sim.loads import smith_loads
+from feedmatch.sim.scorer import ScoreConfig, score, summarise
 
 from .conftest import FIRMWARE, ROOT, run_cli, run_mpy
 
@@ -44,7 +44,7 @@ def test_model_strategy_against_the_oracle(scored):
 def test_short_verticals_are_found():
     # Strongly reactive feed points (|gamma| up to 0.999): NEC-2 verticals with radials over
     # random heights, soils and bands; reference: the exhaustive oracle.
-    from feedmatch.loads import vertical_loads
+    from feedmatch.sim.loads import vertical_loads
 
     res = score(vertical_loads(150, seed=21), NET, NET, ScoreConfig(strategy="model"), workers=1)
     s = summarise(res, 1.5)
@@ -118,7 +118,7 @@ def test_recall_good_hint_is_one_reading_bad_hint_falls_back():
 
     bank = NET.firmware_bank()
     zl = 20 - 60j
-    from feedmatch.network import best_state
+    from feedmatch.rf.network import best_state
 
     l, c, sh, g = best_state(NET, 14.1e6, zl)
     s = search.make("recall", bank, 14.1e6, 1.5, 60, memory_hint=(l, c, sh))

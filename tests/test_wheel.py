@@ -56,7 +56,8 @@ def _run(inst: dict, *args: str, timeout: float = 120) -> subprocess.CompletedPr
 
 def test_the_wheel_carries_the_firmware_and_every_data_file(installed):
     names = set(zipfile.ZipFile(installed["whl"]).namelist())
-    for f in ("feedmatch/firmware/main.py", "feedmatch/firmware/loader.py", "feedmatch/firmware/board_rp2040.py",
+    for f in ("feedmatch/cli/__init__.py", "feedmatch/rf/network.py", "feedmatch/sim/virtual.py",
+              "feedmatch/firmware/main.py", "feedmatch/firmware/loader.py", "feedmatch/firmware/board_rp2040.py",
               "feedmatch/firmware/board_virtual.py", "feedmatch/firmware/fmlogic/search.py", "fmlogic/search.py",
               "feedmatch/data/boards/rp2040.json", "feedmatch/data/antennas/hollow_oak_vertical.json",
               "feedmatch/data/emu/pico.mjs", "feedmatch/data/network_default.json"):

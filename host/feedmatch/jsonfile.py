@@ -7,7 +7,7 @@ import math
 from pathlib import Path
 from typing import Any
 
-from .errors import InputError
+from feedmatch.errors import InputError
 
 
 def load_json(path: str | Path, what: str) -> dict[str, Any]:

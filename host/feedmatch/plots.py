@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from .network import Network, all_states_zin, gamma
+from feedmatch.rf.network import Network, all_states_zin, gamma
 
 
 def _plt():

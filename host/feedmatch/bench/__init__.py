@@ -1,0 +1,1 @@
+"""Benchmarks: speed, accuracy, heap and the emulated chip (`make bench`)."""

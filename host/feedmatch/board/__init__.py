@@ -1,0 +1,1 @@
+"""Talking to a real board: the serial link client, deployment, detector calibration."""

@@ -1,0 +1,110 @@
+"""The `calibrate` dialogue: the operator keys each power and confirms the
+wattmeter; the tables and the leakage go into the board config (the
+arithmetic is feedmatch.board.calibrate)."""
+
+from __future__ import annotations
+
+import argparse
+import math
+from collections.abc import Callable
+from pathlib import Path
+from typing import TextIO
+
+from feedmatch.board.calibrate import fit_table, leak_for_config, residual_directivity
+from feedmatch.errors import InputError, LinkError
+from feedmatch.jsonfile import load_json, write_json_with_backup
+
+
+def _watts(line: str, asked: float) -> float:
+    """The operator's wattmeter reading (Enter takes the power asked for)."""
+    text = line.strip()
+    if not text:
+        return asked
+    try:
+        w = float(text)
+    except ValueError:
+        raise InputError(f"'{text}' is not a power in watts; calibration stopped, the config is unchanged") from None
+    if not math.isfinite(w) or w <= 0 or w > 10 * asked:
+        raise InputError(f"{text} W is not a plausible reading for {asked:g} W keyed; calibration stopped, "
+                         "the config is unchanged")
+    return w
+
+
+def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
+                  on_prompt: Callable[[float], None] | None = None) -> int:
+    from fmlogic.swr import Calibration
+
+    from feedmatch.board.link import BoardLink
+
+    cfg_path = Path(a.config)
+    cfg = load_json(cfg_path, "board config")
+    try:
+        powers = [float(x) for x in a.powers.split(",") if x.strip()]
+    except ValueError:
+        raise InputError(f"--powers must be a list of watts, got '{a.powers}'") from None
+    if len(powers) < 3 or any(p <= 0 for p in powers):
+        raise InputError("--powers needs at least 3 positive powers")
+    reflected = bool(getattr(a, "reflected", False))
+    det_cfg = cfg.get("detector", {})
+    if reflected and not isinstance(det_cfg.get("fwd"), list):
+        raise InputError("run the forward pass first: the config has no detector.fwd table")
+    if reflected:
+        print("Reflected-detector calibration: reverse the box (transmitter into the ANT port, "
+              "50 ohm dummy load on the TX port). Key each power; do not touch the box while keyed.",
+              file=out)
+    else:
+        print("Calibration into a 50 ohm dummy load. Key each power with the transmitter into the box,"
+              " with the dummy load on the antenna port. Do not touch the box while keyed.", file=out)
+    main, leak = ("ref_counts", "fwd_counts") if reflected else ("fwd_counts", "ref_counts")
+    points = []
+    leaks = []
+    with BoardLink(a.port, a.baud, timeout=a.timeout) as ln:
+        ln.request("bypass", {"on": True})
+        for p in powers:
+            if on_prompt:
+                on_prompt(p)
+            if a.yes:
+                watts = p
+                print(f"{p:g} W keyed (taken as confirmed)", file=out)
+            else:
+                out.write(f"Key {p:g} W; type what your wattmeter reads (Enter = {p:g}): ")
+                out.flush()
+                line = inp.readline()
+                if not line:
+                    raise InputError("calibration stopped: no answer")
+                watts = _watts(line, p)
+            r = ln.request("cal-read", {"n": max(1, min(64, a.samples))})
+            if r[main] <= 0:
+                what = "reflected" if reflected else "forward"
+                hint = " Is the box reversed?" if reflected else ""
+                raise LinkError(f"no {what} reading at {watts:g} W: is the carrier keyed?{hint}")
+            points.append((float(r[main]), watts))
+            leaks.append((float(r[leak]), watts))
+            print(f"  {watts:7.2f} W: forward {r['fwd_counts']:8.1f} counts, reflected "
+                  f"{r['ref_counts']:6.1f} counts", file=out)
+    table = fit_table(points, "reflected" if reflected else "forward")
+    floor = float(det_cfg.get("floor_counts", 2.0))
+    # The leakage at the highest power, read through the other detector's curve.
+    other = Calibration(det_cfg["fwd"], floor) if reflected else Calibration(table, floor)
+    c_leak, w = leaks[-1]
+    res = residual_directivity(w, other.watts(c_leak))
+    if reflected:
+        cfg["detector"] = dict(det_cfg, ref=table, floor_counts=floor)
+    else:
+        # The leakage into the dummy load is what the search allows for.
+        cfg["detector"] = dict(det_cfg, fwd=table, ref=table, floor_counts=floor,
+                               leak=leak_for_config(res["gamma"]))
+    from fmlogic import config as fcfg
+
+    errs = fcfg.validate(cfg)
+    if errs:
+        raise InputError(f"the new calibration does not validate: {errs[0]}")
+    write_json_with_backup(cfg_path, cfg)
+    where = "towards the transmitter port" if reflected else "into the dummy load"
+    print(f"residual leakage {where}: |gamma| {res['gamma']:.3f} "
+          f"(effective directivity {res['directivity_db']:.1f} dB): SWR below "
+          f"{res['lowest_swr']:.2f} cannot be told apart", file=out)
+    side = "reflected" if reflected else "forward (and, until --reflected is run, reflected)"
+    print(f"wrote {len(table)} {side} points into {cfg_path} (previous copy {cfg_path}.bak); "
+          "deploy it with feedmatch deploy", file=out)
+    return 0

@@ -1,0 +1,103 @@
+"""The `score` command: strategies x loads (x drawn boxes), tables, JSON and plots."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+from feedmatch.errors import InputError
+from feedmatch.rf.detector import DetectorModel
+from feedmatch.rf.network import load_network
+from feedmatch.sim.loads import read_loads, smith_loads
+from feedmatch.sim.scorer import ScoreConfig, score, summarise
+
+STRATEGY_NAMES = ("grid", "model", "recall")
+
+
+def run_score_job(a: argparse.Namespace) -> int:
+    from feedmatch.cli.output import emit_json
+
+    names = list(STRATEGY_NAMES) if a.strategy == "all" else [a.strategy]
+    for n in names:
+        if n not in STRATEGY_NAMES:
+            raise InputError(f"unknown strategy '{n}' (choose from {', '.join(STRATEGY_NAMES)}, all)")
+    if not 1.0 < a.target < 10:
+        raise InputError(f"--target must be an SWR between 1 and 10, got {a.target}")
+    if a.budget < 1:
+        raise InputError("--budget must be at least 1")
+    if a.boxes < 0 or not 0 <= a.tolerance < 0.3:
+        raise InputError("--boxes must be >= 0 and --tolerance in 0..0.3")
+    net = load_network(a.network)
+    if a.loads:
+        loads, bad = read_loads(a.loads, a.skip_bad)
+        for b in bad:
+            sys.stderr.write(f"feedmatch: skipped {b}\n")
+    else:
+        loads = smith_loads(2000, seed=a.seed)
+    progress = sys.stderr.isatty() and not a.json
+    det = DetectorModel(ideal=a.ideal_detector)
+    out: list[dict[str, Any]] = []
+    boxes_json = []
+    box_list: list[tuple[int, Any, DetectorModel, Any]] = []
+    if a.boxes:
+        from feedmatch.sim.boxes import draw_box, fit_from_scores
+
+        for k in range(a.boxes):
+            box = draw_box(net, a.seed * 7919 + k, a.tolerance, a.strays, ideal=a.ideal_detector)
+            # --fitted: the box's element values as fit-box would learn them from 200 earlier tunes.
+            nominal = fit_from_scores(net, box, smith_loads(200, seed=a.seed + 1000 + k)) if a.fitted else net
+            box_list.append((k, box.network, box.detector, nominal))
+            boxes_json.append(box.to_json(k))
+    else:
+        box_list.append((None, net, det, net))
+    for name in names:
+        rows: list[dict[str, Any]] = []
+        for k, true_net, bdet, nominal in box_list:
+            cfg = ScoreConfig(strategy=name, target_swr=a.target, budget=a.budget,
+                              settle_ms=a.settle_ms, tune_power_w=a.power, seed=a.seed + (k or 0),
+                              detector=bdet)
+            part = score(loads, true_net, nominal, cfg, det=bdet, workers=a.workers,
+                         progress=progress)
+            if k is not None:
+                for r in part:
+                    r["box"] = k
+            rows += part
+        for r in rows:
+            r.pop("trace", None)
+        out.append({"strategy": name, "results": rows, "summary": summarise(rows, a.target)})
+    if a.plots:
+        from feedmatch.plots import score_plots
+
+        for f in score_plots(a.plots, out, net, a.target):
+            sys.stderr.write(f"feedmatch: wrote {f}\n")
+    if a.json:
+        if len(out) == 1 and not boxes_json:
+            emit_json(out[0])
+        else:
+            doc: dict[str, Any] = {"strategies": out}
+            if boxes_json:
+                doc["boxes"] = boxes_json
+            emit_json(doc)
+        return 0
+    _print_table(out, a.target, len(loads), len(box_list))
+    return 0
+
+
+def _print_table(out: list[dict[str, Any]], target: float, n_loads: int, n_boxes: int) -> None:
+    s0 = out[0]["summary"]
+    where = f" on {n_boxes} drawn boxes" if n_boxes > 1 else ""
+    print(f"{n_loads} loads{where}; matchable at SWR <= {target:g}: {s0['matchable']} "
+          f"(unmatchable, counted apart: {s0['unmatchable']})")
+    print(f"{'strategy':>9} {'success':>8} {'median':>7} {'p95':>5} {'max':>5} {'relays':>7} "
+          f"{'tune ms':>8} {'SWR':>6} {'/oracle':>8} {'hot':>4}")
+    for o in out:
+        s = o["summary"]
+        if not s.get("matchable"):
+            print(f"{o['strategy']:>9}  no matchable loads")
+            continue
+        print(f"{o['strategy']:>9} {100 * s['success_rate']:7.1f}% {s['median_measurements']:7.1f} "
+              f"{s['p95_measurements']:5.0f} {s['max_measurements']:5d} {s['median_relay_ops']:7.0f} "
+              f"{s['median_tune_ms']:8.0f} {s['median_swr']:6.2f} {s['median_swr_over_oracle']:8.3f} "
+              f"{s['hot_switches']:4d}")
+    print("(median/p95/max: measurements per tune; relays: relay operations; SWR: true final SWR)")

@@ -1,0 +1,259 @@
+"""Sub-commands that talk to a board (real or virtual) or read the logbook."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+
+from feedmatch.errors import BoardRefused, InputError, LinkError
+
+
+def _link(a: argparse.Namespace):
+    from feedmatch.board.link import BoardLink
+
+    return BoardLink(a.port, a.baud, timeout=a.timeout).open()
+
+
+def _add_port(s) -> None:
+    s.add_argument("--port", required=True,
+                   help="device path, pyserial URL (socket://, rfc2217://, loop://) or auto")
+    s.add_argument("--baud", type=int, default=115200)
+    s.add_argument("--timeout", type=float, default=2.0)
+    s.add_argument("--json", action="store_true")
+
+
+def _state_text(r) -> str:
+    if not r:
+        return "-"
+    l, c, sh, byp = r
+    return "through (bypass)" if byp else f"L{l} C{c} {'tx' if sh == 0 else 'ant'}"
+
+
+def cmd_status(a) -> int:
+    from feedmatch.cli.output import emit_json
+
+    with _link(a) as ln:
+        st = ln.request("status")
+    if a.json:
+        emit_json(st)
+        return 0
+    swr = st.get("swr")
+    print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {st['state']}"
+          f" - {st['why']}")
+    print(f"  relays {_state_text(st['relays'])}; forward {st['fwd_w']} W, "
+          f"SWR {swr if swr is not None else 'no RF'}; {st['freq_hz'] / 1e6:.4f} MHz")
+    print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
+          f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
+    return 0
+
+
+def cmd_tune(a) -> int:
+    from feedmatch.cli.output import emit_json
+    from feedmatch.rf import bands
+
+    f = bands.parse_freq(a.freq) if a.freq else 0.0
+    deadline = time.monotonic() + a.wait
+    with _link(a) as ln:
+        while True:
+            before = ln.request("status")["seq"]
+            try:
+                ln.request("tune", {"freq_hz": f})
+                break
+            except BoardRefused as e:
+                # The board is finishing a tune of its own (a carrier was already keyed):
+                # let it end, then ask.
+                if e.why != "busy" or time.monotonic() > deadline:
+                    raise
+                ln.wait_event("record", lambda o, b=before: o.get("seq", 0) > b,
+                              timeout=max(0.1, deadline - time.monotonic()))
+        rec = ln.wait_event("record", lambda o: o.get("seq", 0) > before,
+                            timeout=max(0.1, deadline - time.monotonic()))
+        if rec is None:
+            recs = ln.records_since(before)
+            rec = recs[0] if recs else None
+    if rec is None:
+        raise LinkError(f"no tune result within {a.wait:g} s (is a carrier keyed?)")
+    if a.json:
+        emit_json(rec)
+    else:
+        print(f"{rec['outcome']}: {rec['why']}; SWR {rec['swr_before']} -> {rec['swr_after']} "
+              f"at {rec['freq_hz'] / 1e6:.4f} MHz, {_state_text(rec['after'])}, "
+              f"{rec['n']} measurements in {rec['ms']} ms")
+    return 0 if rec["outcome"] in ("locked", "best-effort", "through") else 1
+
+
+def cmd_bypass(a) -> int:
+    from feedmatch.cli.output import emit_json
+
+    with _link(a) as ln:
+        r = ln.request("bypass", {"on": not a.off})
+    if a.json:
+        emit_json(r)
+    else:
+        print(f"relays now {_state_text(r['relays'])}")
+    return 0
+
+
+def cmd_memory(a) -> int:
+    from feedmatch.cli.output import emit_json
+
+    with _link(a) as ln:
+        if a.clear:
+            ln.request("mem-clear")
+            print("memory cleared")
+            return 0
+        items = []
+        start = 0
+        while True:
+            r = ln.request("mem-list", {"start": start})
+            items += r["entries"]
+            start += len(r["entries"])
+            if not r["entries"] or start >= r["total"]:
+                break
+    if a.json:
+        emit_json({"bin_hz": r["bin_hz"], "entries": items})
+        return 0
+    print(f"{len(items)} stored states (bins of {r['bin_hz'] / 1e3:g} kHz)")
+    for f, l, c, sh, swr, _t in items:
+        print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}")
+    return 0
+
+
+def cmd_log(a) -> int:
+    from feedmatch.logbook.logger import Logger
+    from feedmatch.logbook.store import Logbook
+
+    Logbook(a.db).close()  # refuse a non-SQLite file before touching the port
+    lg = Logger(a.port, a.db, a.baud, out=sys.stdout if sys.stdout.isatty() else None)
+    try:
+        lg.run()
+    except KeyboardInterrupt:
+        pass
+    print(f"\nlogged {lg.added} new records into {a.db}")
+    return 0
+
+
+def cmd_report(a) -> int:
+    from feedmatch.cli.output import emit_json
+    from feedmatch.logbook.report import make_report, report_lines, report_plots, write_csv
+
+    rep = make_report(a.db, a.since)
+    if a.csv:
+        write_csv(a.csv, rep["rows"])
+    files = report_plots(a.plots, rep["rows"]) if a.plots else []
+    if a.json:
+        emit_json({"tunes": rep["tunes"], "bands": rep["bands"]})
+    else:
+        print("\n".join(report_lines(rep)))
+        for f in files:
+            print(f"wrote {f}")
+    return 0
+
+
+def cmd_virtual_board(a) -> int:
+    from feedmatch.sim.station import load_station
+    from feedmatch.sim.virtual import VirtualStation
+
+    st = load_station(a.station)
+    import signal
+    import tempfile
+
+    def _term(_signum, _frame):
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _term)
+    d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
+    if a.emulate:
+        from feedmatch.sim.emulated import EmulatedStation
+        from feedmatch.sim.emulator import EmulatorMissing
+
+        vs = EmulatedStation(st, d, uf2=a.image)
+        try:
+            path = vs.start()
+        except EmulatorMissing as e:
+            raise InputError(f"cannot run the emulated {a.emulate}: {e}") from None
+    else:
+        vs = VirtualStation(st, d, use_python=a.python)
+        path = vs.start()
+    print(path, flush=True)
+    what = f"emulated {a.emulate}" if a.emulate else "virtual board"
+    sys.stderr.write(f"{what} '{st.board_config.get('board_id')}' on {path} "
+                     f"(flash in {d}); Ctrl-C stops it\n")
+    try:
+        if a.carrier:
+            w, _, f = a.carrier.partition("@")
+            from feedmatch.rf import bands
+
+            vs.key(float(w), bands.parse_freq(f))
+        elif a.play:
+            for step in st.script:
+                vs.play(step, st.board_config.get("tune", {}).get("target_swr", 1.5))
+        while True:
+            time.sleep(0.5)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        vs.stop()
+        if vs.model.violations:
+            sys.stderr.write(f"hot-switch violations: {len(vs.model.violations)}\n")
+    return 0
+
+
+def cmd_demo(a) -> int:
+    from feedmatch.sim.demo import run_demo
+
+    res = run_demo(a.out, use_python=a.python, station_file=a.station)
+    return 1 if res["violations"] else 0
+
+
+def add_commands(sub) -> None:
+    s = sub.add_parser("virtual-board", help="run the firmware on the simulated station; prints its port")
+    s.add_argument("--station", help="station JSON (default: the built-in demo station)")
+    s.add_argument("--python", action="store_true", help="run the firmware under CPython")
+    s.add_argument("--dir", help="directory standing in for the board's flash")
+    s.add_argument("--carrier", help="key a steady carrier, e.g. 10@7.1e6 (W@Hz or W@band)")
+    s.add_argument("--play", action="store_true", help="play the station's operating script once")
+    s.add_argument("--emulate", choices=["rp2040"],
+                   help="run the firmware as deployed on an emulated chip (rp2040js, needs node and npm)")
+    s.add_argument("--image", help="with --emulate: the MicroPython .uf2 image for the Raspberry Pi Pico")
+    s.set_defaults(fn=cmd_virtual_board)
+
+    s = sub.add_parser("status", help="the board's state, relays, power and SWR")
+    _add_port(s)
+    s.set_defaults(fn=cmd_status)
+
+    s = sub.add_parser("tune", help="tune now (a carrier must be keyed) and print the result")
+    _add_port(s)
+    s.add_argument("--freq", help="frequency hint in Hz or a band name")
+    s.add_argument("--wait", type=float, default=15.0, help="seconds to wait for the result")
+    s.set_defaults(fn=cmd_tune)
+
+    s = sub.add_parser("bypass", help="put the tuner through (or back in line with --off)")
+    _add_port(s)
+    s.add_argument("--off", action="store_true")
+    s.set_defaults(fn=cmd_bypass)
+
+    s = sub.add_parser("memory", help="list (or --clear) the stored states")
+    _add_port(s)
+    s.add_argument("--clear", action="store_true")
+    s.set_defaults(fn=cmd_memory)
+
+    s = sub.add_parser("log", help="log every tune into an SQLite logbook until stopped")
+    _add_port(s)
+    s.add_argument("--db", required=True)
+    s.set_defaults(fn=cmd_log)
+
+    s = sub.add_parser("report", help="per-band table and antenna-health flags from the logbook")
+    s.add_argument("--db", required=True)
+    s.add_argument("--since", help="ISO date, e.g. 2026-11-01")
+    s.add_argument("--plots", help="directory for PNG plots")
+    s.add_argument("--csv", help="write the tune rows as CSV")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(fn=cmd_report)
+
+    s = sub.add_parser("demo", help="the main job on the built-in simulated station")
+    s.add_argument("--out", default="demo-out")
+    s.add_argument("--python", action="store_true", help="firmware under CPython")
+    s.add_argument("--station", help="station JSON (default: built-in)")
+    s.set_defaults(fn=cmd_demo)

@@ -1,0 +1,1 @@
+"""The station logbook: the SQLite store, the logger that fills it, the reports that read it."""

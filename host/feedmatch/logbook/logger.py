@@ -1,0 +1,140 @@
+"""The `log` job: follow the board, commit every tune record once, backfill gaps."""
+
+from __future__ import annotations
+
+import datetime as dt
+import threading
+import time
+from typing import Any, TextIO
+
+from feedmatch.board.link import BoardLink
+from feedmatch.errors import LinkError
+from feedmatch.logbook.store import Logbook
+
+
+class Logger:
+    def __init__(self, port: str, db_path: str, baud: int = 115200, out: TextIO | None = None,
+                 status_every_s: float = 3.0):
+        self.port = port
+        self.db_path = db_path
+        self.baud = baud
+        self.out = out
+        self.status_every_s = status_every_s
+        self.book: Logbook | None = None
+        self.link: BoardLink | None = None
+        self.board_id = "unknown"
+        self.status: dict[str, Any] = {}
+        self.added = 0
+        self.corrupt = 0
+        self._pending: list[dict] = []
+        self.last_committed = 0  # highest record seq in the logbook (for other threads)
+        self.last_error = ""
+        self._need_backfill = True
+        self._stop: threading.Event | None = None
+
+    def _when(self, rec: dict[str, Any]) -> str:
+        """Best estimate of when a record happened (the board has no clock)."""
+        now = dt.datetime.now(dt.UTC)
+        st = self.status
+        if st.get("boot") == rec.get("boot") and isinstance(rec.get("t_ms"), int) and st.get("uptime_ms"):
+            age = max(0.0, (st["uptime_ms"] - rec["t_ms"]) / 1000.0)
+            if age < 86400 * 30:
+                now -= dt.timedelta(seconds=age)
+        return now.isoformat(timespec="milliseconds")
+
+    def _on_event(self, word: str, obj: dict) -> None:
+        if word == "record":
+            self._pending.append(obj)
+        elif word == "boot":
+            self._need_backfill = True
+
+    def _commit(self, rec: dict[str, Any], when: str | None = None) -> None:
+        assert self.book is not None
+        rec.setdefault("board_id", self.board_id)
+        if self.book.add(rec, when):
+            self.added += 1
+        self.last_committed = self.book.last_seq(self.board_id)
+
+    def _connect(self) -> None:
+        self.link = BoardLink(self.port, self.baud)
+        self.link.stop_event = self._stop
+        self.link.open()
+        self.link.on_event = self._on_event
+        self._sync()
+
+    def _sync(self) -> None:
+        """Ask the board where it is and fetch every record the logbook lacks."""
+        assert self.link is not None and self.book is not None
+        self.status = self.link.request("status")
+        bid = str(self.status.get("board_id", "unknown"))
+        if bid != self.board_id or self.book.session is None:
+            self.board_id = bid
+            self.book.start_session(bid, self.port)
+        have = self.book.seqs(self.board_id)
+        board_last = int(self.status.get("seq", 0))
+        missing = [s for s in range(1, board_last + 1) if s not in have]
+        if missing:
+            def take(rec: dict) -> None:
+                if rec.get("seq") not in have:
+                    self._commit(rec, self._when(rec))
+            self.link.records_since(min(missing) - 1, take)
+        self._need_backfill = False
+        self.last_committed = self.book.last_seq(self.board_id)
+
+    def run(self, stop: threading.Event | None = None, duration_s: float | None = None) -> int:
+        stop = stop or threading.Event()
+        self._stop = stop
+        self.book = Logbook(self.db_path)
+        t_end = time.monotonic() + duration_s if duration_s else None
+        try:
+            while not stop.is_set():
+                try:
+                    self._connect()
+                    break
+                except LinkError:
+                    if self.link is not None:
+                        self.link.close()
+                    if stop.wait(0.5) or (t_end is not None and time.monotonic() > t_end):
+                        return self.added
+            last_status = time.monotonic()
+            while not stop.is_set() and (t_end is None or time.monotonic() < t_end):
+                try:
+                    self.link.pump()
+                    while self._pending:
+                        rec = self._pending.pop(0)
+                        have_last = self.book.last_seq(self.board_id)
+                        self._commit(rec)
+                        if rec.get("seq", 0) > have_last + 1:
+                            self._need_backfill = True
+                    if self._need_backfill or time.monotonic() - last_status > self.status_every_s:
+                        self._sync()
+                        last_status = time.monotonic()
+                        self._show()
+                except LinkError as e:
+                    # A lost answer, a pulled cable or a rebooting board: reopen and resync.
+                    self.last_error = str(e)
+                    self._need_backfill = True
+                    if stop.is_set():
+                        break
+                    try:
+                        self.link.reconnect(give_up_s=5.0)
+                    except LinkError:
+                        stop.wait(0.5)
+        finally:
+            if self.link is not None:
+                self.corrupt = self.link.bad_frames
+                self.link.close()
+            self.book.close()
+        return self.added
+
+    def _show(self) -> None:
+        if self.out is None:
+            return
+        s = self.status
+        swr = s.get("swr")
+        line = (f"\r{self.board_id} {s.get('state', '?'):<11} "
+                f"{(s.get('freq_hz') or 0) / 1e6:8.4f} MHz  SWR {swr if swr is not None else '-':>6}  "
+                f"records {self.book.last_seq(self.board_id):5d} (+{self.added} this run)  "
+                f"bad frames {self.link.bad_frames if self.link else 0}")
+        self.out.write(line)
+        self.out.flush()

@@ -1,0 +1,164 @@
+"""Per-band report and antenna-health flags from the logbook."""
+
+from __future__ import annotations
+
+import csv
+import statistics
+from collections import Counter, defaultdict
+from pathlib import Path
+from typing import Any
+
+from feedmatch.logbook.store import open_existing
+from feedmatch.rf import bands
+
+# A band is flagged when its recent tunes differ from its own earlier ones by
+# more than these (common practice for trend alarms: a fixed margin over a
+# per-band baseline, not a global threshold).
+SWR_DRIFT = 0.25
+STATE_DRIFT_FRACTION = 0.06
+MIN_TUNES_FOR_HEALTH = 4
+
+
+def _median(xs: list[float]) -> float | None:
+    return statistics.median(xs) if xs else None
+
+
+def band_table(rows: list) -> list[dict[str, Any]]:
+    by = defaultdict(list)
+    for r in rows:
+        by[r["band"]].append(r)
+    order = [b.name for b in bands.HF_BANDS] + ["out", "none"]
+    out = []
+    for name in sorted(by, key=lambda n: order.index(n) if n in order else 99):
+        rs = by[name]
+        ok = [r for r in rs if r["outcome"] == "locked"]
+        tuned = [r for r in rs if r["outcome"] not in ("refused",)]
+        states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
+        top = states.most_common(1)[0][0] if states else None
+        out.append({
+            "band": name, "tunes": len(rs),
+            "success_rate": len(ok) / len(tuned) if tuned else None,
+            "median_swr_after": _median([r["swr_after"] for r in ok if r["swr_after"] is not None]),
+            "median_tune_ms": _median([r["duration_ms"] for r in tuned if r["duration_ms"] is not None]),
+            "median_measurements": _median([r["measurements"] for r in tuned if r["measurements"]]),
+            "most_used_state": ([top[0], top[1], "tx" if top[2] == 0 else "ant"] if top else None),
+            "memory_hit_rate": (sum(1 for r in tuned if r["memory_hit"]) / len(tuned)) if tuned else None,
+            "health": health(ok),
+        })
+    return out
+
+
+def health(ok: list, bin_hz: float = 25e3) -> dict[str, Any]:
+    """Compare a band's recent matched tunes with its own baseline (its earlier ones).
+
+    Like is compared with like: tunes are grouped by frequency bin, and in each bin
+    with enough tunes the later half is compared with the earlier half.
+    """
+    if len(ok) < MIN_TUNES_FOR_HEALTH:
+        return {"flag": False, "note": "too few tunes for a baseline"}
+    bins = defaultdict(list)
+    for r in ok:
+        bins[int(r["freq_hz"] // bin_hz)].append(r)
+    notes = []
+    compared = 0
+    for b in sorted(bins):
+        rs = bins[b]
+        if len(rs) < 4:
+            continue
+        compared += 1
+        half = len(rs) // 2
+        base, recent = rs[:half], rs[half:]
+        mhz = rs[0]["freq_hz"] / 1e6
+        sb = _median([r["swr_after"] for r in base if r["swr_after"] is not None]) or 1.0
+        sr = _median([r["swr_after"] for r in recent if r["swr_after"] is not None]) or 1.0
+        if sr - sb > SWR_DRIFT:
+            notes.append(f"{mhz:.3f} MHz: SWR after tune rose {sb:.2f} -> {sr:.2f}")
+        for name, key in (("L", "after_l"), ("C", "after_c")):
+            a = _median([r[key] for r in base]) or 0
+            c = _median([r[key] for r in recent]) or 0
+            if abs(c - a) > max(3.0, STATE_DRIFT_FRACTION * max(a, c)):
+                notes.append(f"{mhz:.3f} MHz: matched {name} code moved {a:.0f} -> {c:.0f}")
+    if not compared:
+        return {"flag": False, "note": "too few tunes per frequency for a baseline"}
+    return {"flag": bool(notes), "note": "; ".join(notes) or "steady"}
+
+
+def make_report(db: str, since: str | None = None) -> dict[str, Any]:
+    book = open_existing(db)
+    rows = book.tunes(since)
+    book.close()
+    return {"tunes": len(rows), "bands": band_table(rows), "rows": rows,
+            "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
+
+
+def report_lines(rep: dict[str, Any]) -> list[str]:
+    """The per-band table as text lines (the command line prints them)."""
+    out = [f"{rep['tunes']} tunes logged" + (f", {rep['first'][:19]} .. {rep['last'][:19]} UTC"
+                                             if rep["tunes"] else "")]
+    out.append(f"{'band':>5} {'tunes':>5} {'locked':>7} {'SWR':>5} {'ms':>5} {'meas':>5} {'memory':>7}"
+          f"  {'usual state':<14} health")
+    for b in rep["bands"]:
+        def pct(x):
+            return f"{100 * x:6.0f}%" if x is not None else "     -"
+        st = b["most_used_state"]
+        sts = f"L{st[0]} C{st[1]} {st[2]}" if st else "-"
+        swr = f"{b['median_swr_after']:5.2f}" if b["median_swr_after"] is not None else "    -"
+        ms = f"{b['median_tune_ms']:5.0f}" if b["median_tune_ms"] is not None else "    -"
+        meas = f"{b['median_measurements']:5.0f}" if b["median_measurements"] is not None else "    -"
+        h = b["health"]
+        flag = ("CHECK: " + h["note"]) if h["flag"] else h["note"]
+        out.append(f"{b['band']:>5} {b['tunes']:5d} {pct(b['success_rate'])} {swr} {ms} {meas} "
+                   f"{pct(b['memory_hit_rate'])}  {sts:<14} {flag}")
+    return out
+
+
+def write_csv(path: str, rows: list) -> None:
+    cols = ["time", "board_id", "seq", "band", "freq_hz", "outcome", "reason", "swr_before", "swr_after",
+            "measurements", "duration_ms", "after_l", "after_c", "after_shunt", "after_bypass",
+            "memory_hit"]
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f)
+        w.writerow(cols)
+        for r in rows:
+            w.writerow([r[c] for c in cols])
+
+
+def report_plots(outdir: str, rows: list) -> list[Path]:
+    from feedmatch.plots import _plt
+
+    plt = _plt()
+    d = Path(outdir)
+    d.mkdir(parents=True, exist_ok=True)
+    by = defaultdict(list)
+    for r in rows:
+        if r["outcome"] == "locked" and r["swr_after"] is not None:
+            by[r["band"]].append(r)
+    files = []
+    fig, ax = plt.subplots(figsize=(8, 4))
+    import datetime as dt
+
+    for band, rs in by.items():
+        t = [dt.datetime.fromisoformat(r["time"]) for r in rs]
+        ax.plot(t, [r["swr_after"] for r in rs], "o-", ms=3, label=band)
+    ax.set_ylabel("SWR after tune")
+    ax.set_title("SWR after tune by band")
+    if by:
+        ax.legend(fontsize=8, ncol=4)
+    fig.autofmt_xdate()
+    f = d / "swr_by_band.png"
+    fig.savefig(f, dpi=110, bbox_inches="tight")
+    plt.close(fig)
+    files.append(f)
+    fig, ax = plt.subplots(figsize=(6, 5))
+    for band, rs in by.items():
+        ax.scatter([r["after_l"] for r in rs], [r["after_c"] for r in rs], s=18, label=band)
+    ax.set_xlabel("l_code")
+    ax.set_ylabel("c_code")
+    ax.set_title("matched states per band")
+    if by:
+        ax.legend(fontsize=8)
+    f = d / "states_by_band.png"
+    fig.savefig(f, dpi=110, bbox_inches="tight")
+    plt.close(fig)
+    files.append(f)
+    return files

@@ -1,0 +1,79 @@
+"""The amateur HF band plan, 160 m to 10 m.
+
+Edges are the ITU Region 1/2/3 common allocations as listed in the ARRL
+Handbook band charts and the ITU Radio Regulations Article 5 (from memory; the
+160 m and 80 m edges are the widest, Region 2, allocations, 1.800-2.000 and
+3.500-4.000 MHz, and 40 m is the Region 2 7.000-7.300 MHz).  Check your own
+licence conditions: national plans are narrower in places.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from feedmatch.errors import InputError
+
+
+@dataclass(frozen=True)
+class Band:
+    name: str
+    low_hz: float
+    high_hz: float
+
+    @property
+    def centre_hz(self) -> float:
+        return 0.5 * (self.low_hz + self.high_hz)
+
+
+HF_BANDS = (
+    Band("160m", 1.800e6, 2.000e6),
+    Band("80m", 3.500e6, 4.000e6),
+    Band("60m", 5.3515e6, 5.3665e6),
+    Band("40m", 7.000e6, 7.300e6),
+    Band("30m", 10.100e6, 10.150e6),
+    Band("20m", 14.000e6, 14.350e6),
+    Band("17m", 18.068e6, 18.168e6),
+    Band("15m", 21.000e6, 21.450e6),
+    Band("12m", 24.890e6, 24.990e6),
+    Band("10m", 28.000e6, 29.700e6),
+)
+
+
+def by_name(name: str) -> Band:
+    for b in HF_BANDS:
+        if b.name.lower() == name.lower():
+            return b
+    raise InputError(f"unknown band '{name}' (known: {', '.join(b.name for b in HF_BANDS)})")
+
+
+def band_of(f_hz: float) -> str:
+    """Name of the band holding f_hz, or 'out' when it is in none."""
+    for b in HF_BANDS:
+        if b.low_hz <= f_hz <= b.high_hz:
+            return b.name
+    return "out"
+
+
+def parse_freq(text: str) -> float:
+    """A frequency in Hz, or a band name meaning its centre."""
+    try:
+        f = float(text)
+    except ValueError:
+        return by_name(text).centre_hz
+    if not f > 0:
+        raise InputError(f"frequency must be > 0 Hz, got {text}")
+    return f
+
+
+def parse_sweep(text: str) -> list[float]:
+    """'start:stop:n' in Hz."""
+    parts = text.split(":")
+    if len(parts) != 3:
+        raise InputError(f"sweep must be start:stop:points, got '{text}'")
+    try:
+        a, b, n = float(parts[0]), float(parts[1]), int(parts[2])
+    except ValueError:
+        raise InputError(f"sweep must be start:stop:points with numbers, got '{text}'") from None
+    if not (0 < a < b) or not (2 <= n <= 100000):
+        raise InputError(f"sweep needs 0 < start < stop and 2..100000 points, got '{text}'")
+    return [a + (b - a) * i / (n - 1) for i in range(n)]
