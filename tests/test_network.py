@@ -224,3 +224,16 @@ def test_state_table_equals_the_model_with_and_without_strays():
             ref = gamma(all_states_zin(net, f, z), net.z0_ohm)
             assert np.allclose(t.gamma(f, z), ref, rtol=1e-12, atol=1e-14)
             assert np.allclose(t.gamma_mag(f, z), np.abs(ref), rtol=1e-12, atol=1e-14)
+
+
+def test_the_one_swr_conversion_and_its_edges():
+    import math
+
+    from feedmatch.rf.network import swr_of
+
+    # SWR = (1 + |gamma|) / (1 - |gamma|): |gamma| 0.5 -> 3, 0.2 -> 1.5 (the standard
+    # definition, e.g. the ARRL Handbook's transmission-line chapter; common practice).
+    assert float(swr_of(0.5)) == 3.0 and math.isclose(float(swr_of(0.2)), 1.5)
+    assert float(swr_of(0.0)) == 1.0 and float(swr_of(-1e-17)) == 1.0
+    assert math.isinf(float(swr_of(1.0))) and math.isinf(float(swr_of(math.inf)))
+    assert math.isnan(float(swr_of(math.nan)))  # no figure is never read as a match

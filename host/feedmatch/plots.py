@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-from feedmatch.rf.network import Network, all_states_zin, gamma
+from feedmatch.rf.network import Network, all_states_zin, gamma, swr_of
 
 
 def _plt():
@@ -96,7 +96,7 @@ def match_range_plot(path: Path, net: Network, target: float,
     z = net.z0_ohm * (1 + g[inside]) / (1 - g[inside])
     for ax, f in zip(axes.flat, freqs):
         best = np.array([np.abs(gamma(all_states_zin(net, f, zz), net.z0_ohm)).min() for zz in z])
-        swr = (1 + best) / (1 - best)
+        swr = swr_of(best)
         smith_axes(ax)
         ok = swr <= target
         gi = g[inside]

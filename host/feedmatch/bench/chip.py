@@ -29,7 +29,7 @@ from feedmatch.sim.emulator import EMU_DATA, Pico, default_uf2, littlefs_image
 
 def tune_set(quick: bool = False) -> tuple[dict[str, Any], list[dict[str, Any]]]:
     """The plant and the fixed tunes: (spec for the chip, the tunes)."""
-    from feedmatch.rf.network import best_state, load_network
+    from feedmatch.rf.network import best_state, load_network, swr_of
     from feedmatch.sim.boxes import draw_box
     from feedmatch.sim.loads import smith_loads, vertical_loads
 
@@ -47,7 +47,7 @@ def tune_set(quick: bool = False) -> tuple[dict[str, Any], list[dict[str, Any]]]
             if len([t for t in tunes if t["kind"] == kind]) >= want:
                 return
             g = best_state(tn, ld.freq_hz, ld.z)[3]
-            swr = (1 + g) / (1 - g)
+            swr = float(swr_of(g))
             if (swr <= 1.4) == matchable:
                 tunes.append({"kind": kind, "f": ld.freq_hz, "r": ld.r_ohm, "x": ld.x_ohm, "noise": noise,
                               "strategy": "model"})

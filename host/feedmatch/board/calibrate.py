@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 
 from feedmatch.errors import InputError
+from feedmatch.rf.network import swr_of
 
 
 def fit_table(points: list[tuple[float, float]], side: str = "forward") -> list[list[float]]:
@@ -46,4 +47,4 @@ def leak_for_config(gamma: float) -> float:
 def residual_directivity(fwd_w: float, ref_w: float) -> dict[str, float]:
     g = math.sqrt(ref_w / fwd_w) if fwd_w > 0 and ref_w > 0 else 0.0
     return {"gamma": g, "directivity_db": -20 * math.log10(g) if g > 0 else 99.0,
-            "lowest_swr": (1 + g) / (1 - g) if g < 1 else math.inf}
+            "lowest_swr": float(swr_of(g))}

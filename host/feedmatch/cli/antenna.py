@@ -9,6 +9,7 @@ import numpy as np
 
 from feedmatch.rf import bands
 from feedmatch.rf.antenna import load_antenna, write_s1p
+from feedmatch.rf.network import Z0_OHM, gamma, swr_of
 
 
 def resonances(f: np.ndarray, z: np.ndarray) -> list[dict[str, Any]]:
@@ -45,17 +46,15 @@ def run_antenna(a: argparse.Namespace) -> int:
     if how is not None:
         method = {"engine": f"necpp {how.engine}", "solved": how.n_solved, "points": len(f),
                   "est_err": how.est_err}
-    g = np.abs((z - 50) / (z + 50))
-    swr = np.where(g < 1, (1 + g) / np.maximum(1 - g, 1e-12), np.inf)
+    swr = swr_of(np.abs(gamma(z, Z0_OHM)))
     rows = []
     for b in bands.HF_BANDS:
         fc = b.centre_hz
         if not f[0] <= fc <= f[-1]:
             continue
         zc = complex(np.interp(fc, f, z.real) + 1j * np.interp(fc, f, z.imag))
-        gc = abs((zc - 50) / (zc + 50))
         rows.append({"band": b.name, "freq_hz": fc, "r_ohm": zc.real, "x_ohm": zc.imag,
-                     "swr_50": (1 + gc) / (1 - gc) if gc < 1 else None})
+                     "swr_50": float(swr_of(abs(gamma(zc, Z0_OHM))))})
     res = resonances(f, z)
     if a.s1p:
         comment = f"feedmatch antenna sweep: {ant.describe()}"

@@ -239,10 +239,18 @@ def gamma(z_in, z0: float) -> np.ndarray:
     return np.where(np.isfinite(g), g, 1.0)
 
 
+Z0_OHM = 50.0  # the reference impedance of the line, the radio and every SWR figure
+
+
 def swr_of(gmag) -> np.ndarray:
-    g = np.clip(np.asarray(gmag, dtype=float), 0.0, 1.0)
-    with np.errstate(divide="ignore"):
-        return np.where(g < 1.0, (1 + g) / np.maximum(1 - g, 1e-300), np.inf)
+    """SWR of |gamma|: the host's one conversion (the firmware has its own in
+    fmlogic.swr, with its board-side sentinels).  Edges: |gamma| >= 1 and inf
+    give inf; NaN stays NaN (no figure, never a match); below 0 (rounding) is 0."""
+    g = np.asarray(gmag, dtype=float)
+    gc = np.clip(g, 0.0, 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s = np.where(gc < 1.0, (1 + gc) / np.maximum(1 - gc, 1e-300), np.inf)
+    return np.where(np.isnan(g), np.nan, s)
 
 
 def return_loss_db(gmag) -> np.ndarray:

@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 
 from feedmatch.rf.detector import DetectorModel
-from feedmatch.rf.network import SHUNTS, Network, StateTable
+from feedmatch.rf.network import SHUNTS, Network, StateTable, swr_of
 from feedmatch.sim.loads import Load
 
 
@@ -159,7 +159,7 @@ def _table_for(net: Network) -> StateTable:
 
 
 def _swr(g: float) -> float:
-    return float("inf") if g >= 1.0 else (1 + g) / (1 - g)
+    return float(swr_of(g))
 
 
 def _worker(args):

@@ -9,7 +9,6 @@ limit: the tests assert there are none.
 
 from __future__ import annotations
 
-import math
 import random
 from dataclasses import dataclass
 from pathlib import Path
@@ -21,7 +20,7 @@ from feedmatch.resources import DATA
 from feedmatch.rf import bands
 from feedmatch.rf.antenna import antenna_from_dict
 from feedmatch.rf.detector import DetectorModel, detector_from_dict
-from feedmatch.rf.network import Network, evaluate, load_network, network_from_dict
+from feedmatch.rf.network import Network, evaluate, load_network, network_from_dict, swr_of
 
 DEFAULT_STATION = DATA / "station_demo.json"
 
@@ -89,8 +88,7 @@ class StationModel:
         return g
 
     def swr(self) -> float:
-        g = abs(self.gamma())
-        return math.inf if g >= 1 else (1 + g) / (1 - g)
+        return float(swr_of(abs(self.gamma())))
 
     def read(self) -> tuple[float, float]:
         if self.tx_w <= 0 and self.rev_w > 0:
