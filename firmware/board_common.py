@@ -34,8 +34,34 @@ class RelayChain:
                    ((0 if bypass else 1) << (self.nl + self.nc + 1)))
 
 
+# The board contract: every board (board_rp2040, board_esp32, board_virtual,
+# the host tests' in-process board) offers these, and the controller uses
+# nothing else.  tests/test_board_contract.py holds each one to it.
+#   read_detectors()          -> (fwd, ref): raw detector readings in 12-bit ADC
+#                                counts (0..4095, floats: a burst average); the
+#                                calibration (fmlogic.swr) turns them into watts.
+#                                One call takes at most a few ms.
+#   set_relays(l, c, sh, byp) -> None: latch the relay word at once (l, c codes;
+#                                sh 1 = capacitor on the antenna side; byp true =
+#                                through).  The caller waits the settle time; the
+#                                controller alone decides whether switching is safe.
+#   count_freq()              -> Hz (float), 0.0 with no carrier; one gate of
+#                                tens of ms at most.
+#   tune_button()             -> bool: the front-panel button is pressed.
+#   led(on)                   -> None.
+#   wdt_feed()                -> None: feed the hardware watchdog (4 s).
+#   ticks_ms(), ticks_diff(a, b), sleep_ms(ms): MicroPython's time semantics
+#                                (ms; ticks_diff is later minus earlier, wrap-safe).
+#   link_read()               -> bytes, or None when nothing waits (never blocks).
+#   link_write(data)          -> None: all of data (bytes, bytearray or memoryview)
+#                                is sent before it returns.
+CONTRACT = ("read_detectors", "set_relays", "count_freq", "tune_button", "led", "wdt_feed",
+            "ticks_ms", "ticks_diff", "sleep_ms", "link_read", "link_write")
+
+
 class BoardBase:
-    """Methods both boards implement the same way; subclasses set the pins."""
+    """Methods both hardware boards implement the same way; subclasses set
+    the pins and add count_freq, link_read and link_write (see CONTRACT)."""
 
     def read_detectors(self):
         sf = 0
