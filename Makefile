@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench lint mpy clean
+.PHONY: demo test bench lint mpy clean readme
 
 NECPP  := third_party/necpp
 
@@ -26,6 +26,10 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python host/benchmarks/run_bench.py
+
+# Refresh the README's example outputs from real runs (tests/test_readme.py checks them).
+readme: $(STAMP)
+	$(BIN)/python -m tests.readme_examples --write
 
 lint: $(STAMP)
 	$(BIN)/ruff check host tests firmware third_party

@@ -237,3 +237,38 @@ def test_the_one_swr_conversion_and_its_edges():
     assert float(swr_of(0.0)) == 1.0 and float(swr_of(-1e-17)) == 1.0
     assert math.isinf(float(swr_of(1.0))) and math.isinf(float(swr_of(math.inf)))
     assert math.isnan(float(swr_of(math.nan)))  # no figure is never read as a match
+
+
+def test_every_cascade_gives_the_same_answer():
+    # The network's input impedance is computed four ways for speed (the exhaustive table,
+    # its buffered twin, the per-state evaluation with branch currents, the fit's model);
+    # all must agree.  Reference: the L-network cascade itself (series Z then shunt Y, or the
+    # reverse), checked against scikit-rf in test_network_matches_skrf.
+    import numpy as np
+    from feedmatch.rf.network import StateTable, all_states_zin, evaluate, load_network, oracle
+    from feedmatch.sim.fitbox import _bits, _predict
+
+    net = load_network()
+    f, zl = 7.1e6, complex(12.0, -150.0)
+    full = all_states_zin(net, f, zl)
+    assert np.allclose(StateTable(net).zin(f, zl), full, rtol=1e-12)
+    rng = np.random.default_rng(4)
+    for _ in range(20):
+        sh, l, c = int(rng.integers(2)), int(rng.integers(1 << net.n_l)), int(rng.integers(1 << net.n_c))
+        assert np.isclose(complex(evaluate(net, f, zl, l, c, sh)["z_in"]), full[sh, l, c], rtol=1e-9)
+    # The fit's model has no strays: compare on a network without them.
+    from dataclasses import replace
+
+    bare = replace(net, relay_open_pf=0.0, lead_nh=0.0, stray_in_pf=0.0, stray_out_pf=0.0)
+    full = all_states_zin(bare, f, zl)
+    ls = np.arange(0, 1 << net.n_l, 7)
+    cs = (ls * 3) % (1 << net.n_c)
+    for sh in (0, 1):
+        g = _predict(bare, np.ones(net.n_l), np.ones(net.n_c), np.full(len(ls), f), _bits(ls, net.n_l),
+                     _bits(cs, net.n_c), np.full(len(ls), sh), np.full(len(ls), zl), complex_out=True)
+        z = net.z0_ohm * (1 + g) / (1 - g)
+        assert np.allclose(z, full[sh, ls, cs], rtol=1e-9)
+    # The one oracle picks the table's minimum.
+    gm = np.abs((full - 50) / (full + 50))
+    l, c, sh, gbest = oracle(gm)
+    assert gbest == gm.min() and gm[sh, l, c] == gbest

@@ -6,13 +6,13 @@ import argparse
 import sys
 from typing import Any
 
+from fmlogic.search import NAMES as STRATEGY_NAMES  # the firmware's own list
+
 from feedmatch.errors import InputError
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
 from feedmatch.sim.loads import read_loads, smith_loads
 from feedmatch.sim.scorer import ScoreConfig, score, summarise
-
-STRATEGY_NAMES = ("grid", "model", "recall")
 
 
 def run_score_job(a: argparse.Namespace) -> int:

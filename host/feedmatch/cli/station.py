@@ -80,7 +80,9 @@ def cmd_tune(a) -> int:
         print(f"{rec['outcome']}: {rec['why']}; SWR {rec['swr_before']} -> {rec['swr_after']} "
               f"at {rec['freq_hz'] / 1e6:.4f} MHz, {_state_text(rec['after'])}, "
               f"{rec['n']} measurements in {rec['ms']} ms")
-    return 0 if rec["outcome"] in ("locked", "best-effort", "through") else 1
+    from fmlogic.controller import BEST, LOCKED, THROUGH
+
+    return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) else 1
 
 
 def cmd_bypass(a) -> int:

@@ -8,6 +8,9 @@ from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Any
 
+from fmlogic.config import DEFAULTS
+from fmlogic.controller import LOCKED
+
 from feedmatch.logbook.store import open_existing
 from feedmatch.rf import bands
 
@@ -31,7 +34,7 @@ def band_table(rows: list) -> list[dict[str, Any]]:
     out = []
     for name in sorted(by, key=lambda n: order.index(n) if n in order else 99):
         rs = by[name]
-        ok = [r for r in rs if r["outcome"] == "locked"]
+        ok = [r for r in rs if r["outcome"] == LOCKED]
         tuned = [r for r in rs if r["outcome"] not in ("refused",)]
         states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
         top = states.most_common(1)[0][0] if states else None
@@ -48,7 +51,7 @@ def band_table(rows: list) -> list[dict[str, Any]]:
     return out
 
 
-def health(ok: list, bin_hz: float = 25e3) -> dict[str, Any]:
+def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"]) -> dict[str, Any]:
     """Compare a band's recent matched tunes with its own baseline (its earlier ones).
 
     Like is compared with like: tunes are grouped by frequency bin, and in each bin
@@ -131,7 +134,7 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
     d.mkdir(parents=True, exist_ok=True)
     by = defaultdict(list)
     for r in rows:
-        if r["outcome"] == "locked" and r["swr_after"] is not None:
+        if r["outcome"] == LOCKED and r["swr_after"] is not None:
             by[r["band"]].append(r)
     files = []
     fig, ax = plt.subplots(figsize=(8, 4))

@@ -300,12 +300,18 @@ def evaluate(net: Network, f_hz, z_load, l_code: int, c_code: int, shunt: int | 
     return out
 
 
-def best_state(net: Network, f_hz: float, z_load: complex) -> tuple[int, int, int, float]:
-    """Exhaustive optimum (the oracle): (l_code, c_code, shunt, |gamma|)."""
-    gm = np.abs(gamma(all_states_zin(net, f_hz, z_load), net.z0_ohm))
+def oracle(gm: np.ndarray) -> tuple[int, int, int, float]:
+    """The exhaustive optimum of a |gamma| table of shape (2, 2^nL, 2^nC) (from
+    all_states_zin or StateTable): (l_code, c_code, shunt, |gamma|).  The one
+    oracle; ties go to the first state in (shunt, l, c) order."""
     idx = int(np.argmin(gm))
     sh, l, c = np.unravel_index(idx, gm.shape)
     return int(l), int(c), int(sh), float(gm.flat[idx])
+
+
+def best_state(net: Network, f_hz: float, z_load: complex) -> tuple[int, int, int, float]:
+    """Exhaustive optimum (the oracle): (l_code, c_code, shunt, |gamma|)."""
+    return oracle(np.abs(gamma(all_states_zin(net, f_hz, z_load), net.z0_ohm)))
 
 
 class StateTable:

@@ -105,11 +105,13 @@ def smith_loads(n: int, seed: int = 1, z0: float = 50.0, gamma_max: float = 0.97
 # modelling classes of the trade (poor / average / very good ground; common practice,
 # values from memory).
 SOILS = ((0.001, 5.0), (0.005, 13.0), (0.03, 20.0))
-MAX_H_OVER_LAMBDA = 0.42  # short and medium verticals: below the half-wave anti-resonance
+# Corpus verticals stop short of the closed form's own limit (antenna.MAX_H_OVER_LAMBDA,
+# 0.45): short and medium verticals, below the half-wave anti-resonance.
+CORPUS_H_OVER_LAMBDA = 0.42
 
 
 def _draw_band_freqs(rng, h: float, k: int) -> list[float]:
-    fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= MAX_H_OVER_LAMBDA]
+    fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= CORPUS_H_OVER_LAMBDA]
     out = []
     for _ in range(k):
         b = fit[int(rng.integers(len(fit)))]
@@ -139,7 +141,7 @@ def vertical_loads(n: int, seed: int = 1, model: str = "nec") -> list[Load]:
             loss = rng.uniform(1.0, 20.0)
             b = bands.HF_BANDS[int(rng.integers(len(bands.HF_BANDS)))]
             f = b.low_hz + (b.high_hz - b.low_hz) * rng.random()
-            if h * f / 299_792_458.0 > MAX_H_OVER_LAMBDA:
+            if h * f / 299_792_458.0 > CORPUS_H_OVER_LAMBDA:
                 continue
             z = complex(Monopole(h, 0.012, loss).impedance(f))
             out.append(Load(round(f, 1), z.real, z.imag))
@@ -210,7 +212,7 @@ def vertical_sessions(n_sessions: int, per: int, seed: int = 1) -> list[list[Loa
     for _ in range(n_sessions):
         (desc, _fs), = drawn_verticals(1, rng, per=1)
         h = desc["radiator"]["height_m"]
-        fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= MAX_H_OVER_LAMBDA]
+        fit = [b for b in bands.HF_BANDS if h * b.high_hz / 299_792_458.0 <= CORPUS_H_OVER_LAMBDA]
         fs = session_frequencies(rng, fit, per)
         z = sweep(validate(desc, "drawn vertical"), fs)
         out.append([Load(f, float(zz.real), float(zz.imag)) for f, zz in zip(fs, z)])

@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 
 from feedmatch.rf.detector import DetectorModel
-from feedmatch.rf.network import SHUNTS, Network, StateTable, swr_of
+from feedmatch.rf.network import SHUNTS, Network, StateTable, oracle, swr_of
 from feedmatch.sim.loads import Load
 
 
@@ -87,9 +87,7 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
     table = _table_for(true_net)
     gm = table.gamma_mag(load.freq_hz, load.z)
     tg = table._g
-    idx = int(np.argmin(gm))
-    o_sh, o_l, o_c = np.unravel_index(idx, gm.shape)
-    oracle_g = float(gm.flat[idx])
+    o_l, o_c, o_sh, oracle_g = oracle(gm)
     z0 = true_net.z0_ohm
     g_through = (load.z - z0) / (load.z + z0)
     bypass_g = abs(g_through)
@@ -228,7 +226,9 @@ def summarise(results: list[dict[str, Any]], target_swr: float,
     ok = [r for r in results if r["oracle_swr"] <= lim]
     bad = len(results) - len(ok)
     n_all = max(len(results), 1)
-    false_locks = sum(1 for r in results if r["outcome"] == "locked" and r["swr"] > target_swr)
+    from fmlogic.controller import LOCKED
+
+    false_locks = sum(1 for r in results if r["outcome"] == LOCKED and r["swr"] > target_swr)
     worse = sum(1 for r in results if not r["through"] and r["swr"] > r["bypass_swr"] * (1 + 1e-9))
     base = {"loads": len(results), "matchable": len(ok), "unmatchable": bad,
             "matchable_swr": lim, "false_lock_rate": false_locks / n_all,

@@ -7,7 +7,7 @@ from typing import Any
 import numpy as np
 
 from feedmatch.rf import bands
-from feedmatch.rf.network import SHUNTS, Network, all_states_zin, evaluate, gamma
+from feedmatch.rf.network import SHUNTS, Network, best_state, evaluate
 
 
 def point(net: Network, f_hz: float, z_load: complex, l_code: int, c_code: int, shunt: int,
@@ -34,9 +34,8 @@ def point(net: Network, f_hz: float, z_load: complex, l_code: int, c_code: int, 
 
 def best_point(net: Network, f_hz: float, z_load: complex,
                power_w: float | None = None) -> dict[str, Any]:
-    gm = np.abs(gamma(all_states_zin(net, f_hz, z_load), net.z0_ohm))
-    sh, l, c = np.unravel_index(int(np.argmin(gm)), gm.shape)
-    return point(net, f_hz, z_load, int(l), int(c), int(sh), power_w)
+    l, c, sh, _g = best_state(net, f_hz, z_load)
+    return point(net, f_hz, z_load, l, c, sh, power_w)
 
 
 def ratings(net: Network, antenna, band_names: list[str], power_w: float,
