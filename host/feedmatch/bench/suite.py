@@ -202,8 +202,18 @@ def bench_boxes(quick: bool = False) -> dict[str, Any]:
     return out
 
 
+# The names --only takes: each selects the group of keys it belongs to.
+ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
+              "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040")
+
+
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False) -> dict[str, Any]:
-    keys = set(only.split(",")) if only else None
+    keys = {k.strip() for k in only.split(",") if k.strip()} if only else None
+    unknown = sorted((keys or set()) - set(ONLY_NAMES))
+    if unknown:
+        from feedmatch.errors import InputError
+
+        raise InputError(f"--only: unknown {', '.join(unknown)} (choose from {', '.join(ONLY_NAMES)})")
     res: dict[str, Any] = {}
 
     def want(*names: str) -> bool:

@@ -10,6 +10,10 @@ from feedmatch import __version__
 from feedmatch.cli.output import emit_json
 from feedmatch.errors import InputError, LinkError
 
+# Corpus sizes beyond these are a typo, not a bench run (a million loads score in about an hour).
+MAX_SMITH = 1_000_000
+MAX_VERTICALS = 100_000
+
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # one line, exit 2
@@ -92,19 +96,23 @@ def cmd_loads(a: argparse.Namespace) -> int:
     from feedmatch.rf.antenna import load_antenna
     from feedmatch.sim.loads import Load, smith_loads, write_loads
 
+    if a.seed < 0:
+        raise InputError(f"--seed must be 0 or more, got {a.seed}")
     if sum(x is not None for x in (a.smith, a.antenna, a.verticals)) != 1:
         raise InputError("give exactly one of --smith N, --verticals N or --antenna FILE")
     if a.verticals is not None:
-        if a.verticals < 1:
-            raise InputError("--verticals needs a positive count")
+        if not 1 <= a.verticals <= MAX_VERTICALS:
+            raise InputError(f"--verticals needs a count from 1 to {MAX_VERTICALS}")
         from feedmatch.sim.loads import vertical_loads
 
         loads = vertical_loads(a.verticals, seed=a.seed, model=a.vertical_model)
     elif a.smith is not None:
-        if a.smith < 1:
-            raise InputError("--smith needs a positive count")
+        if not 1 <= a.smith <= MAX_SMITH:
+            raise InputError(f"--smith needs a count from 1 to {MAX_SMITH}")
         loads = smith_loads(a.smith, seed=a.seed)
     else:
+        if not 1 <= a.points <= 10000:
+            raise InputError(f"--points needs 1 to 10000 frequencies per band, got {a.points}")
         ant = load_antenna(a.antenna)
         names = [b.name for b in bands.HF_BANDS] if a.bands == "all" else a.bands.split(",")
         loads = []

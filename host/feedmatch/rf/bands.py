@@ -60,8 +60,12 @@ def parse_freq(text: str) -> float:
         f = float(text)
     except ValueError:
         return by_name(text).centre_hz
-    if not f > 0:
-        raise InputError(f"frequency must be > 0 Hz, got {text}")
+    if not f > 0 or f != f or f == float("inf"):
+        raise InputError(f"frequency must be a positive number of Hz, got {text}")
+    if f < 100e3:
+        # 7.1 or 40 are MHz or a band to an operator, never Hz to this box.
+        raise InputError(f"frequency {text} is in Hz and below 100 kHz: did you mean {f:g}e6 (MHz) "
+                         f"or a band name such as 40m?")
     return f
 
 

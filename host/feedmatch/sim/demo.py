@@ -16,12 +16,14 @@ import time
 from pathlib import Path
 from typing import Any
 
+from feedmatch.errors import InputError
 from feedmatch.logbook.logger import Logger
 from feedmatch.logbook.report import make_report, report_lines, report_plots, write_csv
 from feedmatch.rf.antenna import Monopole
 from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 
+DEMO_MARK = ".feedmatch-demo"  # a directory the demo made, so it may replace its own logbook
 SESSIONS = (("session 1", 0), ("session 2", 0),
             ("session 3: a mower has cut ten of the sixteen radials", 10))
 
@@ -30,8 +32,16 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
              verbose: bool = True) -> dict[str, Any]:
     t_start = time.monotonic()
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out} exists and is not a directory")
     db = out / "station.sqlite"
+    mark = out / DEMO_MARK
+    if db.exists() and not mark.exists():
+        # Somebody's real logbook, perhaps: the demo only ever replaces its own.
+        raise InputError(f"{db} exists and was not written by the demo; nothing was changed "
+                         "(choose another --out)")
+    out.mkdir(parents=True, exist_ok=True)
+    mark.write_text("written by feedmatch demo: its logbook here is replaced on every run\n")
     for p in (db, Path(str(db) + "-wal"), Path(str(db) + "-shm")):
         p.unlink(missing_ok=True)
     board_dir = out / "board-flash"

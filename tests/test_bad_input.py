@@ -1,0 +1,48 @@
+"""Bad input: one line naming the problem, exit status 2, nothing written, nothing lost.
+
+Each row is a case an operator meets (typos, units, sizes); the expected words are this
+project's own messages.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+
+import pytest
+
+from .conftest import run_cli
+
+CASES = [
+    (["simulate", "--freq", "7.1", "--load", "50"], "below 100 kHz"),     # MHz typed as Hz
+    (["simulate", "--freq", "40", "--load", "50"], "did you mean 40e6"),
+    (["simulate", "--freq", "inf", "--load", "50"], "positive number of Hz"),
+    (["simulate", "--freq", "nan", "--load", "50"], "positive number of Hz"),
+    (["loads", "--smith", "99999999999"], "--smith needs a count from 1 to"),
+    (["loads", "--smith", "0"], "--smith needs a count from 1 to"),
+    (["loads", "--smith", "10", "--seed", "-1"], "--seed must be 0 or more"),
+    (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
+    (["bench", "--only", "typo"], "--only: unknown typo"),
+]
+
+
+@pytest.mark.parametrize("argv,words", CASES, ids=[" ".join(c[0]) for c in CASES])
+def test_bad_input_is_one_line_and_exit_2(argv, words, tmp_path):
+    r = run_cli(*argv, timeout=60)
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert words in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_the_demo_never_replaces_a_logbook_it_did_not_write(tmp_path):
+    out = tmp_path / "shack"
+    out.mkdir()
+    book = out / "station.sqlite"
+    db = sqlite3.connect(book)
+    db.execute("CREATE TABLE tunes (seq INTEGER)")
+    db.execute("INSERT INTO tunes VALUES (1)")
+    db.commit()
+    db.close()
+    before = book.read_bytes()
+    r = run_cli("demo", "--out", str(out), timeout=60)
+    assert r.returncode == 2 and "was not written by the demo" in r.stderr
+    assert book.read_bytes() == before and sorted(p.name for p in out.iterdir()) == ["station.sqlite"]
