@@ -22,6 +22,7 @@ CASES = [
     (["loads", "--smith", "10", "--seed", "-1"], "--seed must be 0 or more"),
     (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
     (["bench", "--only", "typo"], "--only: unknown typo"),
+    (["score", "--strategy", "model", "--directivity", "1"], "--directivity must be 5 to 80 dB"),
 ]
 
 

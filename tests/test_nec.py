@@ -229,7 +229,7 @@ def test_drawn_vertical_corpus_is_physical():
     # radiator at most 0.42 wavelength, R > 0, and a plain radiator shorter than 0.2 wavelength
     # is capacitive (a monopole below its first resonance; Balanis, Antenna Theory, 3rd ed.).
     from feedmatch.rf import bands
-    from feedmatch.sim.loads import MAX_H_OVER_LAMBDA, drawn_verticals, vertical_loads
+    from feedmatch.sim.loads import CORPUS_H_OVER_LAMBDA, drawn_verticals, vertical_loads
 
     rng = np.random.default_rng(5)
     drawn = drawn_verticals(90, rng)
@@ -240,7 +240,7 @@ def test_drawn_vertical_corpus_is_physical():
         h = d["radiator"]["height_m"]
         for f, zz in zip(fs, z):
             assert any(b.low_hz <= f <= b.high_hz for b in bands.HF_BANDS)
-            assert h * f / C0 <= MAX_H_OVER_LAMBDA
+            assert h * f / C0 <= CORPUS_H_OVER_LAMBDA
             assert zz.real > 0
             if "top_hat" not in d and h * f / C0 < 0.2:
                 assert zz.imag < 0

@@ -204,6 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--power", type=float, default=10.0, help="tune carrier power, W")
     s.add_argument("--seed", type=int, default=1)
     s.add_argument("--ideal-detector", action="store_true")
+    s.add_argument("--directivity", type=float, metavar="DB",
+                   help="flat coupler directivity in dB (default: frequency-dependent, 25 dB at 28 MHz)")
     s.add_argument("--skip-bad", action="store_true")
     s.add_argument("--boxes", type=int, default=0, help="score on N drawn non-ideal boxes")
     s.add_argument("--tolerance", type=float, default=0.05)

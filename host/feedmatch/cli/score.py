@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from dataclasses import replace
 from typing import Any
 
 from fmlogic.search import NAMES as STRATEGY_NAMES  # the firmware's own list
@@ -36,7 +37,10 @@ def run_score_job(a: argparse.Namespace) -> int:
     else:
         loads = smith_loads(2000, seed=a.seed)
     progress = sys.stderr.isatty() and not a.json
-    det = DetectorModel(ideal=a.ideal_detector)
+    d = a.directivity
+    if d is not None and not (d == d and 5.0 <= d <= 80.0):
+        raise InputError(f"--directivity must be 5 to 80 dB, got {d:g}")
+    det = replace(DetectorModel(ideal=a.ideal_detector), directivity_flat_db=d)
     out: list[dict[str, Any]] = []
     boxes_json = []
     box_list: list[tuple[int, Any, DetectorModel, Any]] = []
@@ -47,7 +51,7 @@ def run_score_job(a: argparse.Namespace) -> int:
             box = draw_box(net, a.seed * 7919 + k, a.tolerance, a.strays, ideal=a.ideal_detector)
             # --fitted: the box's element values as fit-box would learn them from 200 earlier tunes.
             nominal = fit_from_scores(net, box, smith_loads(200, seed=a.seed + 1000 + k)) if a.fitted else net
-            box_list.append((k, box.network, box.detector, nominal))
+            box_list.append((k, box.network, replace(box.detector, directivity_flat_db=d), nominal))
             boxes_json.append(box.to_json(k))
     else:
         box_list.append((None, net, det, net))

@@ -113,7 +113,7 @@ class Pico:
 
     def __init__(self, uf2: str | Path, fs_image: bytes, workdir: str | Path,
                  pins: dict | None = None):
-        uf2 = Path(uf2)
+        uf2 = Path(uf2).resolve()  # node runs in another directory
         if not uf2.is_file():
             raise InputError(f"MicroPython image not found: {uf2}")
         self.uf2 = uf2
