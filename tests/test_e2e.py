@@ -44,7 +44,7 @@ def demo(tmp_path_factory):
     cwd = os.getcwd()
     os.chdir(out.parent)
     try:
-        res = run_demo(out.name, verbose=False)
+        res = run_demo(out.name)
     finally:
         os.chdir(cwd)
     res["db"] = str(out / "station.sqlite")

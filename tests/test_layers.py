@@ -22,3 +22,19 @@ def test_every_command_is_registered():
     names = set(sub.choices)
     assert {"simulate", "loads", "score", "bench", "antenna", "virtual-board", "status", "tune", "bypass",
             "memory", "log", "report", "demo", "fit-box", "deploy", "calibrate"} <= names
+
+
+def test_nothing_below_the_command_line_prints():
+    # Output belongs to cli/: the layers below return values (strings in board code don't count).
+    import ast
+
+    pkg = ROOT / "host" / "feedmatch"
+    offenders = []
+    for f in pkg.rglob("*.py"):
+        rel = f.relative_to(pkg)
+        if rel.parts[0] in ("cli", "data"):
+            continue
+        for node in ast.walk(ast.parse(f.read_text())):
+            if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "print":
+                offenders.append(f"{rel}:{node.lineno}")
+    assert not offenders, offenders

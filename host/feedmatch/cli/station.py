@@ -205,7 +205,7 @@ def cmd_virtual_board(a) -> int:
 def cmd_demo(a) -> int:
     from feedmatch.sim.demo import run_demo
 
-    res = run_demo(a.out, use_python=a.python, station_file=a.station)
+    res = run_demo(a.out, use_python=a.python, station_file=a.station, say=print)
     return 1 if res["violations"] else 0
 
 

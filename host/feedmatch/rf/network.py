@@ -222,13 +222,22 @@ def all_states_zin(net: Network, f_hz, z_load) -> np.ndarray:
     y_in, y_out = _stray_y(net, fe)
     zle = zl[..., None, None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        yl = 1.0 / zle + y_out
-        z_ant = zs + 1.0 / (yl + yc)
-        z_tx = 1.0 / (1.0 / (zs + 1.0 / yl) + yc)
+        z_tx, z_ant = lnet_zin(zs, yc, 1.0 / zle + y_out)
         out = np.stack([z_tx, z_ant], axis=-3)
         if net.stray_in_pf:
             out = 1.0 / (1.0 / out + y_in[..., None, :, :])
     return out
+
+
+def lnet_zin(zs, yc, yl):
+    """The L-network's input impedance, the one formula (arrays broadcast):
+    series impedance zs, shunt admittance yc, load admittance yl (the output
+    stray included).  Returns (capacitor on the transmitter side, capacitor on
+    the antenna side).  StateTable.zin is its in-place twin for speed and
+    _cascade adds the branch currents; tests hold all of them to this one."""
+    z_ant = zs + 1.0 / (yl + yc)
+    z_tx = 1.0 / (1.0 / (zs + 1.0 / yl) + yc)
+    return z_tx, z_ant
 
 
 def gamma(z_in, z0: float) -> np.ndarray:

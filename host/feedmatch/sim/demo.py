@@ -13,6 +13,7 @@ import json
 import shutil
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -29,7 +30,8 @@ SESSIONS = (("session 1", 0), ("session 2", 0),
 
 
 def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | None = None,
-             verbose: bool = True) -> dict[str, Any]:
+             say: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Run the demo into out_dir; say(line) narrates it (the command line passes print)."""
     t_start = time.monotonic()
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
@@ -54,7 +56,7 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
     th = threading.Thread(target=lg.run, args=(stop,), daemon=True)
     th.start()
     target = st.board_config.get("tune", {}).get("target_swr", 1.5)
-    say = print if verbose else (lambda *a, **k: None)
+    say = say or (lambda _line: None)
     say(f"station: {st.name}")
     say(f"site: {st.site}")
     say(f"antenna: {st.antenna.describe()}; firmware: "

@@ -18,7 +18,7 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.sparse import lil_matrix
 
-from feedmatch.rf.network import Network
+from feedmatch.rf.network import Network, lnet_zin
 
 PRIOR_SIGMA = 0.15  # relative; a weak pull to nominal for unexercised elements
 MIN_READINGS = 3
@@ -81,9 +81,7 @@ def _predict(net: Network, sl: np.ndarray, sc: np.ndarray, f: np.ndarray, bl: np
     zs = (xl / net.inductor_q if net.inductor_q else 0) + 1j * xl
     b = w * cv
     yc = (b / net.capacitor_q if net.capacitor_q else 0) + 1j * b
-    yl = 1 / zl
-    z_ant = zs + 1 / (yl + yc)
-    z_tx = 1 / (1 / (zs + zl) + yc)
+    z_tx, z_ant = lnet_zin(zs, yc, 1 / zl)  # the fit's model has no strays
     z = np.where(sh == 1, z_ant, z_tx)
     gam = (z - net.z0_ohm) / (z + net.z0_ohm)
     return gam if complex_out else np.abs(gam)
