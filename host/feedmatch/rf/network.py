@@ -80,6 +80,14 @@ class Network:
             d["stray_out_pf"] = self.stray_out_pf
         return d
 
+    def board_section(self) -> dict[str, Any]:
+        """The network as a board config carries it (the keys fmlogic.config
+        knows): the one conversion between the two files."""
+        from fmlogic.config import DEFAULTS
+
+        d = self.to_json() | {"inductor_q": self.inductor_q or 0.0, "capacitor_q": self.capacitor_q or 0.0}
+        return {k: v for k, v in d.items() if k in DEFAULTS["network"]}
+
     def firmware_bank(self):
         """The same network as the firmware's lnet.Bank (nominal values)."""
         from fmlogic import lnet

@@ -199,9 +199,8 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
 
     cfg = dict(board)
     cfg.setdefault("board", "virtual")
-    cfg.setdefault("network", net.to_json() | {"inductor_q": net.inductor_q or 0.0,
-                                               "capacitor_q": net.capacitor_q or 0.0})
-    cfg["network"] = {k: v for k, v in cfg["network"].items() if k in fcfg.DEFAULTS["network"]}
+    cfg["network"] = ({k: v for k, v in board["network"].items() if k in fcfg.DEFAULTS["network"]}
+                      if isinstance(board.get("network"), dict) else net.board_section())
     if "detector" not in cfg:
         # As `feedmatch calibrate` would set it up on this station's box.
         pts = [list(p) for p in det.calibration_points()]
