@@ -47,3 +47,25 @@ def test_the_demo_never_replaces_a_logbook_it_did_not_write(tmp_path):
     r = run_cli("demo", "--out", str(out), timeout=60)
     assert r.returncode == 2 and "was not written by the demo" in r.stderr
     assert book.read_bytes() == before and sorted(p.name for p in out.iterdir()) == ["station.sqlite"]
+
+
+@pytest.mark.parametrize("kind", ["missing", "regular file", "silent"])
+def test_log_fails_fast_on_a_port_that_is_not_a_board(kind, tmp_path):
+    import os
+
+    if kind == "missing":
+        port = str(tmp_path / "ttyUSB9")
+    elif kind == "regular file":
+        port = str(tmp_path / "notes.txt")
+        (tmp_path / "notes.txt").write_text("not a port")
+    else:
+        master, slave = os.openpty()  # a serial device with nothing behind it
+        port = os.ttyname(slave)
+    # (a hang would end in run_cli's timeout: the old behaviour waited silently)
+    r = run_cli("log", "--port", port, "--db", str(tmp_path / "station.sqlite"), timeout=60)
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert ("no feedmatch board answers" if kind == "silent" else "cannot open port") in r.stderr
+    assert not (tmp_path / "station.sqlite").exists()  # nothing created
+    if kind == "silent":
+        os.close(master)
+        os.close(slave)

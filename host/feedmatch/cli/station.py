@@ -30,6 +30,15 @@ def _state_text(r) -> str:
     return "through (bypass)" if byp else f"L{l} C{c} {'tx' if sh == 0 else 'ant'}"
 
 
+def _mhz(f_hz) -> str:
+    return f"{f_hz / 1e6:.4f} MHz" if f_hz else "no carrier counted"
+
+
+def _swr_text(swr) -> str:
+    # The board's -1 means no reading (no RF): never print it as an SWR.
+    return f"{swr}" if isinstance(swr, (int, float)) and swr >= 1.0 else "-"
+
+
 def cmd_status(a) -> int:
     from feedmatch.cli.output import emit_json
 
@@ -42,7 +51,7 @@ def cmd_status(a) -> int:
     print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {st['state']}"
           f" - {st['why']}")
     print(f"  relays {_state_text(st['relays'])}; forward {st['fwd_w']} W, "
-          f"SWR {swr if swr is not None else 'no RF'}; {st['freq_hz'] / 1e6:.4f} MHz")
+          f"SWR {swr if swr is not None else 'no RF'}; {_mhz(st['freq_hz'])}")
     print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
           f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
     return 0
@@ -77,9 +86,12 @@ def cmd_tune(a) -> int:
     if a.json:
         emit_json(rec)
     else:
-        print(f"{rec['outcome']}: {rec['why']}; SWR {rec['swr_before']} -> {rec['swr_after']} "
-              f"at {rec['freq_hz'] / 1e6:.4f} MHz, {_state_text(rec['after'])}, "
-              f"{rec['n']} measurements in {rec['ms']} ms")
+        if rec["outcome"] == "refused":
+            print(f"refused: {rec['why']}; relays left at {_state_text(rec['after'])}")
+        else:
+            print(f"{rec['outcome']}: {rec['why']}; SWR {_swr_text(rec['swr_before'])} -> "
+                  f"{_swr_text(rec['swr_after'])} at {_mhz(rec['freq_hz'])}, {_state_text(rec['after'])}, "
+                  f"{rec['n']} measurements in {rec['ms']} ms")
     from fmlogic.controller import BEST, LOCKED, THROUGH
 
     return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) else 1
@@ -123,13 +135,22 @@ def cmd_memory(a) -> int:
 
 
 def cmd_log(a) -> int:
+    import signal
+    from pathlib import Path
+
     from feedmatch.logbook.logger import Logger
     from feedmatch.logbook.store import Logbook
 
-    Logbook(a.db).close()  # refuse a non-SQLite file before touching the port
+    if Path(a.db).exists():
+        Logbook(a.db).close()  # refuse a non-SQLite file before touching the port
     lg = Logger(a.port, a.db, a.baud, out=sys.stdout if sys.stdout.isatty() else None)
+
+    def _term(_sig, _frame):
+        raise KeyboardInterrupt  # SIGTERM ends the session as cleanly as Ctrl-C
+
+    signal.signal(signal.SIGTERM, _term)
     try:
-        lg.run()
+        lg.run(first_connect_s=5.0)
     except KeyboardInterrupt:
         pass
     print(f"\nlogged {lg.added} new records into {a.db}")

@@ -31,6 +31,7 @@ class Logger:
         self.last_error = ""
         self._need_backfill = True
         self._stop: threading.Event | None = None
+        self._floor = 1  # the lowest record seq the board may still hold
 
     def _when(self, rec: dict[str, Any]) -> str:
         """Best estimate of when a record happened (the board has no clock)."""
@@ -60,6 +61,9 @@ class Logger:
         self.link.stop_event = self._stop
         self.link.open()
         self.link.on_event = self._on_event
+        self.link.request("status")  # a board answers before the logbook is touched
+        if self.book is None:
+            self.book = Logbook(self.db_path)
         self._sync()
 
     def _sync(self) -> None:
@@ -72,28 +76,48 @@ class Logger:
             self.book.start_session(bid, self.port)
         have = self.book.seqs(self.board_id)
         board_last = int(self.status.get("seq", 0))
-        missing = [s for s in range(1, board_last + 1) if s not in have]
+        if board_last < self._floor:
+            self._floor = 1  # a new board or a restarted sequence: everything may be asked again
+        missing = [s for s in range(self._floor, board_last + 1) if s not in have]
         if missing:
+            got: list[int] = []
+
             def take(rec: dict) -> None:
+                got.append(int(rec.get("seq", 0)))
                 if rec.get("seq") not in have:
                     self._commit(rec, self._when(rec))
             self.link.records_since(min(missing) - 1, take)
+            # What the board no longer holds (its ring was compacted) is never asked again:
+            # the backfill then costs only what is really new.
+            self._floor = max(self._floor, min(got) if got else board_last + 1)
         self._need_backfill = False
         self.last_committed = self.book.last_seq(self.board_id)
 
-    def run(self, stop: threading.Event | None = None, duration_s: float | None = None) -> int:
+    def run(self, stop: threading.Event | None = None, duration_s: float | None = None,
+            first_connect_s: float | None = None) -> int:
+        """Follow the board until stop is set (or duration_s has passed).
+
+        first_connect_s: give up, raising LinkError, when no board answers within
+        that long at the start (a wrong, busy or silent port); the logbook is not
+        created then.  Without it the logger waits for the board to appear."""
         stop = stop or threading.Event()
         self._stop = stop
-        self.book = Logbook(self.db_path)
         t_end = time.monotonic() + duration_s if duration_s else None
+        t_give_up = time.monotonic() + first_connect_s if first_connect_s is not None else None
         try:
             while not stop.is_set():
                 try:
                     self._connect()
                     break
-                except LinkError:
+                except LinkError as e:
                     if self.link is not None:
                         self.link.close()
+                    if t_give_up is not None and (time.monotonic() > t_give_up or "cannot open" in str(e)
+                                                  or "busy" in str(e)):
+                        if str(e).startswith("no answer"):
+                            raise LinkError(f"no feedmatch board answers on {self.port} (is it the right "
+                                            "port, and is the board powered?)") from None
+                        raise
                     if stop.wait(0.5) or (t_end is not None and time.monotonic() > t_end):
                         return self.added
             last_status = time.monotonic()
@@ -124,7 +148,8 @@ class Logger:
             if self.link is not None:
                 self.corrupt = self.link.bad_frames
                 self.link.close()
-            self.book.close()
+            if self.book is not None:
+                self.book.close()
         return self.added
 
     def _show(self) -> None:
