@@ -112,20 +112,31 @@ class LineReader:
 
     def feed(self, data):
         """Return a list of complete lines (bytes, with the newline) and b'' for
-        each over-long line that was dropped."""
+        each over-long line that was dropped.
+
+        Works a line segment at a time (bytes.find), not a byte at a time: on
+        the chip that is what lets a burst of garbage pass in milliseconds."""
         out = []
-        for i in range(len(data)):
-            b = data[i]
+        i = 0
+        n = len(data)
+        while i < n:
+            j = data.find(b"\n", i)
+            end = n if j < 0 else j + 1
             if self.skipping:
-                if b == 10:
+                if j >= 0:
                     self.skipping = False
+                i = end
                 continue
-            self.buf.append(b)
-            if b == 10:
-                out.append(bytes(self.buf))
+            # the line's length without its newline, if this segment joins it
+            size = len(self.buf) + end - i - (1 if j >= 0 else 0)
+            if size > MAX_LINE:
                 self.buf = bytearray()
-            elif len(self.buf) > MAX_LINE:
-                self.buf = bytearray()
-                self.skipping = True
                 out.append(b"")
+                self.skipping = j < 0
+            else:
+                self.buf.extend(data[i:end])
+                if j >= 0:
+                    out.append(bytes(self.buf))
+                    self.buf = bytearray()
+            i = end
         return out
