@@ -184,15 +184,3 @@ class EmulatedStation(StationBase):
             r = Records(d, 10000)
             r.load()
             return r.seq
-
-
-def wait_for(pred, timeout: float) -> bool:
-    t = time.monotonic() + timeout
-    while time.monotonic() < t:
-        if pred():
-            return True
-        time.sleep(0.05)
-    return False
-
-
-
