@@ -26,6 +26,7 @@ from pathlib import Path
 
 from feedmatch.errors import InputError
 from feedmatch.resources import DATA, FIRMWARE
+from feedmatch.sim.virtual import die_with_parent
 
 EMU_DATA = DATA / "emu"
 # The image a development checkout finds beside it (../shared/rp2040); users
@@ -149,7 +150,8 @@ class Pico:
         log = open(self.dir / "emulator.log", "ab")
         self.proc = subprocess.Popen(["node", str(d / "pico.mjs"), str(self.uf2), str(self.fs_path), str(port),
                                       json.dumps(self.pins)], cwd=d, stdin=subprocess.DEVNULL,
-                                     stdout=log, stderr=log, start_new_session=True)
+                                     stdout=log, stderr=log, start_new_session=True,
+                                     preexec_fn=die_with_parent)
         log.close()
         try:
             self.conn, _ = srv.accept()

@@ -27,6 +27,20 @@ from feedmatch.resources import FIRMWARE
 from feedmatch.sim.station import Station, StationModel, Step
 
 
+def die_with_parent() -> None:
+    """preexec_fn for the firmware and emulator children: on Linux the kernel
+    sends them SIGTERM when the host process dies, even by SIGKILL, so no
+    firmware is left running as an orphan (prctl PR_SET_PDEATHSIG)."""
+    if sys.platform.startswith("linux"):
+        import ctypes
+        import signal
+
+        try:
+            ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, int(signal.SIGTERM), 0, 0, 0)
+        except OSError:
+            pass
+
+
 def find_micropython() -> str | None:
     p = Path(sys.executable).parent / "micropython"
     if p.exists():
@@ -208,7 +222,7 @@ class VirtualStation(StationBase):
         env = dict(os.environ, MICROPYPATH=f"{FIRMWARE}:.frozen", PYTHONPATH=str(FIRMWARE))
         log = open(self.dir / "firmware.log", "ab")
         self.proc = subprocess.Popen(self._cmd(), cwd=str(FIRMWARE), env=env, stdin=subprocess.DEVNULL,
-                                     stdout=log, stderr=log)
+                                     stdout=log, stderr=log, preexec_fn=die_with_parent)
         log.close()
         self.last_ask = time.monotonic()
 
