@@ -54,6 +54,7 @@ class Controller:
         self.frames_bad = 0
         self.hot_refusals = 0
         self.boot = _bump_boot(d)
+        self.uid = _identity(d)
         errs = fcfg.validate(self.raw_cfg)
         self.cfg = fcfg.merged(self.raw_cfg if not errs else {})
         self._apply_cfg()
@@ -72,7 +73,7 @@ class Controller:
         if last is not None and not errs:
             self.pending_restore = last
         self._event("boot", {"boot": self.boot, "version": VERSION, "board_id": self.cfg["board_id"],
-                             "seq": self.rec.seq, "mem": self.mem.load_error or "ok"})
+                             "uid": self.uid, "seq": self.rec.seq, "mem": self.mem.load_error or "ok"})
 
     # -- configuration --------------------------------------------------------------
     def _apply_cfg(self):
@@ -283,7 +284,7 @@ class Controller:
         rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
                "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
                "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
-               "strategy": strat, "board_id": self.cfg["board_id"]}
+               "strategy": strat, "board_id": self.cfg["board_id"], "uid": self.uid}
         if trace:
             rec["trace"] = trace
         self.rec.add(rec)
@@ -348,7 +349,7 @@ class Controller:
                 "fwd_w": _r3(self.fwd), "ref_w": _r3(self.ref),
                 "swr": _r3(self._swr()) if self.fwd > 0 else None, "freq_hz": self.freq,
                 "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
-                "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
+                "uid": self.uid, "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
                 "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms(),
                 "manual": self.manual}
 
@@ -527,6 +528,37 @@ def _r3(x):
     if x is None:
         return None
     return int(x * 1000 + (0.5 if x >= 0 else -0.5)) / 1000.0
+
+
+def _identity(d):
+    """This board's identity: made once, on the first boot with an empty flash,
+    and kept in its own file, which a firmware update never touches.  Two boards
+    that share a config (and so a board_id), or a board whose flash was wiped
+    (its record numbers start again at 1), never look like one board to the
+    logbook."""
+    p = (d + "/board.uid") if d else "board.uid"
+    try:
+        with open(p) as f:
+            uid = f.read().strip()
+        if len(uid) == 12 and all(c in "0123456789abcdef" for c in uid):
+            return uid
+    except OSError:
+        pass
+    try:
+        import os
+
+        raw = os.urandom(6)
+    except (ImportError, AttributeError, NotImplementedError):
+        import time
+
+        t = time.ticks_us() if hasattr(time, "ticks_us") else int(time.time() * 1e6)
+        raw = bytes((t >> (8 * i)) & 0xFF for i in range(6))
+    uid = "".join("%02x" % b for b in raw)
+    try:
+        memory.atomic_write(d, "board.uid", uid.encode())
+    except OSError:
+        pass
+    return uid
 
 
 def _bump_boot(d):

@@ -154,6 +154,8 @@ def cmd_log(a) -> int:
     except KeyboardInterrupt:
         pass
     print(f"\nlogged {lg.added} new records into {a.db}")
+    for note in lg.notices:
+        print("note: " + note)
     return 0
 
 

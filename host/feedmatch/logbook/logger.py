@@ -9,7 +9,7 @@ from typing import Any, TextIO
 
 from feedmatch.board.link import BoardLink
 from feedmatch.errors import LinkError
-from feedmatch.logbook.store import Logbook
+from feedmatch.logbook.store import Logbook, board_key
 
 
 class Logger:
@@ -32,6 +32,8 @@ class Logger:
         self._need_backfill = True
         self._stop: threading.Event | None = None
         self._floor = 1  # the lowest record seq the board may still hold
+        self.notices: list[str] = []  # what the operator must hear (a reappearing board id)
+        self.notices_for: set[str] = set()
 
     def _when(self, rec: dict[str, Any]) -> str:
         """Best estimate of when a record happened (the board has no clock)."""
@@ -70,8 +72,16 @@ class Logger:
         """Ask the board where it is and fetch every record the logbook lacks."""
         assert self.link is not None and self.book is not None
         self.status = self.link.request("status")
-        bid = str(self.status.get("board_id", "unknown"))
+        bid = board_key(self.status)
         if bid != self.board_id or self.book.session is None:
+            others = self.book.other_identities(bid)
+            if others and bid not in self.notices_for:
+                self.notices_for.add(bid)
+                self.notices.append(f"board id {bid.split('/', 1)[0]} is logged before under "
+                                    f"{', '.join(others)}: this is another board (or its flash was wiped); "
+                                    f"its records are kept apart as {bid}")
+                if self.out is not None:
+                    self.out.write("\n" + self.notices[-1] + "\n")
             self.board_id = bid
             self.book.start_session(bid, self.port)
         have = self.book.seqs(self.board_id)

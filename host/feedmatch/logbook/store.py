@@ -46,6 +46,15 @@ def _now() -> str:
     return dt.datetime.now(dt.UTC).isoformat(timespec="milliseconds")
 
 
+def board_key(obj: dict[str, Any]) -> str:
+    """The logbook's name for the board a status or record comes from: its
+    configured id plus the identity it made on its first boot (older firmware
+    has none), so two boards sharing a config never share their records."""
+    bid = str(obj.get("board_id") or "unknown")
+    uid = obj.get("uid")
+    return f"{bid}/{uid}" if isinstance(uid, str) and uid else bid
+
+
 class Logbook:
     def __init__(self, path: str | Path, create: bool = True):
         self.path = Path(path)
@@ -102,6 +111,13 @@ class Logbook:
         self.session = cur.lastrowid
         return self.session
 
+    def other_identities(self, key: str) -> list[str]:
+        """Keys already in the logbook with the same configured id but another identity."""
+        bid = key.split("/", 1)[0]
+        rows = self.db.execute("SELECT board_id FROM boards WHERE board_id = ? OR board_id LIKE ?",
+                               (bid, bid + "/%")).fetchall()
+        return [r[0] for r in rows if r[0] != key]
+
     def last_seq(self, board_id: str) -> int:
         row = self.db.execute("SELECT MAX(seq) FROM tunes JOIN boards ON boards.id = tunes.board "
                               "WHERE boards.board_id=?", (board_id,)).fetchone()
@@ -114,8 +130,7 @@ class Logbook:
 
     def add(self, rec: dict[str, Any], when: str | None = None) -> bool:
         """Insert one record in its own transaction; False if it was already there."""
-        board_id = str(rec.get("board_id") or "unknown")
-        b = self.board(board_id)
+        b = self.board(board_key(rec))
         bef = (list(rec.get("before") or []) + [None] * 4)[:4]
         aft = (list(rec.get("after") or []) + [None] * 4)[:4]
         f = float(rec.get("freq_hz") or 0.0)
