@@ -17,11 +17,18 @@ CASES = [
     (["simulate", "--freq", "40", "--load", "50"], "did you mean 40e6"),
     (["simulate", "--freq", "inf", "--load", "50"], "positive number of Hz"),
     (["simulate", "--freq", "nan", "--load", "50"], "positive number of Hz"),
+    (["simulate", "--freq", "1e300", "--load", "50"], "above 1 GHz"),
     (["loads", "--smith", "99999999999"], "--smith needs a count from 1 to"),
     (["loads", "--smith", "0"], "--smith needs a count from 1 to"),
     (["loads", "--smith", "10", "--seed", "-1"], "--seed must be 0 or more"),
     (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
     (["bench", "--only", "typo"], "--only: unknown typo"),
+    (["virtual-board", "--carrier", "abc"], "--carrier must be W@Hz or W@band"),
+    (["virtual-board", "--carrier", "@20m"], "--carrier must be W@Hz or W@band"),
+    (["virtual-board", "--carrier", "10@1e30"], "above 1 GHz"),
+    (["virtual-board", "--carrier", "10@144e6"], "above the HF and 6 m range"),
+    (["simulate", "--freq", "7.1e6", "--load", "1e-300", "--best"], "resistance of 0.01 ohm to 1 Mohm"),
+    (["virtual-board", "--carrier", "nan@20m"], "--carrier needs a power of 0 to 2000 W"),
     (["score", "--strategy", "model", "--directivity", "1"], "--directivity must be 5 to 80 dB"),
 ]
 

@@ -26,8 +26,9 @@ def _parse_load(text: str) -> complex:
         z = complex(text.replace(" ", "").replace("i", "j"))
     except ValueError:
         raise InputError(f"--load must be a complex impedance like 12-150j, got '{text}'") from None
-    if not (math.isfinite(z.real) and math.isfinite(z.imag)) or z.real <= 0:
-        raise InputError(f"--load must have a finite, positive resistance, got '{text}'")
+    if not (math.isfinite(z.real) and math.isfinite(z.imag)) or not 0.01 <= z.real <= 1e6 or abs(z.imag) > 1e6:
+        raise InputError(f"--load needs a resistance of 0.01 ohm to 1 Mohm and a reactance within 1 Mohm, "
+                         f"got '{text}'")
     return z
 
 

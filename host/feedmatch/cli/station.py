@@ -181,8 +181,28 @@ def cmd_virtual_board(a) -> int:
     from feedmatch.sim.virtual import VirtualStation
 
     st = load_station(a.station)
+    import math
     import signal
     import tempfile
+
+    from feedmatch.rf import bands
+
+    carrier = None
+    if a.carrier:
+        # Checked before anything starts: a bad value is one line, never a thread's traceback.
+        w, at, f = a.carrier.partition("@")
+        try:
+            watts = float(w)
+        except ValueError:
+            raise InputError(f"--carrier must be W@Hz or W@band, e.g. 10@7.1e6 or 10@40m; got '{a.carrier}'") \
+                from None
+        if not at or not math.isfinite(watts) or not 0 < watts <= 2000:
+            raise InputError(f"--carrier needs a power of 0 to 2000 W and a frequency, e.g. 10@40m; "
+                             f"got '{a.carrier}'")
+        f_hz = bands.parse_freq(f)
+        if not f_hz <= 60e6:
+            raise InputError(f"--carrier frequency {f} is above the HF and 6 m range this box is built for")
+        carrier = (watts, f_hz)
 
     def _term(_signum, _frame):
         raise KeyboardInterrupt
@@ -206,11 +226,8 @@ def cmd_virtual_board(a) -> int:
     sys.stderr.write(f"{what} '{st.board_config.get('board_id')}' on {path} "
                      f"(flash in {d}); Ctrl-C stops it\n")
     try:
-        if a.carrier:
-            w, _, f = a.carrier.partition("@")
-            from feedmatch.rf import bands
-
-            vs.key(float(w), bands.parse_freq(f))
+        if carrier:
+            vs.key(*carrier)
         elif a.play:
             for step in st.script:
                 vs.play(step, st.board_config.get("tune", {}).get("target_swr", 1.5))

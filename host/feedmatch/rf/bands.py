@@ -62,6 +62,8 @@ def parse_freq(text: str) -> float:
         return by_name(text).centre_hz
     if not f > 0 or f != f or f == float("inf"):
         raise InputError(f"frequency must be a positive number of Hz, got {text}")
+    if f > 1e9:
+        raise InputError(f"frequency {text} Hz is above 1 GHz: an HF matching unit has no use for it")
     if f < 100e3:
         # 7.1 or 40 are MHz or a band to an operator, never Hz to this box.
         raise InputError(f"frequency {text} is in Hz and below 100 kHz: did you mean {f:g}e6 (MHz) "
