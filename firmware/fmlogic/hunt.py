@@ -27,6 +27,10 @@ except ImportError:  # CPython: the same code, run as plain Python
         def viper(f):
             return f
 
+        @staticmethod
+        def native(f):
+            return f
+
     def ptr8(x):
         return x
 
@@ -120,11 +124,13 @@ def _build():
 GRID, UU, RING, N = _build()
 
 
+@micropython.native
 def point(i):
     """Hypothesis i as a complex reflection coefficient."""
     return complex((GRID[2 * i] - BIAS) / ONE, (GRID[2 * i + 1] - BIAS) / ONE)
 
 
+@micropython.native
 def aim(i):
     """Where to probe for hypothesis i: the same angle, further in."""
     k = RING[i]
@@ -135,6 +141,7 @@ def aim(i):
     return complex((GRID[2 * i] - BIAS) / ONE * f, (GRID[2 * i + 1] - BIAS) / ONE * f)
 
 
+@micropython.native
 def q12(x):
     """A float in [-8, 8) as a biased Q12 integer."""
     v = int(x * ONE + (0.5 if x >= 0 else -0.5))
@@ -146,17 +153,23 @@ def q12(x):
 
 
 @micropython.viper
-def _reach(grid, flags, n: int, xm8: int, bm8: int, x2m: int, b2m: int):
+def _reach(grid, flags, pen, act, n: int, xm8: int, bm8: int, x2m: int, b2m: int) -> int:
     # flags[i] = 0 when a lossless L-network of either topology reaches load i
     # (ARRL Handbook L-network design conditions, written without roots or
     # divisions): capacitor across the transmitter needs r <= 1, B_C within
     # range, 0 <= sqrt(r(1-r)) - x <= x_max; across the antenna the same in
     # admittance.  xm8, bm8: x_max and b_max (normalised to z0) in Q8, x2m and
     # b2m: 1 + x_max^2 and 1 + b_max^2 (integers).  A 20 % margin keeps loads
-    # just outside the ideal reach that a nearby state still matches.
+    # just outside the ideal reach that a nearby state still matches.  The
+    # same pass clears pen[] and lists the reachable ones in act; returns how
+    # many there are.
     g = ptr16(grid)
     fl = ptr8(flags)
+    p = ptr32(pen)
+    q = ptr16(act)
+    na = 0
     for i in range(n):
+        p[i] = 0
         gx = int(g[2 * i]) - 32768
         gy = int(g[2 * i + 1]) - 32768
         nn = (16777216 - gx * gx - gy * gy) >> 12          # 1 - |g|^2, Q12
@@ -185,6 +198,10 @@ def _reach(grid, flags, n: int, xm8: int, bm8: int, x2m: int, b2m: int):
                     if t >= d2 or (t >= 0 and rr <= t * t):
                         ok = 1
         fl[i] = 1 - ok
+        if ok:
+            q[na] = i
+            na += 1
+    return na
 
 
 @micropython.viper
@@ -197,7 +214,9 @@ def _update(grid, uu, pen, act, na: int, co, m2: int, inv_s: int, cap: int, cut:
     #   |c g + 1|^2 = |c|^2 u + 2 Re(c g) + 1,
     # six multiplications a hypothesis.  co holds, biased, Q12: |a|^2, re and im of
     # a conj(b), |b|^2, |c|^2, re and im of c.  Hypotheses that reach cut leave
-    # act (compacted in place); returns how many stay.
+    # act (compacted in place); returns how many stay.  co[7] gets the least
+    # penalised of them before this reading (lowest index on a tie; 65535 for
+    # none), which best() answers once every hypothesis is out.
     g = ptr16(grid)
     u = ptr16(uu)
     p = ptr32(pen)
@@ -211,8 +230,14 @@ def _update(grid, uu, pen, act, na: int, co, m2: int, inv_s: int, cap: int, cut:
     cr = int(c[5]) - 32768
     ci = int(c[6]) - 32768
     k = 0
+    best = -1
+    bv = 0
     for j in range(na):
         i = int(q[j])
+        v = int(p[i])
+        if best < 0 or v < bv or (v == bv and i < best):
+            bv = v
+            best = i
         gx = int(g[2 * i]) - 32768
         gy = int(g[2 * i + 1]) - 32768
         ui = int(u[i])
@@ -230,24 +255,12 @@ def _update(grid, uu, pen, act, na: int, co, m2: int, inv_s: int, cap: int, cut:
         e = (z * z) >> 4
         if e > cap:
             e = cap
-        v = int(p[i]) + e
+        v += e
         p[i] = v
         if v < cut:
             q[k] = i
             k += 1
-    return k
-
-
-@micropython.viper
-def _active(tried, act, n: int) -> int:
-    # The hypotheses not marked in tried (the reachable ones) into act; how many.
-    t = ptr8(tried)
-    q = ptr16(act)
-    k = 0
-    for i in range(n):
-        if int(t[i]) == 0:
-            q[k] = i
-            k += 1
+    c[7] = best if best >= 0 else 65535
     return k
 
 
@@ -293,43 +306,57 @@ class Hunt:
     CUT = 432   # three readings at the cap: out
 
     def __init__(self, xm, bm):
-        self.pen = array("i", bytes(4 * N))
-        self.tried = bytearray(N)
-        self.act = array("H", bytes(2 * N))
-        self.co = array("H", bytes(14))
+        # The penalty buffers come from the pool (one set, allocated at import:
+        # a tune then allocates next to nothing, and the board's heap does not
+        # fragment); a second hunt alive at once gets its own.
+        self.bufs = _POOL.pop() if _POOL else _buffers()
+        self.pen, self.tried, self.act = self.bufs
+        self.co = array("H", bytes(16))
         self.evals = 0    # hypothesis updates and scans (the cost model counts them)
         self.scans = 0
         xm8 = int(min(xm, 120.0) * 1.1 * 256)
         bm8 = int(min(bm, 120.0) * 1.1 * 256)
         # Unreachable hypotheses start as tried, never aimed at, and out: no
         # reading updates them (a load there cannot be matched anyway).
-        _reach(GRID, self.tried, N, xm8, bm8, int(1 + (xm * 1.1) ** 2), int(1 + (bm * 1.1) ** 2))
-        self.na = _active(self.tried, self.act, N)
+        self.na = _reach(GRID, self.tried, self.pen, self.act, N, xm8, bm8, int(1 + (xm * 1.1) ** 2),
+                         int(1 + (bm * 1.1) ** 2))
         self._last = 0
 
+    def release(self):
+        """The tune is over: the buffers go back to the pool (once)."""
+        if self.bufs is not None and not _POOL:
+            _POOL.append(self.bufs)
+        self.bufs = None
+
+    @micropython.native
     def add(self, a, b, c, m, sigma):
         """One reading m (|gamma|) of a state with Moebius coefficients a, b, c, with
         the uncertainty sigma of m."""
         co = self.co
         p = a * complex(b.real, -b.imag)
-        co[0] = q12(a.real * a.real + a.imag * a.imag)
-        co[1] = q12(p.real)
-        co[2] = q12(p.imag)
-        co[3] = q12(b.real * b.real + b.imag * b.imag)
-        co[4] = q12(c.real * c.real + c.imag * c.imag)
-        co[5] = q12(c.real)
-        co[6] = q12(c.imag)
+        # q12 written out: a call per value costs more than the update itself.
+        ar = a.real
+        ai = a.imag
+        br = b.real
+        bi = b.imag
+        cr = c.real
+        ci = c.imag
+        for j, x in ((0, ar * ar + ai * ai), (1, p.real), (2, p.imag), (3, br * br + bi * bi),
+                     (4, cr * cr + ci * ci), (5, cr), (6, ci)):
+            v = int(x * 4096.0 + (0.5 if x >= 0.0 else -0.5))
+            co[j] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
         s2 = 2.0 * m * sigma + sigma * sigma  # sigma of |gamma|^2
         inv = int(16.0 * ONE / (s2 * ONE) + 0.5)
         if inv > 60000:
             inv = 60000
         self.evals += self.na
-        if self.na:
+        na = self.na
+        self.na = _update(GRID, UU, self.pen, self.act, na, co, int(m * m * ONE + 0.5), inv,
+                          self.CAP, self.CUT)
+        if na:
             # The last one standing is remembered: best() still has an answer
             # when every hypothesis is out.
-            self._last = _least(self.pen, self.act, self.na)
-        self.na = _update(GRID, UU, self.pen, self.act, self.na, co, int(m * m * ONE + 0.5), inv,
-                          self.CAP, self.CUT)
+            self._last = co[7]
 
     def pick(self):
         self.scans += 1
@@ -343,3 +370,10 @@ class Hunt:
         self.scans += 1
         i = _least(self.pen, self.act, self.na)
         return i if i >= 0 else self._last
+
+
+def _buffers():
+    return (array("i", bytes(4 * N)), bytearray(N), array("H", bytes(2 * N)))
+
+
+_POOL = [_buffers()]

@@ -11,6 +11,11 @@
 
 from array import array
 
+try:
+    import micropython
+except ImportError:  # CPython: the same code, run as plain Python
+    from fmlogic.hunt import micropython, ptr32
+
 SHUNT_TX = 0
 SHUNT_ANT = 1
 TWO_PI = 6.283185307179586
@@ -36,6 +41,10 @@ class Bank:
         self.c_max = (1 << self.nc) - 1
         self.lv = array("f", bytes(4 * (self.l_max + 1)))
         self.cv = array("f", bytes(4 * (self.c_max + 1)))
+        # The same tables as integers (value x lk, x ck) for the code lookups,
+        # which run in viper: on the board a float comparison costs an object.
+        self.li = array("i", bytes(4 * (self.l_max + 1)))
+        self.ci = array("i", bytes(4 * (self.c_max + 1)))
         self.set_values(self.nominal_l, self.nominal_c)
 
     def set_values(self, inductors_uh, capacitors_pf):
@@ -43,6 +52,8 @@ class Bank:
         self.cap = [float(v) for v in capacitors_pf]
         _tabulate(self.lv, self.ind)
         _tabulate(self.cv, self.cap)
+        self.lk, self.lmax = _scaled(self.li, self.lv)
+        self.ck, self.cmax = _scaled(self.ci, self.cv)
 
     def l_uh(self, code):
         return self.lv[code]
@@ -50,12 +61,19 @@ class Bank:
     def c_pf(self, code):
         return self.cv[code]
 
+    @micropython.native
     def l_code_for(self, l_uh):
         """Code whose inductance is nearest to l_uh."""
-        return _nearest(self.lv, self.ind[0], l_uh)
+        if l_uh <= 0.0:
+            return 0
+        return _nearest(self.li, self.l_max, int((l_uh if l_uh < self.lmax else self.lmax) * self.lk + 0.5))
 
+    @micropython.native
     def c_code_for(self, c_pf):
-        return _nearest(self.cv, self.cap[0], c_pf)
+        """Code whose capacitance is nearest to c_pf."""
+        if c_pf <= 0.0:
+            return 0
+        return _nearest(self.ci, self.c_max, int((c_pf if c_pf < self.cmax else self.cmax) * self.ck + 0.5))
 
 
 def _tabulate(table, values):
@@ -71,21 +89,45 @@ def _tabulate(table, values):
         table[code] = s
 
 
-def _nearest(table, step, value):
-    # Binary weighting makes value/step a good first guess; walking downhill a
-    # few codes absorbs banks whose effective values are off nominal.
-    top = len(table) - 1
-    if value <= 0.0:
-        return 0
-    best = int(value / step + 0.5)
+def _scaled(itab, ftab):
+    # Fill itab with ftab x k, k a power of two that keeps twice the largest
+    # value below 2^29 (so no viper intermediate overflows 31 bits); returns
+    # k and the largest value a lookup needs (twice the top: beyond it every
+    # code is worse than the top one anyway).
+    top = 0.0
+    for v in ftab:
+        if v > top:
+            top = v
+    k = 1.0
+    while top * k * 4.0 < 536870912.0 and k < 1073741824.0:
+        k *= 2.0
+    for i in range(len(ftab)):
+        itab[i] = int(ftab[i] * k + 0.5)
+    return k, 2.0 * top
+
+
+@micropython.viper
+def _nearest(table, top: int, v: int) -> int:
+    # Code of the value nearest v in table (integers, v > 0).  Binary weighting
+    # makes v / table[1] a good first guess; walking downhill a few codes
+    # absorbs banks whose effective values are off nominal.
+    t = ptr32(table)
+    step = t[1]
+    if step <= 0:
+        step = 1
+    best = (v + (step >> 1)) // step
     if best > top:
         best = top
-    err = abs(table[best] - value)
-    d = 1 if table[best] < value else -1
+    err = t[best] - v
+    if err < 0:
+        err = -err
+    d = 1 if t[best] < v else -1
     code = best + d
     k = 0
-    while 0 <= code <= top and k < 3:
-        e = abs(table[code] - value)
+    while 0 <= code and code <= top and k < 3:
+        e = t[code] - v
+        if e < 0:
+            e = -e
         if e >= err:
             break
         err = e
@@ -95,6 +137,7 @@ def _nearest(table, step, value):
     return best
 
 
+@micropython.native
 def z_in(bank, f_mhz, zl, l_code, c_code, shunt):
     """Input impedance of the network terminated in zl (complex ohms)."""
     w = TWO_PI * f_mhz
@@ -110,6 +153,7 @@ def z_in(bank, f_mhz, zl, l_code, c_code, shunt):
     return 1.0 / (yt + yc)
 
 
+@micropython.native
 def load_matched_by(bank, f_mhz, l_code, c_code, shunt):
     """The load that this state would match exactly to z0 (the network inverted)."""
     w = TWO_PI * f_mhz
@@ -126,6 +170,7 @@ def load_matched_by(bank, f_mhz, l_code, c_code, shunt):
         return None
 
 
+@micropython.native
 def mobius(bank, f_mhz, l_code, c_code, shunt):
     """The state as a bilinear map of the load's reflection coefficient g:
 
@@ -143,22 +188,21 @@ def mobius(bank, f_mhz, l_code, c_code, shunt):
     z = complex(x / bank.ql, x) if bank.ql > 0.0 else complex(0.0, x)
     b = w * bank.cv[c_code] * 1e-6 * z0
     y = complex(b / bank.qc, b) if bank.qc > 0.0 else complex(0.0, b)
+    # S-parameters from ABCD (Pozar, table 4.2), each over A + B + C + D:
+    #   antenna side: A = 1 + zy, B = z, C = y, D = 1
+    #   transmitter side: A = 1, B = z, C = y, D = 1 + zy
+    # Both share A + B + C + D and A - B - C + D; one reciprocal serves all three
+    # (every complex operation allocates on the board: fewer of them is faster).
     zy = z * y
+    s = z + y
+    dd = z - y
+    inv = 1.0 / (2.0 + s + zy)
     if shunt == SHUNT_ANT:
-        # A = 1 + zy, B = z, C = y, D = 1
-        al = 1.0 + zy - z - y + 1.0
-        be = 1.0 + zy + z - y - 1.0
-        ga = 1.0 + zy - z + y - 1.0
-        de = 1.0 + zy + z + y + 1.0
-    else:
-        # A = 1, B = z, C = y, D = 1 + zy
-        al = 2.0 - z - y + zy
-        be = z - y - zy
-        ga = y - z - zy
-        de = 2.0 + z + y + zy
-    return (al / de, be / de, ga / de)
+        return ((2.0 - s + zy) * inv, (zy + dd) * inv, (zy - dd) * inv)
+    return ((2.0 - s + zy) * inv, (dd - zy) * inv, -(dd + zy) * inv)
 
 
+@micropython.native
 def gamma_of(z, z0):
     """Magnitude of the reflection coefficient of z against real z0."""
     d = z + z0
@@ -173,6 +217,7 @@ def gamma_state(bank, f_mhz, zl, l_code, c_code, shunt):
     return gamma_of(z_in(bank, f_mhz, zl, l_code, c_code, shunt), bank.z0)
 
 
+@micropython.native
 def z_from_gamma(g, z0):
     """Load impedance from a complex reflection coefficient."""
     d = 1.0 - g
@@ -181,6 +226,7 @@ def z_from_gamma(g, z0):
     return z0 * (1.0 + g) / d
 
 
+@micropython.native
 def analytic_match(bank, f_mhz, zl, shunt):
     """Ideal lossless L-network element values (l_uh, c_pf) matching zl, or None.
 

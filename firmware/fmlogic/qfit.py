@@ -22,6 +22,10 @@ except ImportError:  # CPython: the same code, run as plain Python
         def viper(f):
             return f
 
+        @staticmethod
+        def native(f):
+            return f
+
     def ptr16(x):
         return x
 
@@ -36,6 +40,7 @@ MAX_PTS = 24     # starts ranked in one kernel pass
 CAP = 256        # (4 sigma)^2 * 16
 
 
+@micropython.native
 def q14(x):
     v = int(x * ONE + (0.5 if x >= 0 else -0.5))
     if v > 32767:
@@ -51,7 +56,7 @@ def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
     # point itself), points outside the chart skipped; out[0], out[1] get its
     # coordinates (biased), out[2], out[3] the rows evaluated (low, high 16
     # bits, for the cost model), the return value is its misfit (-1: no point
-    # inside).
+    # inside), also in out[5] plus one (for a viper caller).
     r = ptr16(rows)
     o = ptr16(out)
     best = -1
@@ -99,6 +104,7 @@ def _grid(rows, n: int, cx: int, cy: int, step: int, half: int, out) -> int:
     o[1] = by + 32768
     o[2] = cnt & 0xFFFF
     o[3] = (cnt >> 16) & 0xFFFF
+    o[5] = best + 1
     return best
 
 
@@ -167,7 +173,7 @@ class Rows:
         self.cap = cap
         self.r = array("H", bytes(2 * ROW * cap))
         self.n = 0
-        self.out = array("H", bytes(8))
+        self.out = array("H", bytes(12))
         self.sel = array("H", bytes(2 * ROW * cap))
         self.m = 0      # rows in sel (the weighty ones, for fits of many readings)
         self.pts = array("H", bytes(4 * MAX_PTS))
@@ -175,6 +181,7 @@ class Rows:
         self.evals = 0    # row evaluations by the kernel (the cost model counts them)
         self.calls = 0
 
+    @micropython.native
     def put(self, k, a, b, c, m, w):
         """Row k: coefficients of gamma = (a g + b) / (c g + 1), reading m (|gamma|),
         weight w = 1 / sigma of m^2 (sets how much a misfit counts)."""
@@ -192,10 +199,12 @@ class Rows:
         v = int(16.0 * w + 0.5)
         r[o + 7] = v if v < 65535 else 65535
 
+    @micropython.native
     def weigh(self, k, w):
         v = int(16.0 * w + 0.5)
         self.r[k * ROW + 7] = v if v < 65535 else 65535
 
+    @micropython.native
     def select(self, share=0.01):
         """Fit with the rows whose weight is at least share of the largest only:
         the rest cannot move the answer but would cost a kernel pass each."""
@@ -207,6 +216,7 @@ class Rows:
                 top = w
         self.m = _compact(r, self.n, self.sel, int(top * share))
 
+    @micropython.native
     def rank(self, starts):
         """The misfit of each start (list of complex gamma), in one kernel pass:
         a list of ints, 65535 outside the chart."""
@@ -228,44 +238,57 @@ class Rows:
             out.append(e if e >= 0 else 65535)
         return out
 
-    def cost(self, g):
-        """Misfit of load g (complex gamma) over the selected rows; 65535 outside the chart."""
+    @micropython.native
+    def refine(self, g):
+        """The best load near g: grids of 5 x 5 points, hyperbolic spacing 0.3,
+        then two and a half times finer (_refine).  Returns (misfit, gamma)."""
         out = self.out
-        e = _grid(self.sel, self.m, q14(g.real) - BIAS, q14(g.imag) - BIAS, 0, 0, out)
+        e = _refine(self.sel, self.m, q14(g.real) - BIAS, q14(g.imag) - BIAS, out)
         self.evals += out[2] + (out[3] << 16)
-        self.calls += 1
-        return e if e >= 0 else 65535
+        self.calls += out[4]
+        return (e, complex((out[0] - BIAS) / ONE, (out[1] - BIAS) / ONE))
 
-    def refine(self, g, levels=2, spacing=0.3):
-        """The best load near g: grids of 5 x 5 points, hyperbolic spacing
-        `spacing` then two and a half times finer per level; a coarse best on
-        the grid's rim moves the grid there (three times at most).
-        Returns (misfit, gamma)."""
-        out = self.out
-        cx = q14(g.real) - BIAS
-        cy = q14(g.imag) - BIAS
-        s = spacing
-        e = -1
-        lev = 0
-        moves = 0
-        while lev < levels:
-            u = (cx * cx + cy * cy) / (ONE * ONE)
-            step = int(s * (1.0 - u) * 0.5 * ONE + 0.5)
-            if step < 1:
-                step = 1
-            e = _grid(self.sel, self.m, cx, cy, step, 2, out)
-            self.evals += out[2] + (out[3] << 16)
-            self.calls += 1
-            if e < 0:
-                break
-            nx = out[0] - BIAS
-            ny = out[1] - BIAS
-            rim = nx == cx - 2 * step or nx == cx + 2 * step or ny == cy - 2 * step or ny == cy + 2 * step
-            cx = nx
-            cy = ny
-            if rim and lev == 0 and moves < 3:
-                moves += 1
-                continue
-            lev += 1
-            s = s / 2.5
-        return (e, complex(cx / ONE, cy / ONE))
+
+@micropython.viper
+def _refine(rows, n: int, cx: int, cy: int, out) -> int:
+    # Two levels of 5 x 5 grids around (cx, cy): hyperbolic spacing 0.3 (Q14:
+    # 4915), then 2.5 times finer; a grid step of s in that metric is
+    # s (1 - |g|^2) / 2 in gamma.  A first-level best on the grid's rim moves
+    # the grid there (three times at most).  out[0], out[1]: the best point
+    # (biased), out[2], out[3]: rows evaluated, out[4]: grid passes; returns
+    # its misfit (-1: no point inside the chart; also out[5] - 1).  The whole loop stays in
+    # integers: on the board each Python-level step costs more than a pass.
+    o = ptr16(out)
+    s = 4915
+    e = -1
+    lev = 0
+    moves = 0
+    cnt = 0
+    calls = 0
+    while lev < 2:
+        r2 = (cx * cx + cy * cy) >> 14          # |g|^2 in Q14
+        step = (s * (16384 - r2) + 16384) >> 15  # s (1 - |g|^2) / 2
+        if step < 1:
+            step = 1
+        _grid(rows, n, cx, cy, step, 2, out)
+        e = int(o[5]) - 1    # the misfit, read back as a machine int
+        cnt += int(o[2]) + (int(o[3]) << 16)
+        calls += 1
+        if e < 0:
+            break
+        nx = int(o[0]) - 32768
+        ny = int(o[1]) - 32768
+        rim = nx == cx - 2 * step or nx == cx + 2 * step or ny == cy - 2 * step or ny == cy + 2 * step
+        cx = nx
+        cy = ny
+        if rim and lev == 0 and moves < 3:
+            moves += 1
+            continue
+        lev += 1
+        s = (s * 2 + 2) // 5
+    o[0] = cx + 32768
+    o[1] = cy + 32768
+    o[2] = cnt & 0xFFFF
+    o[3] = (cnt >> 16) & 0xFFFF
+    o[4] = calls
+    return e

@@ -21,8 +21,10 @@ from fmlogic import hunt, lnet, qfit
 from fmlogic.swr import BAD_READING, NO_RF, gamma_from_swr, reading_gamma, swr_from_gamma
 
 try:
+    import micropython
     from micropython import const
-except ImportError:  # CPython
+except ImportError:  # CPython: the decorators change nothing there
+    from fmlogic.hunt import micropython
 
     def const(x):
         return x
@@ -40,7 +42,9 @@ _CLOSE = 0.3
 # Above this bypass reading, probes near the edge of the chart say almost
 # nothing about where the load is: the hunt starts at once.
 _PROBE_BELOW = 0.93
-# Readings left for best effort once the hunt finds no matchable load consistent.
+# Readings left for best effort once the hunt finds no matchable load
+# consistent; half as many when no reading came near a match (above _HIT): a
+# descent from there cannot beat bypass with confidence in a few readings.
 _HOPELESS_EXTRA = const(10)
 # How far a stored lock's reading may come back above the accept level (noise).
 _REPEAT = 0.02
@@ -57,6 +61,7 @@ class _Stop(Exception):
     pass
 
 
+@micropython.native
 def _q(x):
     # Decisions compare modelled values rounded to 1e-4: far above single
     # precision's resolution near 1 (6e-8), so every port (double, float32)
@@ -73,6 +78,7 @@ class Strategy:
     def __init__(self, bank, freq_hz, target_swr=1.5, budget=60, memory_hint=None, leak=None):
         self.bank = bank
         self.f_mhz = freq_hz / 1e6
+        self.w = lnet.TWO_PI * self.f_mhz   # rad/us: reactance in ohm from uH
         self.target_swr = target_swr
         self.target_g = gamma_from_swr(target_swr)
         self.leak = LEAK_DEFAULT if leak is None else float(leak)
@@ -118,6 +124,7 @@ class Strategy:
     def observe(self, fwd_w, ref_w):
         self.observe_gamma(reading_gamma(fwd_w, ref_w))
 
+    @micropython.native
     def observe_gamma(self, g):
         if self.done or self._next is None:
             return
@@ -192,6 +199,7 @@ class Strategy:
         return (self.best_state, swr_from_gamma(self.best_g))
 
     # -- internals ------------------------------------------------------------
+    @micropython.native
     def _record(self, state, g):
         if state not in self.seen:
             self.order.append(state)
@@ -210,12 +218,13 @@ class Strategy:
                 return False
         return True
 
+    @micropython.native
     def _contrast(self, state):
         # Move the series element by about z0 of reactance: a load matched by
         # state then reads about 0.45 (common practice: a j1 step on a matched
         # line, |j1 / (2 + j1)|).
         b = self.bank
-        w = lnet.TWO_PI * self.f_mhz
+        w = self.w
         step = b.l_code_for(b.z0 / w)
         if step < 1:
             step = 1
@@ -224,6 +233,7 @@ class Strategy:
             l = b.l_max
         return (l, state[1], state[2])
 
+    @micropython.native
     def _beats(self, g, gb):
         # Clearly better than the antenna alone: the coupler's leakage can move
         # each of two readings by |d| (1 + m^2) in opposite directions (the
@@ -233,6 +243,9 @@ class Strategy:
     def _finish(self):
         self.done = True
         self._next = None
+        h = getattr(self, "h", None)
+        if h is not None:
+            h.release()
         try:
             self._gen.close()
         except Exception:
@@ -392,6 +405,7 @@ class ModelFit(Strategy):
         self._wn = 0
 
     # -- the model --------------------------------------------------------------
+    @micropython.native
     def _coef(self, st):
         c = self.co.get(st)
         if c is None:
@@ -400,11 +414,13 @@ class ModelFit(Strategy):
             self.co[st] = c
         return c
 
+    @micropython.native
     def _pred(self, g, st):
         self.ops[1] += 1
         a, b, c = self._coef(st)
         return abs((a * g + b) / (c * g + 1.0))
 
+    @micropython.native
     def _sig(self, m):
         # Uncertainty of a reading m (|gamma|): ADC and noise, the coupler's
         # leakage, a 0.3 dB forward/reflected gain mismatch (3.5 % of m), and
@@ -414,6 +430,7 @@ class ModelFit(Strategy):
         # reads a passive load above 1.  Half of that is taken as one sigma.
         return 0.015 + 0.5 * self.leak * (1.0 + m * m) + 0.035 * m
 
+    @micropython.native
     def _reading(self, st, m):
         a, b, c = self._coef(st)
         s = self._sig(m)
@@ -424,6 +441,7 @@ class ModelFit(Strategy):
             self.rows.n = k + 1
             self._w.append(w)
 
+    @micropython.native
     def _near_w(self, st, center):
         # How much a reading of st says about the effective load at center.  The
         # element on the load side of the network (L with the capacitor across
@@ -442,6 +460,7 @@ class ModelFit(Strategy):
             dl, dc = dc, dl
         return 1.0 / ((1.0 + dl * dl * 0.015) * (1.0 + dc * dc * 0.0006))
 
+    @micropython.native
     def _fit(self, center=None, wide=False):
         """Candidate loads (complex gamma) for the readings, best first, as
         [(misfit, gamma), ...], at most 3 and at least 0.05 apart (qfit: a
@@ -507,6 +526,7 @@ class ModelFit(Strategy):
             self.g = out[0][1]
         return out
 
+    @micropython.native
     def _matched(self, st):
         """The load (gamma) this state matches exactly: the root of a g + b."""
         a, b, c = self._coef(st)
@@ -518,6 +538,7 @@ class ModelFit(Strategy):
             g = g * (0.9995 / m)
         return g
 
+    @micropython.native
     def _ideal(self, g):
         """The state the model predicts best for load g: the textbook closed form
         on either shunt side, rounded both ways in the element that sets the
@@ -525,27 +546,33 @@ class ModelFit(Strategy):
         then set to its best value for that code (the valley of a high-Q load
         runs diagonally across the codes).  The candidates are ranked by what
         is left of the mismatch once the other element cancels the reactance,
-        and the two best by the full model."""
+        and the two best by the full model (losses, the other element's
+        rounding)."""
         self.ops[3] += 1
         cands = self._valley(g)
+        if not cands:
+            return None
         cands.sort()
-        best = None
-        bv = 0
-        for i in range(len(cands) if len(cands) < 2 else 2):
-            st = cands[i][1]
-            v = _q(self._pred(g, st))
-            if best is None or v < bv or (v == bv and st < best):
-                best = st
-                bv = v
+        if len(cands) < 2:
+            return cands[0][1]
+        best = cands[0][1]
+        bv = _q(self._pred(g, best))
+        st = cands[1][1]
+        v = _q(self._pred(g, st))
+        if v < bv or (v == bv and st < best):
+            best = st
         return best
 
+    @micropython.native
     def _valley(self, g, around=None):
         """Candidate states for load g as [(residual, state)], residual the
         mismatch (|gamma|, in 1e-4, lossless) left by the transforming code."""
         b = self.bank
         z0 = b.z0
         zl = lnet.z_from_gamma(g, z0)
-        w = lnet.TWO_PI * self.f_mhz
+        yl = 1.0 / zl if zl != 0 else 0j
+        w = self.w
+        wc = w * 1e-6
         out = []
         for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
             if around is None:
@@ -570,7 +597,7 @@ class ModelFit(Strategy):
                         continue
                     # Capacitor across the load fixed: the series L that cancels
                     # what reactance is left; the resistance left is the mismatch.
-                    zp = 1.0 / (1.0 / zl + complex(0.0, w * b.cv[k] * 1e-6)) if zl != 0 else 0j
+                    zp = 1.0 / (yl + complex(0.0, wc * b.cv[k])) if zl != 0 else 0j
                     x = -zp.imag
                     r = zp.real
                     st = (b.l_code_for(x / w if x > 0.0 else 0.0), k, sh)
@@ -583,7 +610,7 @@ class ModelFit(Strategy):
                     ys = 1.0 / zs if zs != 0 else 0j
                     bc = -ys.imag
                     gg = ys.real * z0
-                    st = (k, b.c_code_for(bc / w * 1e6 if bc > 0.0 else 0.0), sh)
+                    st = (k, b.c_code_for(bc / wc if bc > 0.0 else 0.0), sh)
                     e = abs(gg - 1.0) / (gg + 1.0) if bc >= 0.0 else 1.0
                 out.append((_q(e), st))
         return out
@@ -606,7 +633,8 @@ class ModelFit(Strategy):
             if not left:
                 # No load the network can match is consistent with the readings:
                 # a few readings of best effort, then through or the best found.
-                self.budget = min(self.budget, self.n + _HOPELESS_EXTRA)
+                extra = _HOPELESS_EXTRA if self.best_g < _HIT else _HOPELESS_EXTRA // 2
+                self.budget = min(self.budget, self.n + extra)
             # Trilaterate with every reading and go to the match it gives.
             yield from self._jumps()
             if not left:
@@ -614,7 +642,7 @@ class ModelFit(Strategy):
 
     def _probes(self):
         b = self.bank
-        w = lnet.TWO_PI * self.f_mhz
+        w = self.w
         lp = b.l_code_for(b.z0 / w)
         cp = b.c_code_for(1e6 / (w * b.z0))
         return ((lp if lp else 1, 0, lnet.SHUNT_ANT), (0, cp if cp else 1, lnet.SHUNT_ANT))
@@ -646,7 +674,7 @@ class ModelFit(Strategy):
         h = self.h
         if h is None:
             b = self.bank
-            w = lnet.TWO_PI * self.f_mhz
+            w = self.w
             h = self.h = hunt.Hunt(w * b.lv[b.l_max] / b.z0, w * b.cv[b.c_max] * 1e-6 * b.z0)
         fine = self.best_g < _HIT
         left = True
@@ -810,12 +838,14 @@ _UNIT = (complex(1.0, 0.0), complex(0.7071067811865476, 0.7071067811865476), com
          complex(0.7071067811865476, -0.7071067811865476))
 
 
+@micropython.native
 def _key(t):
     # Sort key for (misfit, gamma): MicroPython's sort is not stable, so ties
     # fall to the coordinates, rounded like every other decision.
     return (_q(t[0]), _q(t[1].real), _q(t[1].imag))
 
 
+@micropython.native
 def _near(out, g):
     for e, h in out:
         if abs(g - h) < 0.05:
