@@ -76,3 +76,67 @@ def test_log_fails_fast_on_a_port_that_is_not_a_board(kind, tmp_path):
     if kind == "silent":
         os.close(master)
         os.close(slave)
+
+
+# Files and paths that must be refused before any work, each with the words of its message.
+# The Touchstone rules: Touchstone File Format Specification 2.0 (IBIS Open Forum, 2009),
+# frequencies in increasing order; |S11| <= 1 for a passive one-port (common practice).
+_S1P_HEAD = "# MHZ S RI R 50\n"
+PATH_CASES = [
+    ("nan.s1p", _S1P_HEAD + "7.0 nan 0.1\n7.1 0.2 0.1\n", ["simulate", "--antenna", "{f}", "--freq", "7.05e6",
+                                                           "--best"], "is not a number"),
+    ("nan.s1p", _S1P_HEAD + "7.0 nan 0.1\n7.1 0.2 0.1\n", ["antenna", "--antenna", "{f}"], "is not a number"),
+    ("nan.s1p", _S1P_HEAD + "7.0 nan 0.1\n7.1 0.2 0.1\n", ["loads", "--antenna", "{f}", "--bands", "40m"],
+     "is not a number"),
+    ("big.s1p", _S1P_HEAD + "7.0 1.5 0.1\n7.1 0.2 0.1\n", ["antenna", "--antenna", "{f}"], "not a passive antenna"),
+    ("back.s1p", _S1P_HEAD + "7.1 0.5 0.1\n7.0 0.2 0.1\n", ["antenna", "--antenna", "{f}"],
+     "frequencies must increase"),
+    ("neg.s1p", _S1P_HEAD + "-7.0 0.5 0.1\n7.1 0.2 0.1\n", ["antenna", "--antenna", "{f}"], "above 0 Hz"),
+    (None, None, ["loads", "--smith", "10", "--out", "{d}"], "must end in .csv"),
+    (None, None, ["loads", "--smith", "10", "--out", "{d}/no/such/x.csv"], "does not exist"),
+    (None, None, ["loads", "--smith", "10", "--out", "{d}/afile/x.csv"], "is not a directory"),
+    (None, None, ["score", "--strategy", "model", "--plots", "{d}/afile"], "exists and is not a directory"),
+    (None, None, ["score", "--strategy", "model", "--plots", "{d}/no/such"], "does not exist"),
+    (None, None, ["score", "--power", "nan"], "--power: needs a power above 0"),
+    (None, None, ["simulate", "--freq", "7e6", "--load", "50", "--best", "--power", "-5"],
+     "--power: needs a power above 0"),
+    (None, None, ["antenna", "--antenna", "{ant}", "--s1p", "{d}/out.txt"], "must end in .s1p"),
+    (None, None, ["antenna", "--antenna", "{ant}", "--plot", "{d}/out.xyz"], "must end in .png or .svg or .pdf"),
+    (None, None, ["antenna", "--antenna", "{ant}", "--plot", "{d}/no/such/a.png"], "does not exist"),
+    (None, None, ["report", "--db", "{d}/afile", "--since", "garbage"], "--since needs an ISO date"),
+    (None, None, ["report", "--db", "{d}/afile", "--csv", "{d}"], "must end in .csv"),
+    (None, None, ["report", "--db", "{d}/afile", "--plots", "{d}/afile"], "exists and is not a directory"),
+    (None, None, ["demo", "--out", "{d}/no/such/out"], "does not exist"),
+    (None, None, ["virtual-board", "--dir", "{d}/afile"], "exists and is not a directory"),
+]
+
+
+@pytest.mark.parametrize("name,text,argv,words", PATH_CASES, ids=[" ".join(c[2][:4]) + " " + c[3]
+                                                                  for c in PATH_CASES])
+def test_bad_files_and_paths_are_refused_before_any_work(name, text, argv, words, tmp_path):
+    from feedmatch.resources import DATA
+
+    (tmp_path / "afile").write_text("a file, not a directory\n")
+    f = tmp_path / (name or "unused")
+    if text is not None:
+        f.write_text(text)
+    ant = DATA / "antennas" / "hollow_oak_closed_form.json"
+    before = sorted(p.name for p in tmp_path.iterdir())
+    r = run_cli(*[a.format(f=f, d=tmp_path, ant=ant) for a in argv], timeout=60)
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert words in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert sorted(p.name for p in tmp_path.iterdir()) == before  # nothing written
+
+
+def test_the_shipped_closed_form_antenna_runs_with_the_default_sweep():
+    # The default sweep (1.8-30 MHz) ends where the closed form holds (0.45 wavelength of
+    # 4.5 m: 29.98 MHz) and says so; a sweep the user gives is never cut.
+    from feedmatch.resources import DATA
+
+    ant = str(DATA / "antennas" / "hollow_oak_closed_form.json")
+    r = run_cli("antenna", "--antenna", ant, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert "warning: sweep ends at 29.9" in r.stdout
+    r = run_cli("antenna", "--antenna", ant, "--sweep", "20e6:31e6:12", timeout=60)
+    assert r.returncode == 2 and "valid up to 0.45 wavelength" in r.stderr

@@ -86,3 +86,23 @@ def test_a_corrupt_logbook_is_reported_not_read_as_empty(tmp_path):
     book.write_bytes(bytes(raw))
     with pytest.raises(InputError, match="integrity|not a usable"):
         make_report(str(book))
+
+
+def _red_pixels(png) -> int:
+    import matplotlib.image as mpimg
+
+    im = mpimg.imread(str(png))
+    r, g, b = im[..., 0], im[..., 1], im[..., 2]
+    return int(((r > 0.9) & (g < 0.15) & (b < 0.15)).sum())
+
+
+def test_the_report_plot_shows_tunes_that_did_not_lock(tmp_path):
+    # A tune that ended best-effort is drawn (red crosses), not dropped from the picture.
+    from feedmatch.logbook.report import report_plots
+
+    locked = [dict(_row(i, 7.1e6, 100, 90), time=f"2026-11-0{i + 1}T10:00:00") for i in range(3)]
+    failed = dict(_row(9, 7.1e6, 5, 5, 2.4), outcome="best-effort", time="2026-11-05T10:00:00")
+    aborted = dict(_row(10, 7.1e6, 5, 5, None), outcome="aborted", time="2026-11-06T10:00:00")
+    only = report_plots(str(tmp_path / "a"), locked)[0]
+    both = report_plots(str(tmp_path / "b"), locked + [failed, aborted])[0]
+    assert _red_pixels(only) == 0 and _red_pixels(both) > 20

@@ -12,13 +12,19 @@
 # power first and refuses above power.hot_switch_w.  A tune needs a carrier
 # inside the tune window, has a measurement budget and a time limit, and is
 # journalled so a reset mid-tune still ends in a record.
+import gc
 import json
+import sys
 
 from fmlogic import config as fcfg
 from fmlogic import link, memory, search
 from fmlogic.swr import gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
+# On the board a tune allocates tens of KB of floats; collecting once it is
+# over (relays still, nothing timed) leaves the next tune a fresh heap, so no
+# collection lands between two relay steps (common MicroPython practice).
+_COLLECT = sys.implementation.name == "micropython"
 _RECORDS_BYTES = 900
 _KEEP_BEST_SWR = 3.0  # a best effort worse than this is not worth recalling
 WAIT_RF = "wait-rf"
@@ -275,6 +281,8 @@ class Controller:
             self._fault(why)
         else:
             self._set_state(outcome, why)
+        if _COLLECT:
+            gc.collect()
 
     # -- records, events, state ---------------------------------------------------
     def _state_list(self):

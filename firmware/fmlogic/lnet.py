@@ -52,8 +52,18 @@ class Bank:
         self.cap = [float(v) for v in capacitors_pf]
         _tabulate(self.lv, self.ind)
         _tabulate(self.cv, self.cap)
+        self._loc = (_locality(self.lv, 0.015), _locality(self.cv, 0.015),
+                     _locality(self.lv, 0.0006), _locality(self.cv, 0.0006))
         self.lk, self.lmax = _scaled(self.li, self.lv)
         self.ck, self.cmax = _scaled(self.ci, self.cv)
+
+    def locality(self, shunt):
+        """Per-code factors of the fit's locality weight (search.ModelFit._fit)
+        for states on this shunt side: (indexed by the XOR of two L codes, by
+        the XOR of two C codes); the load-side element's factor is the steep
+        one.  Made with the value tables (at boot, not in a tune)."""
+        t = self._loc
+        return (t[2], t[1]) if shunt == SHUNT_ANT else (t[0], t[3])
 
     def l_uh(self, code):
         return self.lv[code]
@@ -87,6 +97,16 @@ def _tabulate(table, values):
             c >>= 1
             i += 1
         table[code] = s
+
+
+def _locality(table, k):
+    # 1 / (1 + (v / v1)^2 k) per code: v the value of the code, v1 the smallest.
+    out = array("f", bytes(4 * len(table)))
+    v1 = table[1] if table[1] > 0.0 else 1.0
+    for i in range(len(table)):
+        d = table[i] / v1
+        out[i] = 1.0 / (1.0 + d * d * k)
+    return out
 
 
 def _scaled(itab, ftab):

@@ -9,6 +9,9 @@ import numpy as np
 
 from feedmatch.rf.network import Network, all_states_zin, gamma, swr_of
 
+# The file types a plot option takes (matplotlib writes each from its name).
+PLOT_SUFFIXES = (".png", ".svg", ".pdf")
+
 
 def _plt():
     import matplotlib
@@ -44,7 +47,7 @@ def score_plots(outdir: str | Path, out: list[dict[str, Any]], net: Network,
                 target: float) -> list[Path]:
     plt = _plt()
     d = Path(outdir)
-    d.mkdir(parents=True, exist_ok=True)
+    d.mkdir(exist_ok=True)  # its parent was checked (feedmatch.outpaths)
     files = []
     for o in out:
         fig, ax = plt.subplots(figsize=(6, 6))

@@ -9,6 +9,7 @@ import sys
 from feedmatch import __version__
 from feedmatch.cli.output import emit_json
 from feedmatch.errors import InputError, LinkError
+from feedmatch.outpaths import output_file
 
 # Corpus sizes beyond these are a typo, not a bench run (a million loads score in about an hour).
 MAX_SMITH = 1_000_000
@@ -19,6 +20,17 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # one line, exit 2
         sys.stderr.write(f"feedmatch: error: {message}\n")
         sys.exit(2)
+
+
+def _watts(text: str) -> float:
+    """argparse type: a transmitter power in W."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"needs a power in W, got '{text}'") from None
+    if not (math.isfinite(v) and 0.0 < v <= 10000.0):
+        raise argparse.ArgumentTypeError(f"needs a power above 0 and up to 10000 W, got '{text}'")
+    return v
 
 
 def _parse_load(text: str) -> complex:
@@ -99,6 +111,8 @@ def cmd_loads(a: argparse.Namespace) -> int:
 
     if a.seed < 0:
         raise InputError(f"--seed must be 0 or more, got {a.seed}")
+    if a.out and a.out != "-":
+        output_file(a.out, "--out", (".csv",))
     if sum(x is not None for x in (a.smith, a.antenna, a.verticals)) != 1:
         raise InputError("give exactly one of --smith N, --verticals N or --antenna FILE")
     if a.verticals is not None:
@@ -176,7 +190,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--c-code", type=int)
     s.add_argument("--shunt", default="ant", choices=["tx", "ant"])
     s.add_argument("--best", action="store_true", help="search all states exhaustively")
-    s.add_argument("--power", type=float, help="forward power in W for voltage/current figures")
+    s.add_argument("--power", type=_watts, help="forward power in W for voltage/current figures")
     s.add_argument("--ratings", action="store_true",
                    help="worst capacitor voltage / inductor current per band at the best states")
     s.add_argument("--bands", default="all", help="bands for --ratings, e.g. 40m,20m")
@@ -202,7 +216,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--target", type=float, default=1.5)
     s.add_argument("--budget", type=int, default=80)
     s.add_argument("--settle-ms", type=float, default=10.0)
-    s.add_argument("--power", type=float, default=10.0, help="tune carrier power, W")
+    s.add_argument("--power", type=_watts, default=10.0, help="tune carrier power, W")
     s.add_argument("--seed", type=int, default=1)
     s.add_argument("--ideal-detector", action="store_true")
     s.add_argument("--directivity", type=float, metavar="DB",
@@ -228,8 +242,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form)")
     s.add_argument("--antenna", required=True, help="antenna JSON or .s1p")
-    s.add_argument("--sweep", default="1.8e6:30e6:300", help="start:stop:points in Hz")
-    s.add_argument("--plot", help="PNG of R, X and SWR")
+    s.add_argument("--sweep", help="start:stop:points in Hz (default: 1.8e6:30e6:300, within the model's range)")
+    s.add_argument("--plot", help="plot of R, X and SWR (.png, .svg or .pdf)")
     s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
     s.add_argument("--exact", action="store_true",
                    help="solve NEC-2 at every frequency instead of sampling adaptively and interpolating")

@@ -7,9 +7,13 @@ from typing import Any
 
 import numpy as np
 
+from feedmatch.outpaths import output_file
+from feedmatch.plots import PLOT_SUFFIXES
 from feedmatch.rf import bands
 from feedmatch.rf.antenna import load_antenna, write_s1p
 from feedmatch.rf.network import Z0_OHM, gamma, swr_of
+
+DEFAULT_SWEEP = "1.8e6:30e6:300"
 
 
 def resonances(f: np.ndarray, z: np.ndarray) -> list[dict[str, Any]]:
@@ -31,11 +35,21 @@ def run_antenna(a: argparse.Namespace) -> int:
 
     from feedmatch.cli.output import emit_json
 
+    if a.s1p:
+        output_file(a.s1p, "--s1p", (".s1p",))
+    if a.plot:
+        output_file(a.plot, "--plot", PLOT_SUFFIXES)
     ant = load_antenna(a.antenna)
-    f = np.array(bands.parse_sweep(a.sweep))
+    f = np.array(bands.parse_sweep(a.sweep or DEFAULT_SWEEP))
     how = None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
+        top = getattr(ant, "max_hz", None)
+        if a.sweep is None and top is not None and f[-1] > top():
+            # The default sweep, not the user's: end it where the model holds, and say so.
+            f = f[f <= top()]
+            warnings.warn(f"sweep ends at {f[-1] / 1e6:.3f} MHz, the highest frequency this antenna "
+                          f"model holds at", stacklevel=1)
         if hasattr(ant, "sweep"):
             how = ant.sweep(f, exact=a.exact)
             z = how.z

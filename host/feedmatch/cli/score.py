@@ -10,6 +10,7 @@ from typing import Any
 from fmlogic.search import NAMES as STRATEGY_NAMES  # the firmware's own list
 
 from feedmatch.errors import InputError
+from feedmatch.outpaths import output_dir
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
 from feedmatch.sim.loads import read_loads, smith_loads
@@ -29,6 +30,8 @@ def run_score_job(a: argparse.Namespace) -> int:
         raise InputError("--budget must be at least 1")
     if a.boxes < 0 or not 0 <= a.tolerance < 0.3:
         raise InputError("--boxes must be >= 0 and --tolerance in 0..0.3")
+    if a.plots:
+        output_dir(a.plots, "--plots")
     net = load_network(a.network)
     if a.loads:
         loads, bad = read_loads(a.loads, a.skip_bad)

@@ -7,6 +7,7 @@ import sys
 import time
 
 from feedmatch.errors import BoardRefused, InputError, LinkError
+from feedmatch.outpaths import output_dir, output_file
 
 
 def _link(a: argparse.Namespace):
@@ -23,11 +24,36 @@ def _add_port(s) -> None:
     s.add_argument("--json", action="store_true")
 
 
-def _state_text(r) -> str:
+def _state_text(r, bank=None) -> str:
+    """Relays as codes and, with the board's bank, the values a builder measures."""
     if not r:
         return "-"
     l, c, sh, byp = r
-    return "through (bypass)" if byp else f"L{l} C{c} {'tx' if sh == 0 else 'ant'}"
+    if byp:
+        return "through (bypass)"
+    return f"L{l} C{c} {'tx' if sh == 0 else 'ant'}{_values_text(bank, l, c)}"
+
+
+def _values_text(bank, l: int, c: int) -> str:
+    if bank is None or not (0 <= l <= bank.l_max and 0 <= c <= bank.c_max):
+        return ""
+    return f" ({bank.lv[l]:.2f} uH, {bank.cv[c]:.0f} pF)"
+
+
+def _board_bank(ln):
+    """The board's element values (its network, with any learned correction), or
+    None when the board does not say: codes are then printed alone."""
+    from fmlogic.config import bank_from
+
+    try:
+        m = {"network": ln.request("cfg-get", {"section": "network"})["value"]}
+        try:
+            m["correction"] = ln.request("cfg-get", {"section": "correction"})["value"]
+        except BoardRefused:
+            pass  # no learned values: the nominal ones
+        return bank_from(m)
+    except (BoardRefused, KeyError, TypeError, ValueError):
+        return None
 
 
 def _mhz(f_hz) -> str:
@@ -44,13 +70,14 @@ def cmd_status(a) -> int:
 
     with _link(a) as ln:
         st = ln.request("status")
+        bank = None if a.json else _board_bank(ln)
     if a.json:
         emit_json(st)
         return 0
     swr = st.get("swr")
     print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {st['state']}"
           f" - {st['why']}")
-    print(f"  relays {_state_text(st['relays'])}; forward {st['fwd_w']} W, "
+    print(f"  relays {_state_text(st['relays'], bank)}; forward {st['fwd_w']} W, "
           f"SWR {swr if swr is not None else 'no RF'}; {_mhz(st['freq_hz'])}")
     print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
           f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
@@ -81,16 +108,17 @@ def cmd_tune(a) -> int:
         if rec is None:
             recs = ln.records_since(before)
             rec = recs[0] if recs else None
+        bank = None if a.json else _board_bank(ln)
     if rec is None:
         raise LinkError(f"no tune result within {a.wait:g} s (is a carrier keyed?)")
     if a.json:
         emit_json(rec)
     else:
         if rec["outcome"] == "refused":
-            print(f"refused: {rec['why']}; relays left at {_state_text(rec['after'])}")
+            print(f"refused: {rec['why']}; relays left at {_state_text(rec['after'], bank)}")
         else:
             print(f"{rec['outcome']}: {rec['why']}; SWR {_swr_text(rec['swr_before'])} -> "
-                  f"{_swr_text(rec['swr_after'])} at {_mhz(rec['freq_hz'])}, {_state_text(rec['after'])}, "
+                  f"{_swr_text(rec['swr_after'])} at {_mhz(rec['freq_hz'])}, {_state_text(rec['after'], bank)}, "
                   f"{rec['n']} measurements in {rec['ms']} ms")
     from fmlogic.controller import BEST, LOCKED, THROUGH
 
@@ -102,10 +130,11 @@ def cmd_bypass(a) -> int:
 
     with _link(a) as ln:
         r = ln.request("bypass", {"on": not a.off})
+        bank = None if a.json else _board_bank(ln)
     if a.json:
         emit_json(r)
     else:
-        print(f"relays now {_state_text(r['relays'])}")
+        print(f"relays now {_state_text(r['relays'], bank)}")
     return 0
 
 
@@ -115,7 +144,10 @@ def cmd_memory(a) -> int:
     with _link(a) as ln:
         if a.clear:
             ln.request("mem-clear")
-            print("memory cleared")
+            if a.json:
+                emit_json({"cleared": True})
+            else:
+                print("memory cleared")
             return 0
         items = []
         start = 0
@@ -125,12 +157,14 @@ def cmd_memory(a) -> int:
             start += len(r["entries"])
             if not r["entries"] or start >= r["total"]:
                 break
+        bank = None if a.json else _board_bank(ln)
     if a.json:
         emit_json({"bin_hz": r["bin_hz"], "entries": items})
         return 0
     print(f"{len(items)} stored states (bins of {r['bin_hz'] / 1e3:g} kHz)")
     for f, l, c, sh, swr, _t in items:
-        print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}")
+        print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}"
+              f"{_values_text(bank, l, c)}")
     return 0
 
 
@@ -163,6 +197,17 @@ def cmd_report(a) -> int:
     from feedmatch.cli.output import emit_json
     from feedmatch.logbook.report import make_report, report_lines, report_plots, write_csv
 
+    if a.since:
+        from datetime import datetime
+
+        try:
+            datetime.fromisoformat(a.since)
+        except ValueError:
+            raise InputError(f"--since needs an ISO date such as 2026-11-01, got '{a.since}'") from None
+    if a.csv:
+        output_file(a.csv, "--csv", (".csv",))
+    if a.plots:
+        output_dir(a.plots, "--plots")
     rep = make_report(a.db, a.since)
     if a.csv:
         write_csv(a.csv, rep["rows"])
@@ -208,6 +253,8 @@ def cmd_virtual_board(a) -> int:
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, _term)
+    if a.dir:
+        output_dir(a.dir, "--dir")
     d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
     if a.emulate:
         from feedmatch.sim.emulated import EmulatedStation

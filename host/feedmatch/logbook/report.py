@@ -131,11 +131,14 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
 
     plt = _plt()
     d = Path(outdir)
-    d.mkdir(parents=True, exist_ok=True)
+    d.mkdir(exist_ok=True)  # its parent was checked (feedmatch.outpaths)
     by = defaultdict(list)
+    missed = []     # tunes that ended without a lock: they belong in the picture too
     for r in rows:
         if r["outcome"] == LOCKED and r["swr_after"] is not None:
             by[r["band"]].append(r)
+        else:
+            missed.append(r)
     files = []
     fig, ax = plt.subplots(figsize=(8, 4))
     import datetime as dt
@@ -143,9 +146,19 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
     for band, rs in by.items():
         t = [dt.datetime.fromisoformat(r["time"]) for r in rs]
         ax.plot(t, [r["swr_after"] for r in rs], "o-", ms=3, label=band)
+    with_swr = [r for r in missed if r["swr_after"] is not None and r["swr_after"] > 0]
+    if with_swr:
+        ax.plot([dt.datetime.fromisoformat(r["time"]) for r in with_swr], [r["swr_after"] for r in with_swr],
+                "x", color="red", ms=6, label="not locked (best effort, through)")
+    no_result = [r for r in missed if r not in with_swr]
+    if no_result:
+        # No SWR to show (aborted, fault): marked along the top edge so they are not lost.
+        top = max([r["swr_after"] for rs in by.values() for r in rs] + [r["swr_after"] for r in with_swr] + [2.0])
+        ax.plot([dt.datetime.fromisoformat(r["time"]) for r in no_result], [top] * len(no_result), "v",
+                color="0.4", ms=6, label="no result (aborted, fault)")
     ax.set_ylabel("SWR after tune")
     ax.set_title("SWR after tune by band")
-    if by:
+    if by or missed:
         ax.legend(fontsize=8, ncol=4)
     fig.autofmt_xdate()
     f = d / "swr_by_band.png"

@@ -14,6 +14,7 @@ the model refuses heights above 0.45 wavelength (use the NEC model).
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
@@ -86,6 +87,10 @@ class Monopole:
         z = 0.5 * dipole_induced_emf(2 * self.height_m, self.radius_m, f)
         return z + self.ground_loss_ohm
 
+    def max_hz(self) -> float:
+        """The highest frequency the closed form holds at (0.45 wavelength)."""
+        return MAX_H_OVER_LAMBDA * C0 / self.height_m
+
     def describe(self) -> str:
         return (f"monopole {self.height_m:g} m, radius {self.radius_m * 1e3:g} mm, "
                 f"ground loss {self.ground_loss_ohm:g} ohm")
@@ -107,16 +112,39 @@ class TouchstoneSweep:
         if not p.is_file():
             raise InputError(f"Touchstone file not found: {p}")
         try:
-            ntw = skrf.Network(str(p))
+            with warnings.catch_warnings():
+                # skrf warns about unordered frequencies; the checks below say it in one line.
+                warnings.simplefilter("ignore")
+                ntw = skrf.Network(str(p))
         except Exception as e:  # skrf raises many kinds on bad files
             raise InputError(f"Touchstone file {p} cannot be read: {e}") from None
         if ntw.nports != 1:
             raise InputError(f"Touchstone file {p} has {ntw.nports} ports; a one-port .s1p is needed")
         self.path = p
         self.f = np.asarray(ntw.f, dtype=float)
-        self.z = np.asarray(ntw.z[:, 0, 0], dtype=complex)
+        s11 = np.asarray(ntw.s[:, 0, 0], dtype=complex)
         if len(self.f) < 2:
             raise InputError(f"Touchstone file {p} needs at least 2 frequencies")
+        # A sweep that is not a measurement of a passive one-port is refused
+        # whole, naming the first bad point (Touchstone 2.0 requires frequencies
+        # in increasing order; |S11| above 1 is an active load or a bad file).
+        bad = ~(np.isfinite(self.f) & np.isfinite(s11.real) & np.isfinite(s11.imag))
+        if bad.any():
+            i = int(np.argmax(bad))
+            raise InputError(f"Touchstone file {p}: point {i + 1} is not a number (NaN or infinite)")
+        if self.f[0] <= 0:
+            raise InputError(f"Touchstone file {p}: frequencies must be above 0 Hz, got {self.f[0]:g} Hz")
+        step = np.diff(self.f)
+        if np.any(step <= 0):
+            i = int(np.argmax(step <= 0)) + 1
+            raise InputError(f"Touchstone file {p}: frequencies must increase; point {i + 1} "
+                             f"({self.f[i] / 1e6:g} MHz) does not")
+        big = np.abs(s11) > 1.0 + 1e-6
+        if big.any():
+            i = int(np.argmax(big))
+            raise InputError(f"Touchstone file {p}: |S11| = {abs(s11[i]):.3f} above 1 at "
+                             f"{self.f[i] / 1e6:g} MHz: not a passive antenna")
+        self.z = np.asarray(ntw.z[:, 0, 0], dtype=complex)
 
     def impedance(self, f_hz) -> np.ndarray:
         f = np.asarray(f_hz, dtype=float)
@@ -127,6 +155,9 @@ class TouchstoneSweep:
 
     def describe(self) -> str:
         return f"Touchstone sweep {self.path.name} ({len(self.f)} points)"
+
+    def max_hz(self) -> float:
+        return float(self.f[-1])
 
 
 def write_s1p(path: str | Path, f_hz, z, z0: float = 50.0, comment: str = "") -> None:

@@ -20,6 +20,7 @@ from typing import Any
 from feedmatch.errors import InputError
 from feedmatch.logbook.logger import Logger
 from feedmatch.logbook.report import make_report, report_lines, report_plots, write_csv
+from feedmatch.outpaths import output_dir
 from feedmatch.rf.antenna import Monopole
 from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
@@ -33,16 +34,14 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
              say: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Run the demo into out_dir; say(line) narrates it (the command line passes print)."""
     t_start = time.monotonic()
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise InputError(f"--out {out} exists and is not a directory")
+    out = output_dir(out_dir, "--out")
     db = out / "station.sqlite"
     mark = out / DEMO_MARK
     if db.exists() and not mark.exists():
         # Somebody's real logbook, perhaps: the demo only ever replaces its own.
         raise InputError(f"{db} exists and was not written by the demo; nothing was changed "
                          "(choose another --out)")
-    out.mkdir(parents=True, exist_ok=True)
+    out.mkdir(exist_ok=True)
     mark.write_text("written by feedmatch demo: its logbook here is replaced on every run\n")
     for p in (db, Path(str(db) + "-wal"), Path(str(db) + "-shm")):
         p.unlink(missing_ok=True)

@@ -2,6 +2,7 @@
 # fixed set of tunes, each timed by the target's clock.  The plant (the true
 # box, its coupler and detector noise) is computed here too, but outside the
 # timed calls.  Input: tunes.json; output lines "TUNE ...", "OPS ...", "DONE".
+import gc
 import json
 import time
 
@@ -55,6 +56,7 @@ def run():
         d = complex(spec["leak"][0], spec["leak"][1])
         k = spec["gain"]
         for i, t in enumerate(spec["tunes"]):
+            gc.collect()  # as the controller does after every tune, outside the timed calls
             f_mhz = t["f"] / 1e6
             zl = complex(t["r"], t["x"])
             rng = Rng(1000 + i)
