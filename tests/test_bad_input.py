@@ -140,3 +140,15 @@ def test_the_shipped_closed_form_antenna_runs_with_the_default_sweep():
     assert "warning: sweep ends at 29.9" in r.stdout
     r = run_cli("antenna", "--antenna", ant, "--sweep", "20e6:31e6:12", timeout=60)
     assert r.returncode == 2 and "valid up to 0.45 wavelength" in r.stderr
+
+
+def test_a_band_name_that_disagrees_with_the_counted_frequency_is_reported():
+    # 40 m is 7.000-7.300 MHz in ITU Region 2 (ITU Radio Regulations, Article 5), the
+    # edges the project's band table uses.
+    from feedmatch.cli.station import _freq_disagrees
+
+    assert "outside 40m" in _freq_disagrees("40m", 7.15e6, 14.175e6)
+    assert _freq_disagrees("40m", 7.15e6, 7.04e6) == ""
+    assert "not the 7.1000 MHz" in _freq_disagrees("7.1e6", 7.1e6, 7.3e6)
+    assert _freq_disagrees("7.1e6", 7.1e6, 7.12e6) == ""        # within 1 %
+    assert _freq_disagrees(None, 0.0, 14.175e6) == ""           # nothing asked for

@@ -106,3 +106,17 @@ def test_the_report_plot_shows_tunes_that_did_not_lock(tmp_path):
     only = report_plots(str(tmp_path / "a"), locked)[0]
     both = report_plots(str(tmp_path / "b"), locked + [failed, aborted])[0]
     assert _red_pixels(only) == 0 and _red_pixels(both) > 20
+
+
+def test_the_csv_names_the_capacitor_side_as_the_tables_do(tmp_path):
+    import csv
+
+    from feedmatch.logbook.report import write_csv
+
+    rows = [dict(_row(1, 7.1e6, 100, 90), time="2026-11-01T10:00:00", board_id="hollow-oak-1", reason="",
+                 swr_before=3.0, after_bypass=0),
+            dict(_row(2, 7.1e6, 100, 90), time="2026-11-01T11:00:00", board_id="hollow-oak-1", reason="",
+                 swr_before=3.0, after_bypass=0, after_shunt=1)]
+    write_csv(str(tmp_path / "t.csv"), rows)
+    got = list(csv.DictReader(open(tmp_path / "t.csv", encoding="utf-8")))
+    assert [r["after_shunt"] for r in got] == ["tx", "ant"]

@@ -62,12 +62,14 @@ def cmd_simulate(a: argparse.Namespace) -> int:
         if a.json:
             emit_json({"ratings": rows})
         else:
-            print(f"{'band':>5} {'best SWR':>9} {'V cap pk':>9} {'I ind rms':>10}"
+            print(f"{'band':>5} {'worst SWR':>9} {'V cap pk':>9} {'I ind rms':>10}"
                   f"   at {rows[0]['power_w']:g} W")
             for r in rows:
                 flag = "" if r["matchable"] else "  (not matchable: figures at best state)"
                 print(f"{r['band']:>5} {r['worst_best_swr']:9.2f} {r['v_cap_peak_max']:8.0f}V "
                       f"{r['i_ind_rms_max']:9.2f}A{flag}")
+            print("(worst SWR: the best state's SWR at the band's hardest frequency; voltage and current:\n"
+                  " the largest over the band at the best states)")
         return 0
     if a.sweep:
         freqs = bands.parse_sweep(a.sweep)

@@ -60,6 +60,28 @@ def _mhz(f_hz) -> str:
     return f"{f_hz / 1e6:.4f} MHz" if f_hz else "no carrier counted"
 
 
+def _freq_disagrees(asked: str | None, asked_hz: float, counted_hz: float) -> str:
+    """A sentence when the frequency the board counted is not the one asked for
+    (a band name: outside the band; a frequency: more than 1 % off), else ""."""
+    from feedmatch.rf import bands
+
+    if not asked or counted_hz <= 0:
+        return ""
+    try:
+        b = bands.by_name(asked)
+    except InputError:
+        b = None
+    if b is not None:
+        if b.low_hz <= counted_hz <= b.high_hz:
+            return ""
+        return (f"the board counted {counted_hz / 1e6:.4f} MHz, outside {b.name} "
+                f"({b.low_hz / 1e6:g}-{b.high_hz / 1e6:g} MHz) that was asked for: the carrier decides")
+    if abs(counted_hz - asked_hz) <= 0.01 * asked_hz:
+        return ""
+    return (f"the board counted {counted_hz / 1e6:.4f} MHz, not the {asked_hz / 1e6:.4f} MHz asked for: "
+            "the carrier decides")
+
+
 def _swr_text(swr) -> str:
     # The board's -1 means no reading (no RF): never print it as an SWR.
     return f"{swr}" if isinstance(swr, (int, float)) and swr >= 1.0 else "-"
@@ -120,6 +142,9 @@ def cmd_tune(a) -> int:
             print(f"{rec['outcome']}: {rec['why']}; SWR {_swr_text(rec['swr_before'])} -> "
                   f"{_swr_text(rec['swr_after'])} at {_mhz(rec['freq_hz'])}, {_state_text(rec['after'], bank)}, "
                   f"{rec['n']} measurements in {rec['ms']} ms")
+        note = _freq_disagrees(a.freq, f, rec.get("freq_hz") or 0.0)
+        if note:
+            print("note: " + note)
     from fmlogic.controller import BEST, LOCKED, THROUGH
 
     return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) else 1

@@ -123,7 +123,9 @@ def write_csv(path: str, rows: list) -> None:
         w = csv.writer(f)
         w.writerow(cols)
         for r in rows:
-            w.writerow([r[c] for c in cols])
+            # The capacitor side as the tables say it (tx/ant), not the relay's 0/1.
+            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None else r[c]
+                        for c in cols])
 
 
 def report_plots(outdir: str, rows: list) -> list[Path]:
