@@ -51,9 +51,9 @@ def hard():
 
 
 def test_cold_start_on_drawn_boxes_behind_a_25_db_coupler(hard):
-    # Asserted at the level this search reaches (measured 0.99 and 0.98 on this corpus),
+    # Asserted at the level this search reaches (measured 0.98 and 1.00 on this corpus),
     # with a margin for the few loads that change with the boxes.
-    for label, floor in (("edge", 0.97), ("vert", 0.95)):
+    for label, floor in (("edge", 0.97), ("vert", 0.97)):
         rows, s = hard[label]
         assert s["matchable"] > 120, label
         assert s["success_rate"] >= floor, (label, s["success_rate"])
@@ -83,7 +83,7 @@ def test_memory_sessions_through_the_firmwares_memory():
     ok = [r for r in mem if r["oracle_swr"] <= 1.4]
     assert len(ok) > 40 and sum(r["hint"] for r in ok) > 0.7 * len(ok)
     assert sm["median_measurements"] <= 2             # the target
-    assert sm["success_rate"] >= sc["success_rate"] - 0.02
+    assert sm["success_rate"] >= sc["success_rate"]        # the target: not below the cold start
 
 
 def test_no_hint_without_memory():
