@@ -152,3 +152,30 @@ def test_a_band_name_that_disagrees_with_the_counted_frequency_is_reported():
     assert "not the 7.1000 MHz" in _freq_disagrees("7.1e6", 7.1e6, 7.3e6)
     assert _freq_disagrees("7.1e6", 7.1e6, 7.12e6) == ""        # within 1 %
     assert _freq_disagrees(None, 0.0, 14.175e6) == ""           # nothing asked for
+
+
+def test_long_jobs_say_each_stage_when_not_on_a_terminal(tmp_path):
+    r = run_cli("loads", "--verticals", "5", "--vertical-model", "closed-form", "--out", str(tmp_path / "v.csv"),
+                timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert r.stderr.splitlines() == ["feedmatch: drawing 5 vertical loads (closed-form) ...",
+                                     "feedmatch: drawing 5 vertical loads (closed-form): done"]
+
+
+def test_on_a_terminal_progress_is_a_bar():
+    import io
+
+    from feedmatch.cli.output import Progress
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    out = Tty()
+    p = Progress(out)
+    p.stage("scoring model on 10 loads")
+    for i in range(10):
+        p(i + 1, 10)
+    p.close()
+    assert "scoring model on 10 loads" in out.getvalue() and "10/10" in out.getvalue()
+    assert "feedmatch:" not in out.getvalue()   # the stage lines are for logs, not terminals

@@ -207,7 +207,10 @@ ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measur
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040")
 
 
-def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False) -> dict[str, Any]:
+def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
+              stage=None) -> dict[str, Any]:
+    """The benchmark groups --only selects; stage(label), when given, is called as
+    each group starts (the command line shows it)."""
     keys = {k.strip() for k in only.split(",") if k.strip()} if only else None
     unknown = sorted((keys or set()) - set(ONLY_NAMES))
     if unknown:
@@ -217,7 +220,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
     res: dict[str, Any] = {}
 
     def want(*names: str) -> bool:
-        return keys is None or any(n in keys for n in names)
+        hit = keys is None or any(n in keys for n in names)
+        if hit and stage is not None:
+            stage("bench " + names[0])
+        return hit
 
     if want("all_states_ms", "speedup_vs_skrf"):
         res.update(bench_all_states(10 if quick else 30))

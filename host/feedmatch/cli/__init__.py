@@ -120,9 +120,13 @@ def cmd_loads(a: argparse.Namespace) -> int:
     if a.verticals is not None:
         if not 1 <= a.verticals <= MAX_VERTICALS:
             raise InputError(f"--verticals needs a count from 1 to {MAX_VERTICALS}")
+        from feedmatch.cli.output import Progress
         from feedmatch.sim.loads import vertical_loads
 
-        loads = vertical_loads(a.verticals, seed=a.seed, model=a.vertical_model)
+        p = Progress()
+        p.stage(f"drawing {a.verticals} vertical loads ({a.vertical_model})")
+        loads = vertical_loads(a.verticals, seed=a.seed, model=a.vertical_model, progress=p)
+        p.close()
     elif a.smith is not None:
         if not 1 <= a.smith <= MAX_SMITH:
             raise InputError(f"--smith needs a count from 1 to {MAX_SMITH}")
@@ -166,8 +170,11 @@ def cmd_score(a: argparse.Namespace) -> int:
 # -- bench ---------------------------------------------------------------------------
 def cmd_bench(a: argparse.Namespace) -> int:
     from feedmatch.bench.suite import run_bench
+    from feedmatch.cli.output import Progress
 
-    res = run_bench(quick=a.quick, only=a.only, save_costs=a.save_costs)
+    p = Progress()
+    res = run_bench(quick=a.quick, only=a.only, save_costs=a.save_costs, stage=p.stage)
+    p.close()
     if a.json:
         emit_json(res)
     else:

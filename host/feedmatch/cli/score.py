@@ -18,7 +18,7 @@ from feedmatch.sim.scorer import ScoreConfig, score, summarise
 
 
 def run_score_job(a: argparse.Namespace) -> int:
-    from feedmatch.cli.output import emit_json
+    from feedmatch.cli.output import Progress, emit_json
 
     names = list(STRATEGY_NAMES) if a.strategy == "all" else [a.strategy]
     for n in names:
@@ -39,7 +39,7 @@ def run_score_job(a: argparse.Namespace) -> int:
             sys.stderr.write(f"feedmatch: skipped {b}\n")
     else:
         loads = smith_loads(2000, seed=a.seed)
-    progress = sys.stderr.isatty() and not a.json
+    progress = Progress()
     d = a.directivity
     if d is not None and not (d == d and 5.0 <= d <= 80.0):
         raise InputError(f"--directivity must be 5 to 80 dB, got {d:g}")
@@ -60,6 +60,7 @@ def run_score_job(a: argparse.Namespace) -> int:
         box_list.append((None, net, det, net))
     for name in names:
         rows: list[dict[str, Any]] = []
+        progress.stage(f"scoring {name} on {len(loads)} loads" + (f" x {a.boxes} boxes" if a.boxes else ""))
         for k, true_net, bdet, nominal in box_list:
             cfg = ScoreConfig(strategy=name, target_swr=a.target, budget=a.budget,
                               settle_ms=a.settle_ms, tune_power_w=a.power, seed=a.seed + (k or 0),
@@ -73,6 +74,7 @@ def run_score_job(a: argparse.Namespace) -> int:
         for r in rows:
             r.pop("trace", None)
         out.append({"strategy": name, "results": rows, "summary": summarise(rows, a.target)})
+    progress.close()
     if a.plots:
         from feedmatch.plots import score_plots
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -119,7 +120,8 @@ def _draw_band_freqs(rng, h: float, k: int) -> list[float]:
     return out
 
 
-def vertical_loads(n: int, seed: int = 1, model: str = "nec") -> list[Load]:
+def vertical_loads(n: int, seed: int = 1, model: str = "nec",
+                   progress: Callable[[int, int], None] | None = None) -> list[Load]:
     """n feed-point impedances of verticals 2.5-9 m tall at random frequencies in the amateur
     bands (heights up to 0.42 wavelength): the strongly reactive short-vertical loads this box
     exists for.
@@ -130,6 +132,7 @@ def vertical_loads(n: int, seed: int = 1, model: str = "nec") -> list[Load]:
     (results are cached on disk).
     model "closed-form" is the fast fallback: the induced-EMF monopole with 1-20 ohm of ground
     loss, one antenna per load.
+    progress(done, total), when given, is called after each NEC-2 antenna.
     """
     rng = np.random.default_rng(seed)
     out: list[Load] = []
@@ -150,9 +153,12 @@ def vertical_loads(n: int, seed: int = 1, model: str = "nec") -> list[Load]:
         raise InputError(f"vertical model must be 'nec' or 'closed-form', got {model!r}")
     from feedmatch.rf.nec import sweep
 
-    for desc, fs in drawn_verticals(n, rng):
+    drawn = drawn_verticals(n, rng)
+    for k, (desc, fs) in enumerate(drawn):
         z = sweep(desc, fs)
         out.extend(Load(f, zz.real, zz.imag) for f, zz in zip(fs, z))
+        if progress is not None:
+            progress(k + 1, len(drawn))
     return out
 
 

@@ -19,8 +19,8 @@ from __future__ import annotations
 import os
 import random
 import statistics
-import sys
 import time
+from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
@@ -168,7 +168,7 @@ def _worker(args):
 
 def score(loads: list[Load], true_net: Network, nominal: Network, cfg: ScoreConfig,
           det: DetectorModel | None = None, workers: int | None = None,
-          progress: bool = False) -> list[dict[str, Any]]:
+          progress: Callable[[int, int], None] | None = None) -> list[dict[str, Any]]:
     """Score every load; seeds derive from cfg.seed and the load's index.
 
     With cfg.memory the loads are one session, tuned in order in one process."""
@@ -179,10 +179,8 @@ def score(loads: list[Load], true_net: Network, nominal: Network, cfg: ScoreConf
         mem = new_memory() if cfg.memory else None
         for i, (ld, sd) in enumerate(zip(loads, seeds)):
             out.append(score_one(ld, true_net, nominal, cfg, sd, det, mem))
-            if progress and (i % 20 == 0 or i == len(loads) - 1):
-                _bar(i + 1, len(loads))
-        if progress:
-            sys.stderr.write("\n")
+            if progress is not None and (i % 20 == 0 or i == len(loads) - 1):
+                progress(i + 1, len(loads))
         return out
     chunks = max(workers * 8, 1)
     size = (len(loads) + chunks - 1) // chunks
@@ -192,10 +190,8 @@ def score(loads: list[Load], true_net: Network, nominal: Network, cfg: ScoreConf
     with ProcessPoolExecutor(max_workers=workers) as ex:
         for k, part in enumerate(ex.map(_worker, jobs)):
             out.extend(part)
-            if progress:
-                _bar(k + 1, len(jobs))
-    if progress:
-        sys.stderr.write("\n")
+            if progress is not None:
+                progress(k + 1, len(jobs))
     return out
 
 
@@ -208,13 +204,6 @@ def run_parallel(jobs: list[tuple], workers: int = 2) -> list[list[dict[str, Any
         return [_worker(a) for a in args]
     with ProcessPoolExecutor(max_workers=workers) as ex:
         return list(ex.map(_worker, args))
-
-
-def _bar(i: int, n: int) -> None:
-    w = 30
-    k = int(w * i / max(n, 1))
-    sys.stderr.write(f"\r[{'#' * k}{'.' * (w - k)}] {i}/{n}")
-    sys.stderr.flush()
 
 
 def summarise(results: list[dict[str, Any]], target_swr: float,
