@@ -50,7 +50,6 @@ _PROBE_BELOW = 0.7
 # consistent; half as many when no reading came near a match (above _HIT): a
 # descent from there cannot beat bypass with confidence in a few readings.
 _HOPELESS_EXTRA = const(10)
-_DESCEND = 1
 # How far a stored lock's reading may come back above the accept level (noise).
 _REPEAT = 0.02
 # A hunt probe aims two hyperbolic units short of its hypothesis: a reading
@@ -796,8 +795,7 @@ class ModelFit(Strategy):
                     # Still above the accept level where the model sees nothing
                     # better: the model is off here (tolerances, the coupler),
                     # so the readings alone decide: a descent on the codes.
-                    if _DESCEND:
-                        yield from self._descend(self.best_state, (2, 1))
+                    yield from self._descend(self.best_state, (2, 1))
                     return
                 # Stuck above target: the other places the readings allow.
                 tried_wide = True
