@@ -356,6 +356,14 @@ def test_operator_bypass_sticks_until_a_tune_is_asked_for(tmp_path):
     b.inbox += link.encode("Q", 3, "bypass", {"on": True})
     run(ctl, 50)
     assert m.relays[3] == 1 and ctl.state == "through"  # no automatic retune undoes it
+    assert ctl.why == "bypass by host"
+    b.inbox += link.encode("Q", 5, "bypass", {"on": False})
+    run(ctl, 5)
+    # Back in line with the carrier still keyed: the status says what was done, not "bypass".
+    assert m.relays[3] == 0 and ctl.why == "back in line by host"
+    b.inbox += link.encode("Q", 6, "bypass", {"on": True})
+    run(ctl, 5)
+    assert m.relays[3] == 1
     b.inbox += link.encode("Q", 4, "tune", {})
     assert run(ctl, until=lambda c: c.state == LOCKED)
     assert m.relays[3] == 0 and m.violations == []

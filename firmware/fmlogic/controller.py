@@ -400,7 +400,7 @@ class Controller:
             self.mem.set_last(self.freq, self.relays, on)
             self.mem.flush()
             self.manual = on
-            self._set_state(THROUGH if on else WAIT_RF, "bypass by host")
+            self._set_state(THROUGH if on else WAIT_RF, "bypass by host" if on else "back in line by host")
             return True, {"relays": self._state_list()}
         if word == "mem-list":
             start = a.get("start", 0)
