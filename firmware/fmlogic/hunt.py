@@ -334,17 +334,13 @@ class Hunt:
         the uncertainty sigma of m."""
         co = self.co
         p = a * complex(b.real, -b.imag)
-        # q12 written out: a call per value costs more than the update itself.
-        ar = a.real
-        ai = a.imag
-        br = b.real
-        bi = b.imag
-        cr = c.real
-        ci = c.imag
-        for j, x in ((0, ar * ar + ai * ai), (1, p.real), (2, p.imag), (3, br * br + bi * bi),
-                     (4, cr * cr + ci * ci), (5, cr), (6, ci)):
-            v = int(x * 4096.0 + (0.5 if x >= 0.0 else -0.5))
-            co[j] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        co[0] = q12(a.real * a.real + a.imag * a.imag)
+        co[1] = q12(p.real)
+        co[2] = q12(p.imag)
+        co[3] = q12(b.real * b.real + b.imag * b.imag)
+        co[4] = q12(c.real * c.real + c.imag * c.imag)
+        co[5] = q12(c.real)
+        co[6] = q12(c.imag)
         s2 = 2.0 * m * sigma + sigma * sigma  # sigma of |gamma|^2
         inv = int(16.0 * ONE / (s2 * ONE) + 0.5)
         if inv > 60000:
