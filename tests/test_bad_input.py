@@ -30,6 +30,14 @@ CASES = [
     (["simulate", "--freq", "7.1e6", "--load", "1e-300", "--best"], "resistance of 0.01 ohm to 1 Mohm"),
     (["virtual-board", "--carrier", "nan@20m"], "--carrier needs a power of 0 to 2000 W"),
     (["score", "--strategy", "model", "--directivity", "1"], "--directivity must be 5 to 80 dB"),
+    (["score", "--power", "0"], "--power: needs a power above 0"),
+    (["score", "--power", "-3"], "--power: needs a power above 0"),
+    (["score", "--settle-ms", "nan"], "--settle-ms"),
+    (["score", "--workers", "0"], "--workers"),
+    (["score", "--fitted"], "--fitted needs --boxes"),
+    (["simulate", "--freq", "7e6", "--load", "50", "--best", "--power", "nan"], "--power: needs a power above 0"),
+    (["calibrate", "--config", "x.json"], "give --port"),
+    (["calibrate", "--rehearse", "--port", "/dev/null"], "leave out --port"),
 ]
 
 
@@ -108,6 +116,13 @@ PATH_CASES = [
     (None, None, ["report", "--db", "{d}/afile", "--plots", "{d}/afile"], "exists and is not a directory"),
     (None, None, ["demo", "--out", "{d}/no/such/out"], "does not exist"),
     (None, None, ["virtual-board", "--dir", "{d}/afile"], "exists and is not a directory"),
+    (None, None, ["report", "--db", "{d}"], "is not a file"),
+    (None, None, ["fit-box", "--db", "{d}"], "is not a file"),
+    (None, None, ["log", "--port", "/dev/null", "--db", "{d}"], "is not a file"),
+    ("empty.sqlite", "", ["report", "--db", "{f}"], "is not an SQLite logbook"),
+    ("empty.sqlite", "", ["fit-box", "--db", "{f}"], "is not an SQLite logbook"),
+    ("notes.sqlite", "my QSOs\n", ["log", "--port", "/dev/null", "--db", "{f}"], "is not an SQLite logbook"),
+    (None, None, ["report", "--db", "{d}/afile", "--plots", "{d}/no/such"], "does not exist"),
 ]
 
 

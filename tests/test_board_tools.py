@@ -154,12 +154,21 @@ def test_calibration_against_the_virtual_station(tmp_path):
     import io
 
     out = io.StringIO()
+    from feedmatch.board.link import BoardLink
+
     try:
         time.sleep(1.0)
+        with BoardLink(pty) as ln:  # the box in line, as an operator would have it
+            ln.request("bypass", {"on": False})
         run_calibrate(A, io.StringIO(), out, on_prompt=lambda p: (vs.key(p, 14.2e6), time.sleep(0.2)))
+        with BoardLink(pty) as ln:
+            relays = ln.request("status")["relays"]
     finally:
         vs.key(0)
         vs.stop()
+    # Calibration runs in bypass and puts the box back in line once the carrier is gone.
+    assert relays[3] == 0 and "the box is back in line" in out.getvalue()
+    assert vs.model.violations == []
     assert (tmp_path / "cfg.json.bak").read_text() == old
     cfg = json.loads(cfgp.read_text())
     from fmlogic.swr import Calibration
@@ -221,6 +230,33 @@ def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
         assert abs(copied.watts(c) / p - 1) > 0.15  # what the forward table alone would read
     d = float(text.rsplit("effective directivity ", 1)[1].split(" dB")[0])
     assert d == pytest.approx(det.directivity_db(14.2e6), abs=2.5)  # same coupler, other direction
+
+
+@pytest.mark.parametrize("typed,ok", [
+    ("", 10.0), ("9.6", 9.6), ("nan", None), ("-5", None), ("0", None), ("1e9", None), ("ten", None),
+    ("inf", None),
+])
+def test_wattmeter_readings_are_checked(typed, ok):
+    # Entered with 10 W asked: Enter takes 10 W; what no wattmeter reads stops the run.
+    from feedmatch.cli.calibrate import _watts
+    from feedmatch.errors import InputError
+
+    if ok is None:
+        with pytest.raises(InputError, match="calibration stopped, the config is unchanged"):
+            _watts(typed + "\n", 10.0)
+    else:
+        assert _watts(typed + "\n", 10.0) == ok
+
+
+def test_calibration_can_be_rehearsed_on_the_virtual_board(tmp_path):
+    from .conftest import run_cli
+
+    cfg = tmp_path / "cfg.json"
+    cfg.write_text((deploy.CONFIGS / "rp2040.json").read_text())
+    r = run_cli("calibrate", "--rehearse", "--yes", "--powers", "2,10,50", "--config", str(cfg), timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert "rehearsal: virtual board" in r.stdout and "wrote 3 forward" in r.stdout
+    assert len(json.loads(cfg.read_text())["detector"]["fwd"]) == 3
 
 
 def test_calibration_rejects_a_non_monotonic_detector():

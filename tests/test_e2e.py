@@ -200,14 +200,53 @@ def test_operator_commands_over_the_pty(tmp_path):
         # The carrier is on: the bypass relay may not move (below the hot limit it may).
         r = run_cli("bypass", "--port", pty)
         assert r.returncode == 0 and "through" in r.stdout
-        r = run_cli("memory", "--port", pty, "--clear")
-        assert r.returncode == 0
+        # The logger with --json: one JSON object when it stops (SIGTERM like a service
+        # manager), and the board's element values kept so report speaks uH and pF.
+        db = tmp_path / "station.sqlite"
+        lg = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(db), "--json"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        def logged():
+            try:
+                return db.exists() and len(_rows(str(db))) >= 1
+            except sqlite3.Error:
+                return False  # the logger is creating it
+        assert _wait(logged, 20)
+        lg.send_signal(signal.SIGTERM)
+        out, err = lg.communicate(timeout=20)
+        assert lg.returncode == 0, err
+        summary = json.loads(out)
+        assert summary["added"] == len(_rows(str(db))) >= 1 and summary["db"] == str(db), summary
+        r = run_cli("report", "--db", str(db), "--json")
+        vals = json.loads(r.stdout)["bands"][0]["most_used_values"]
+        assert vals is not None and vals["l_uh"] > 0 and vals["c_pf"] > 0
+        r = run_cli("memory", "--port", pty, "--clear", "--json")
+        assert r.returncode == 0 and json.loads(r.stdout) == {"cleared": True}
         r = run_cli("memory", "--port", pty, "--json")
         assert json.loads(r.stdout)["entries"] == []
     finally:
+        if lg is not None and lg.poll() is None:
+            lg.kill()
         p.send_signal(signal.SIGINT)
         p.wait(10)
     assert p.returncode == 0
+
+
+def test_the_firmware_dies_with_a_killed_virtual_board(tmp_path):
+    # SIGKILL leaves the host no chance to clean up: the kernel must end the child
+    # (the firmware under MicroPython) so no orphan keeps the port and the flash.
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--dir", str(tmp_path / "flash")],
+                         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    pty = p.stdout.readline().strip()
+    assert pty.startswith("/dev/")
+    kids = [int(x) for x in Path(f"/proc/{p.pid}/task/{p.pid}/children").read_text().split()]
+    assert kids, "the virtual board runs its firmware as a child process"
+    p.send_signal(signal.SIGKILL)
+    p.wait(10)
+
+    def gone(pid):
+        st = Path(f"/proc/{pid}/status")
+        return not st.exists() or "zombie" in st.read_text().lower()
+    assert _wait(lambda: all(gone(k) for k in kids), 10), "the firmware outlived its host"
 
 
 def test_bad_ports_logbooks_and_station_files(tmp_path):

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import pytest
 from feedmatch.logbook.report import band_table, health
 
 
@@ -120,3 +121,59 @@ def test_the_csv_names_the_capacitor_side_as_the_tables_do(tmp_path):
     write_csv(str(tmp_path / "t.csv"), rows)
     got = list(csv.DictReader(open(tmp_path / "t.csv", encoding="utf-8")))
     assert [r["after_shunt"] for r in got] == ["tx", "ant"]
+
+
+def _shipped_bank():
+    from feedmatch.rf.network import load_network
+    from fmlogic import lnet
+
+    net = load_network(None)
+    return lnet.Bank(net.z0_ohm, net.inductors_uh, net.capacitors_pf)
+
+
+def test_a_moved_state_is_told_in_microhenries_and_picofarads():
+    # The shipped bank's binary weighting: L code 101 = 64+32+4+1 steps and 111 =
+    # 64+32+8+4+2+1 steps of its smallest inductor (arithmetic of the bank, no model).
+    bank = _shipped_bank()
+    step = bank.lv[1]
+    shifted = [_row(i, 7.15e6, 101 if i < 4 else 111, 91) for i in range(8)]
+    note = health(shifted, bank=bank)["note"]
+    assert f"matched L moved {101 * step:.2f} -> {111 * step:.2f} uH (code 101 -> 111)" in note
+
+
+def test_the_logbook_keeps_the_board_values_for_the_report(tmp_path):
+    from feedmatch.logbook.report import make_report
+    from feedmatch.logbook.store import Logbook
+    from feedmatch.rf.network import load_network
+
+    bank = _shipped_bank()
+    shipped = load_network(None)
+    db = tmp_path / "station.sqlite"
+    book = Logbook(db)
+    book.start_session("hollow-oak-1", "/dev/null")
+    net = {"z0_ohm": shipped.z0_ohm, "inductors_uh": shipped.inductors_uh, "capacitors_pf": shipped.capacitors_pf}
+    # A learned correction (fit-box): the inductors 10 % high.
+    corr = {"inductors_uh": [1.1 * v for v in net["inductors_uh"]], "capacitors_pf": net["capacitors_pf"]}
+    book.set_bank("hollow-oak-1", {"network": net, "correction": corr})
+    for i in range(8):
+        book.add({"board_id": "hollow-oak-1", "seq": i + 1, "freq_hz": 7.15e6, "swr_before": 3.0,
+                  "swr_after": 1.2, "outcome": "locked", "n": 1, "ms": 6, "after": [101, 91, 0, 0]})
+    book.close()
+    b = make_report(str(db))["bands"][0]
+    # Code 101 with the corrected values: 1.1 x the nominal sum (see above).
+    assert b["most_used_values"]["l_uh"] == pytest.approx(1.1 * 101 * bank.lv[1], rel=1e-6)
+    assert b["most_used_values"]["c_pf"] == pytest.approx(91 * bank.cv[1], rel=1e-6)
+
+
+@pytest.mark.parametrize("mhz,band", [
+    (5.3305, "60m"),   # US channel 1 (from memory)
+    (5.2585, "60m"),   # the lowest UK allocation edge (from memory)
+    (5.4035, "60m"),   # US channel 5 (from memory)
+    (5.3600, "60m"),   # inside the WRC-15 allocation, ITU RR 5.133B
+    (5.5000, "out"),
+    (5.1000, "out"),
+])
+def test_national_60m_channels_count_as_60m(mhz, band):
+    from feedmatch.rf.bands import band_of
+
+    assert band_of(mhz * 1e6) == band

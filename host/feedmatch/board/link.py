@@ -196,6 +196,19 @@ class BoardLink:
                 break
         return out
 
+    def element_sections(self) -> dict[str, Any] | None:
+        """The board's element values as its config holds them: {"network": ...,
+        and "correction": ... when it has learned one}; None when it does not say."""
+        try:
+            m = {"network": self.request("cfg-get", {"section": "network"})["value"]}
+        except (BoardRefused, KeyError, TypeError):
+            return None
+        try:
+            m["correction"] = self.request("cfg-get", {"section": "correction"})["value"]
+        except (BoardRefused, KeyError, TypeError):
+            pass  # no learned values: the nominal ones
+        return m
+
     def wait_event(self, word: str, pred: Callable[[dict], bool] = lambda o: True,
                    timeout: float = 10.0) -> dict[str, Any] | None:
         deadline = time.monotonic() + timeout

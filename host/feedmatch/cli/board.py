@@ -99,7 +99,47 @@ def cmd_deploy(a: argparse.Namespace) -> int:
 def cmd_calibrate(a: argparse.Namespace) -> int:
     from feedmatch.cli.calibrate import run_calibrate
 
+    if a.rehearse:
+        return _rehearse_calibration(a)
+    if not a.port:
+        raise InputError("give --port (the board's serial port), or --rehearse to practise on the virtual board")
+    if not a.config:
+        raise InputError("give --config: the board config JSON the calibration goes into")
     return run_calibrate(a, sys.stdin, sys.stdout)
+
+
+def _rehearse_calibration(a: argparse.Namespace) -> int:
+    """The calibration dialogue against the virtual station with a 50 ohm dummy
+    load: each power is keyed for you at 14.2 MHz when it is asked for.  The
+    result goes into --config if given, else into a scratch copy of the
+    station's board config (its path is printed); nothing real is touched."""
+    import json
+    import time
+
+    from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.rf.antenna import FixedLoad
+    from feedmatch.sim.station import load_station
+    from feedmatch.sim.virtual import VirtualStation
+
+    if a.port:
+        raise InputError("--rehearse runs its own virtual board; leave out --port")
+    st = load_station(a.station)
+    st.antenna = FixedLoad(50.0, 0.0)  # the dummy load on the antenna port
+    work = Path(tempfile.mkdtemp(prefix="feedmatch-rehearsal-"))
+    if not a.config:
+        a.config = str(work / "board_config.json")
+        Path(a.config).write_text(json.dumps(st.board_config, indent=2))
+    vs = VirtualStation(st, work / "flash")
+    a.port = vs.start()
+    print(f"rehearsal: virtual board on {a.port}, dummy load on the antenna port; each power is keyed "
+          "for you at 14.2 MHz")
+    try:
+        time.sleep(1.0)  # the firmware boots
+        return run_calibrate(a, sys.stdin, sys.stdout, on_prompt=lambda p: (vs.key(p, 14.2e6), time.sleep(0.2)))
+    finally:
+        vs.key(0)
+        vs.stop()
+        print(f"rehearsal config: {a.config}")
 
 
 def add_board_commands(sub) -> None:
@@ -120,11 +160,14 @@ def add_board_commands(sub) -> None:
     s.set_defaults(fn=cmd_deploy)
 
     s = sub.add_parser("calibrate", help="guided detector calibration into a dummy load")
-    s.add_argument("--port", required=True)
+    s.add_argument("--port", help="the board's serial port")
     s.add_argument("--baud", type=int, default=115200)
     s.add_argument("--timeout", type=float, default=2.0)
     s.add_argument("--powers", default="1,2,5,10,25,50,100", help="transmit powers to step through, W")
-    s.add_argument("--config", required=True, help="board config JSON to update (a backup is kept)")
+    s.add_argument("--config", help="board config JSON to update (a backup is kept)")
+    s.add_argument("--rehearse", action="store_true",
+                   help="practise on the virtual board with a dummy load (no --port; nothing real changes)")
+    s.add_argument("--station", help="with --rehearse: station JSON (default: the built-in demo station)")
     s.add_argument("--samples", type=int, default=16)
     s.add_argument("--yes", action="store_true", help="take each power as confirmed (scripts and tests)")
     s.add_argument("--reflected", action="store_true",

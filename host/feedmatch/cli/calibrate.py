@@ -6,12 +6,13 @@ from __future__ import annotations
 
 import argparse
 import math
+import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import TextIO
 
 from feedmatch.board.calibrate import fit_table, leak_for_config, residual_directivity
-from feedmatch.errors import InputError, LinkError
+from feedmatch.errors import BoardRefused, InputError, LinkError
 from feedmatch.jsonfile import load_json, write_json_with_backup
 
 
@@ -28,6 +29,63 @@ def _watts(line: str, asked: float) -> float:
         raise InputError(f"{text} W is not a plausible reading for {asked:g} W keyed; calibration stopped, "
                          "the config is unchanged")
     return w
+
+
+def _read_points(a: argparse.Namespace, ln, powers: list[float], main: str, leak: str, reflected: bool,
+                 points: list, leaks: list, inp: TextIO, out: TextIO,
+                 on_prompt: Callable[[float], None] | None) -> None:
+    """Prompt for each power and read both detectors (counts) with it keyed."""
+    for p in powers:
+        if on_prompt:
+            on_prompt(p)
+        if a.yes:
+            watts = p
+            print(f"{p:g} W keyed (taken as confirmed)", file=out)
+        else:
+            out.write(f"Key {p:g} W; type what your wattmeter reads (Enter = {p:g}): ")
+            out.flush()
+            line = inp.readline()
+            if not line:
+                raise InputError("calibration stopped: no answer")
+            watts = _watts(line, p)
+        r = ln.request("cal-read", {"n": max(1, min(64, a.samples))})
+        if r[main] <= 0:
+            what = "reflected" if reflected else "forward"
+            hint = " Is the box reversed?" if reflected else ""
+            raise LinkError(f"no {what} reading at {watts:g} W: is the carrier keyed?{hint}")
+        points.append((float(r[main]), watts))
+        leaks.append((float(r[leak]), watts))
+        print(f"  {watts:7.2f} W: forward {r['fwd_counts']:8.1f} counts, reflected "
+              f"{r['ref_counts']:6.1f} counts", file=out)
+
+
+def _restore(ln, was_bypassed: bool, out: TextIO, unkey: Callable[[float], None] | None,
+             wait_s: float = 20.0) -> None:
+    """Put the box back as calibrate found it, or say why it stays in bypass.
+    The relays move only with the carrier gone (the board refuses under power),
+    so the operator is asked to unkey and the board is asked again until then."""
+    if was_bypassed:
+        print("the box stays in bypass, as it was before calibration", file=out)
+        return
+    print("Unkey the transmitter: the box goes back in line when the carrier is gone.", file=out)
+    if unkey:
+        unkey(0.0)
+    deadline = time.monotonic() + wait_s
+    while True:
+        try:
+            ln.request("bypass", {"on": False})
+            print("the box is back in line (calibration ran in bypass)", file=out)
+            return
+        except BoardRefused as e:
+            if e.why != "hot" or time.monotonic() > deadline:
+                why = "the carrier is still keyed" if e.why == "hot" else str(e)
+                print(f"the box is left in BYPASS ({why}); `feedmatch bypass --off` puts it back in line",
+                      file=out)
+                return
+            time.sleep(0.5)
+        except LinkError as e:
+            print(f"the box is left in BYPASS ({e}); `feedmatch bypass --off` puts it back in line", file=out)
+            return
 
 
 def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
@@ -59,29 +117,14 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
     points = []
     leaks = []
     with BoardLink(a.port, a.baud, timeout=a.timeout) as ln:
+        # Calibrate through the bypass (the network would add its own loss), and
+        # leave the box as it was found, saying so, whatever happens.
+        was_bypassed = bool((ln.request("status").get("relays") or [0, 0, 0, 0])[3])
         ln.request("bypass", {"on": True})
-        for p in powers:
-            if on_prompt:
-                on_prompt(p)
-            if a.yes:
-                watts = p
-                print(f"{p:g} W keyed (taken as confirmed)", file=out)
-            else:
-                out.write(f"Key {p:g} W; type what your wattmeter reads (Enter = {p:g}): ")
-                out.flush()
-                line = inp.readline()
-                if not line:
-                    raise InputError("calibration stopped: no answer")
-                watts = _watts(line, p)
-            r = ln.request("cal-read", {"n": max(1, min(64, a.samples))})
-            if r[main] <= 0:
-                what = "reflected" if reflected else "forward"
-                hint = " Is the box reversed?" if reflected else ""
-                raise LinkError(f"no {what} reading at {watts:g} W: is the carrier keyed?{hint}")
-            points.append((float(r[main]), watts))
-            leaks.append((float(r[leak]), watts))
-            print(f"  {watts:7.2f} W: forward {r['fwd_counts']:8.1f} counts, reflected "
-                  f"{r['ref_counts']:6.1f} counts", file=out)
+        try:
+            _read_points(a, ln, powers, main, leak, reflected, points, leaks, inp, out, on_prompt)
+        finally:
+            _restore(ln, was_bypassed, out, on_prompt)
     table = fit_table(points, "reflected" if reflected else "forward")
     floor = float(det_cfg.get("floor_counts", 2.0))
     # The leakage at the highest power, read through the other detector's curve.

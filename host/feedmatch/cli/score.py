@@ -30,6 +30,12 @@ def run_score_job(a: argparse.Namespace) -> int:
         raise InputError("--budget must be at least 1")
     if a.boxes < 0 or not 0 <= a.tolerance < 0.3:
         raise InputError("--boxes must be >= 0 and --tolerance in 0..0.3")
+    if a.fitted and not a.boxes:
+        raise InputError("--fitted needs --boxes N: it gives each drawn box its fitted element values")
+    if not (a.settle_ms == a.settle_ms and 0.0 <= a.settle_ms <= 1000.0):
+        raise InputError(f"--settle-ms must be 0 to 1000 ms (relay settling time), got {a.settle_ms:g}")
+    if a.workers is not None and not 1 <= a.workers <= 256:
+        raise InputError(f"--workers must be 1 to 256 processes, got {a.workers}")
     if a.plots:
         output_dir(a.plots, "--plots")
     net = load_network(a.network)

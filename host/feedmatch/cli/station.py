@@ -45,14 +45,10 @@ def _board_bank(ln):
     None when the board does not say: codes are then printed alone."""
     from fmlogic.config import bank_from
 
+    m = ln.element_sections()
     try:
-        m = {"network": ln.request("cfg-get", {"section": "network"})["value"]}
-        try:
-            m["correction"] = ln.request("cfg-get", {"section": "correction"})["value"]
-        except BoardRefused:
-            pass  # no learned values: the nominal ones
-        return bank_from(m)
-    except (BoardRefused, KeyError, TypeError, ValueError):
+        return bank_from(m) if m else None
+    except (KeyError, TypeError, ValueError):
         return None
 
 
@@ -72,7 +68,7 @@ def _freq_disagrees(asked: str | None, asked_hz: float, counted_hz: float) -> st
     except InputError:
         b = None
     if b is not None:
-        if b.low_hz <= counted_hz <= b.high_hz:
+        if b.holds(counted_hz):
             return ""
         return (f"the board counted {counted_hz / 1e6:.4f} MHz, outside {b.name} "
                 f"({b.low_hz / 1e6:g}-{b.high_hz / 1e6:g} MHz) that was asked for: the carrier decides")
@@ -201,8 +197,10 @@ def cmd_log(a) -> int:
     from feedmatch.logbook.store import Logbook
 
     if Path(a.db).exists():
+        if not Path(a.db).is_file():
+            raise InputError(f"logbook {a.db} is not a file")
         Logbook(a.db).close()  # refuse a non-SQLite file before touching the port
-    lg = Logger(a.port, a.db, a.baud, out=sys.stdout if sys.stdout.isatty() else None)
+    lg = Logger(a.port, a.db, a.baud, out=sys.stdout if sys.stdout.isatty() and not a.json else None)
 
     def _term(_sig, _frame):
         raise KeyboardInterrupt  # SIGTERM ends the session as cleanly as Ctrl-C
@@ -212,6 +210,12 @@ def cmd_log(a) -> int:
         lg.run(first_connect_s=5.0)
     except KeyboardInterrupt:
         pass
+    if a.json:
+        from feedmatch.cli.output import emit_json
+
+        emit_json({"db": a.db, "added": lg.added, "board": lg.board_id, "bad_frames": lg.corrupt,
+                   "notices": lg.notices})
+        return 0
     print(f"\nlogged {lg.added} new records into {a.db}")
     for note in lg.notices:
         print("note: " + note)

@@ -84,6 +84,9 @@ class Logger:
                     self.out.write("\n" + self.notices[-1] + "\n")
             self.board_id = bid
             self.book.start_session(bid, self.port)
+            sections = self.link.element_sections()
+            if sections:
+                self.book.set_bank(bid, sections)
         have = self.book.seqs(self.board_id)
         board_last = int(self.status.get("seq", 0))
         if board_last < self._floor:

@@ -26,7 +26,30 @@ def _median(xs: list[float]) -> float | None:
     return statistics.median(xs) if xs else None
 
 
-def band_table(rows: list) -> list[dict[str, Any]]:
+def _banks(sections: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """{board key: firmware Bank} from the config sections the logbook kept."""
+    from fmlogic.config import bank_from
+
+    out = {}
+    for key, m in sections.items():
+        try:
+            out[key] = bank_from(m)
+        except (KeyError, TypeError, ValueError):
+            continue  # an unusable entry: that board's codes are shown alone
+    return out
+
+
+def _value(bank: Any, name: str, code: float) -> float | None:
+    """The element value a (median) code stands for: uH for L, pF for C."""
+    if bank is None:
+        return None
+    i = int(round(code))
+    if name == "L":
+        return bank.lv[i] if 0 <= i <= bank.l_max else None
+    return bank.cv[i] if 0 <= i <= bank.c_max else None
+
+
+def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str, Any]]:
     by = defaultdict(list)
     for r in rows:
         by[r["band"]].append(r)
@@ -38,6 +61,11 @@ def band_table(rows: list) -> list[dict[str, Any]]:
         tuned = [r for r in rs if r["outcome"] not in ("refused",)]
         states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
         top = states.most_common(1)[0][0] if states else None
+        bank = banks.get(ok[-1]["board_id"]) if banks and ok else None
+        vals = None
+        if top and bank is not None:
+            lv, cv = _value(bank, "L", top[0]), _value(bank, "C", top[1])
+            vals = {"l_uh": round(lv, 4), "c_pf": round(cv, 2)} if lv is not None and cv is not None else None
         out.append({
             "band": name, "tunes": len(rs),
             "success_rate": len(ok) / len(tuned) if tuned else None,
@@ -45,17 +73,19 @@ def band_table(rows: list) -> list[dict[str, Any]]:
             "median_tune_ms": _median([r["duration_ms"] for r in tuned if r["duration_ms"] is not None]),
             "median_measurements": _median([r["measurements"] for r in tuned if r["measurements"]]),
             "most_used_state": ([top[0], top[1], "tx" if top[2] == 0 else "ant"] if top else None),
+            "most_used_values": vals,
             "memory_hit_rate": (sum(1 for r in tuned if r["memory_hit"]) / len(tuned)) if tuned else None,
-            "health": health(ok),
+            "health": health(ok, bank=bank),
         })
     return out
 
 
-def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"]) -> dict[str, Any]:
+def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"], bank: Any = None) -> dict[str, Any]:
     """Compare a band's recent matched tunes with its own baseline (its earlier ones).
 
     Like is compared with like: tunes are grouped by frequency bin, and in each bin
-    with enough tunes the later half is compared with the earlier half.
+    with enough tunes the later half is compared with the earlier half.  With the
+    board's bank (a firmware Bank) a moved state is told in uH and pF.
     """
     if len(ok) < MIN_TUNES_FOR_HEALTH:
         return {"flag": False, "note": "too few tunes for a baseline"}
@@ -80,7 +110,13 @@ def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"]) -> dict[str, 
             a = _median([r[key] for r in base]) or 0
             c = _median([r[key] for r in recent]) or 0
             if abs(c - a) > max(3.0, STATE_DRIFT_FRACTION * max(a, c)):
-                notes.append(f"{mhz:.3f} MHz: matched {name} code moved {a:.0f} -> {c:.0f}")
+                va, vc = _value(bank, name, a), _value(bank, name, c)
+                if va is not None and vc is not None:
+                    unit, fmt = ("uH", ".2f") if name == "L" else ("pF", ".0f")
+                    notes.append(f"{mhz:.3f} MHz: matched {name} moved {va:{fmt}} -> {vc:{fmt}} {unit} "
+                                 f"(code {a:.0f} -> {c:.0f})")
+                else:
+                    notes.append(f"{mhz:.3f} MHz: matched {name} code moved {a:.0f} -> {c:.0f}")
     if not compared:
         return {"flag": False, "note": "too few tunes per frequency for a baseline"}
     return {"flag": bool(notes), "note": "; ".join(notes) or "steady"}
@@ -89,8 +125,9 @@ def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"]) -> dict[str, 
 def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     book = open_existing(db)
     rows = book.tunes(since)
+    banks = _banks(book.banks())
     book.close()
-    return {"tunes": len(rows), "bands": band_table(rows), "rows": rows,
+    return {"tunes": len(rows), "bands": band_table(rows, banks), "rows": rows,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 
@@ -99,19 +136,22 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
     out = [f"{rep['tunes']} tunes logged" + (f", {rep['first'][:19]} .. {rep['last'][:19]} UTC"
                                              if rep["tunes"] else "")]
     out.append(f"{'band':>5} {'tunes':>5} {'locked':>7} {'SWR':>5} {'ms':>5} {'meas':>5} {'memory':>7}"
-          f"  {'usual state':<14} health")
+          f"  {'usual state':<26} health")
     for b in rep["bands"]:
         def pct(x):
             return f"{100 * x:6.0f}%" if x is not None else "     -"
         st = b["most_used_state"]
         sts = f"L{st[0]} C{st[1]} {st[2]}" if st else "-"
+        v = b.get("most_used_values")
+        if v:
+            sts += f" {v['l_uh']:.2f}uH {v['c_pf']:.0f}pF"
         swr = f"{b['median_swr_after']:5.2f}" if b["median_swr_after"] is not None else "    -"
         ms = f"{b['median_tune_ms']:5.0f}" if b["median_tune_ms"] is not None else "    -"
         meas = f"{b['median_measurements']:5.0f}" if b["median_measurements"] is not None else "    -"
         h = b["health"]
         flag = ("CHECK: " + h["note"]) if h["flag"] else h["note"]
         out.append(f"{b['band']:>5} {b['tunes']:5d} {pct(b['success_rate'])} {swr} {ms} {meas} "
-                   f"{pct(b['memory_hit_rate'])}  {sts:<14} {flag}")
+                   f"{pct(b['memory_hit_rate'])}  {sts:<26} {flag}")
     return out
 
 

@@ -17,7 +17,9 @@ from typing import Any
 from feedmatch.errors import InputError
 from feedmatch.rf import bands
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
+# The oldest schema report and fit-box read as it is (what it lacks is left out).
+READABLE_FROM = 2
 
 _MIGRATIONS = {
     1: [
@@ -38,6 +40,12 @@ _MIGRATIONS = {
         "ALTER TABLE tunes ADD COLUMN memory_hit INTEGER NOT NULL DEFAULT 0",
         "ALTER TABLE tunes ADD COLUMN strategy TEXT",
         "ALTER TABLE tunes ADD COLUMN raw TEXT",
+    ],
+    # The element values a board said it has (nominal and learned), kept so the
+    # report can speak uH and pF: codes alone mean nothing to the builder.
+    3: [
+        "CREATE TABLE banks (board INTEGER PRIMARY KEY REFERENCES boards(id), seen TEXT NOT NULL,"
+        " bank TEXT NOT NULL)",
     ],
 }
 
@@ -110,6 +118,13 @@ class Logbook:
                               (b, _now(), port, socket.gethostname()))
         self.session = cur.lastrowid
         return self.session
+
+    def set_bank(self, board_id: str, bank: dict[str, Any]) -> None:
+        """Keep the element values the board reported (its "network" and any
+        "correction" config sections); the latest report wins."""
+        b = self.board(board_id)
+        self.db.execute("INSERT INTO banks (board, seen, bank) VALUES (?, ?, ?) ON CONFLICT(board) DO UPDATE "
+                        "SET seen=excluded.seen, bank=excluded.bank", (b, _now(), json.dumps(bank, sort_keys=True)))
 
     def other_identities(self, key: str) -> list[str]:
         """Keys already in the logbook with the same configured id but another identity."""
@@ -189,15 +204,32 @@ class LogbookReader:
         if v > SCHEMA_VERSION:
             self.db.close()
             raise InputError(f"logbook {p} has schema {v}, newer than this program's {SCHEMA_VERSION}")
-        if v < SCHEMA_VERSION:
+        if v < READABLE_FROM:
             self.db.close()
             raise InputError(f"logbook {p} has the older schema {v}; `feedmatch log` upgrades it")
+        self.has_banks = "banks" in tables
         if check != "ok":
             self.db.close()
             raise InputError(f"logbook {p} fails SQLite's integrity check ({check}); its rows cannot be "
                              "trusted: keep a copy and recover it with sqlite3's .recover")
 
     tunes = Logbook.tunes
+
+    def banks(self) -> dict[str, dict[str, Any]]:
+        """{board key: the config sections its element values came from}; empty
+        for logbooks written before the values were kept, or unreadable ones."""
+        if not self.has_banks:
+            return {}
+        out = {}
+        for key, text in self.db.execute("SELECT boards.board_id, banks.bank FROM banks JOIN boards "
+                                         "ON boards.id = banks.board"):
+            try:
+                m = json.loads(text)
+            except ValueError:
+                continue
+            if isinstance(m, dict):
+                out[key] = m
+        return out
 
     def close(self) -> None:
         self.db.close()

@@ -19,6 +19,13 @@ class Band:
     name: str
     low_hz: float
     high_hz: float
+    # Where a logged tune still counts as this band: wider than the common edges
+    # where national allocations are (60 m; see HF_BANDS).
+    span_low_hz: float | None = None
+    span_high_hz: float | None = None
+
+    def holds(self, f_hz: float) -> bool:
+        return (self.span_low_hz or self.low_hz) <= f_hz <= (self.span_high_hz or self.high_hz)
 
     @property
     def centre_hz(self) -> float:
@@ -28,7 +35,12 @@ class Band:
 HF_BANDS = (
     Band("160m", 1.800e6, 2.000e6),
     Band("80m", 3.500e6, 4.000e6),
-    Band("60m", 5.3515e6, 5.3665e6),
+    # 60 m: the common edges are the WRC-15 secondary allocation 5351.5-5366.5 kHz
+    # (ITU RR Article 5, footnote 5.133B).  National channels and allocations lie
+    # from about 5250 to 5450 kHz (for example the US channels up to 5406.4 kHz and
+    # the UK's from 5258.5 kHz; from memory), so the logbook counts that span as
+    # 60 m rather than "out".
+    Band("60m", 5.3515e6, 5.3665e6, 5.250e6, 5.450e6),
     Band("40m", 7.000e6, 7.300e6),
     Band("30m", 10.100e6, 10.150e6),
     Band("20m", 14.000e6, 14.350e6),
@@ -49,7 +61,7 @@ def by_name(name: str) -> Band:
 def band_of(f_hz: float) -> str:
     """Name of the band holding f_hz, or 'out' when it is in none."""
     for b in HF_BANDS:
-        if b.low_hz <= f_hz <= b.high_hz:
+        if b.holds(f_hz):
             return b.name
     return "out"
 
