@@ -194,3 +194,22 @@ def test_on_a_terminal_progress_is_a_bar():
     p.close()
     assert "scoring model on 10 loads" in out.getvalue() and "10/10" in out.getvalue()
     assert "feedmatch:" not in out.getvalue()   # the stage lines are for logs, not terminals
+
+
+def test_an_immutable_logbook_is_refused_before_the_port(tmp_path):
+    import shutil
+    import subprocess
+
+    from feedmatch.logbook.store import Logbook
+
+    book = tmp_path / "station.sqlite"
+    Logbook(book).close()
+    if shutil.which("chattr") is None or subprocess.run(["chattr", "+i", str(book)]).returncode != 0:
+        pytest.skip("chattr +i is not available here (needs root and a filesystem with the immutable flag)")
+    try:
+        before = book.read_bytes()
+        r = run_cli("log", "--port", "/dev/null", "--db", str(book), timeout=60)
+        assert r.returncode == 2 and "cannot be written" in r.stderr and "Traceback" not in r.stderr
+        assert book.read_bytes() == before
+    finally:
+        subprocess.run(["chattr", "-i", str(book)])

@@ -81,6 +81,15 @@ class Logbook:
             self._migrate()
         except sqlite3.DatabaseError as e:
             raise InputError(f"{self.path} is not a usable SQLite logbook: {e}") from None
+        try:
+            # A write lock now, not at the first record: a read-only or immutable
+            # logbook is refused before the port is opened and any record fetched.
+            self.db.execute("BEGIN IMMEDIATE")
+            self.db.execute(f"PRAGMA user_version={SCHEMA_VERSION}")  # a real write, same value
+            self.db.execute("COMMIT")
+        except sqlite3.OperationalError as e:
+            self.db.close()
+            raise InputError(f"logbook {self.path} cannot be written ({e}); nothing was changed") from None
         self.session: int | None = None
 
     def _migrate(self) -> None:
