@@ -110,3 +110,38 @@ def match_range_plot(path: Path, net: Network, target: float,
     fig.savefig(path, dpi=100, bbox_inches="tight")
     plt.close(fig)
     return path
+
+
+def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> None:
+    """Coverage map of a design: per band, the best state's SWR over frequency for
+    the bank you have and the proposal (nominal, and the worst drawn box)."""
+    import numpy as np
+
+    from feedmatch.rf.network import swr_of
+
+    plt = _plt()
+    loads = res["loads"]
+    names = loads.names
+    fig, axes = plt.subplots(1, len(names), figsize=(2.2 * len(names) + 1, 3.8), sharey=True, squeeze=False)
+    for b, (ax, name) in enumerate(zip(axes[0], names)):
+        m = loads.band == b
+        f = loads.f_hz[m] / 1e6
+        ax.plot(f, swr_of(res["score_current"]["best_gamma_boxes_worst"][m]), color="0.55", lw=1.5,
+                label="now (worst box)")
+        ax.plot(f, swr_of(res["score"]["best_gamma_nominal"][m]), color="tab:blue", lw=1, ls="--",
+                label="proposed (nominal)")
+        ax.plot(f, swr_of(res["score"]["best_gamma_boxes_worst"][m]), color="tab:blue", lw=1.8,
+                label="proposed (worst box)")
+        ax.axhline(design_swr, color="tab:green", lw=0.8)
+        ax.axhline(1.5, color="tab:red", lw=0.8)
+        ax.set_title(name, fontsize=9)
+        ax.set_yscale("log")
+        ax.set_ylim(1.0, 5.0)
+        ax.tick_params(labelsize=7)
+        ax.set_xlabel("MHz", fontsize=8)
+    axes[0][0].set_ylabel(f"best SWR (green: design {design_swr:g}, red: 1.5)", fontsize=8)
+    axes[0][0].legend(fontsize=6, loc="upper left")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    _ = np  # numpy is used through the arrays handed in

@@ -259,8 +259,33 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.set_defaults(fn=cmd_antenna)
 
+    s = sub.add_parser("design", help="propose element values for an antenna and its bands")
+    s.add_argument("--antenna", required=True, help="antenna JSON (NEC-2 or closed form) or .s1p")
+    s.add_argument("--bands", default="40m,30m,20m,17m,15m,12m,10m", help="bands to cover, e.g. 80m,40m,20m")
+    s.add_argument("--power", type=_watts, default=100.0, help="transmitter power for the ratings, W")
+    s.add_argument("--inductors", type=int, default=7, help="inductor relays")
+    s.add_argument("--capacitors", type=int, default=7, help="capacitor relays")
+    s.add_argument("--tolerance", type=float, default=0.05, help="part tolerance as a fraction (0.05 = 5 %%)")
+    s.add_argument("--design-swr", type=float, default=1.3,
+                   help="SWR the best state must reach for a frequency to count as covered")
+    s.add_argument("--boxes", type=int, default=4, help="drawn boxes each candidate is scored on")
+    s.add_argument("--seed", type=int, default=1)
+    s.add_argument("--network", help="the bank you have now, for comparison (default: the shipped one)")
+    s.add_argument("--out", help="write the proposal as a network JSON")
+    s.add_argument("--plot", help="coverage map (.png, .svg or .pdf)")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(fn=cmd_design)
+
     _more_commands(sub)
     return p
+
+
+def cmd_design(a: argparse.Namespace) -> int:
+    from feedmatch.cli.design import run_design
+
+    if not 1 <= a.boxes <= 50:
+        raise InputError(f"--boxes must be 1 to 50, got {a.boxes}")
+    return run_design(a)
 
 
 def cmd_antenna(a: argparse.Namespace) -> int:

@@ -70,6 +70,7 @@ def run_antenna(a: argparse.Namespace) -> int:
         rows.append({"band": b.name, "freq_hz": fc, "r_ohm": zc.real, "x_ohm": zc.imag,
                      "swr_50": float(swr_of(abs(gamma(zc, Z0_OHM))))})
     res = resonances(f, z)
+    check = _segment_check(ant, rows, res)
     if a.s1p:
         comment = f"feedmatch antenna sweep: {ant.describe()}"
         if method is not None:
@@ -79,7 +80,7 @@ def run_antenna(a: argparse.Namespace) -> int:
         _plot(a.plot, f, z, swr, ant.describe())
     if a.json:
         emit_json({"antenna": ant.describe(), "method": method, "bands": rows, "resonances": res,
-                   "warnings": notes,
+                   "warnings": notes, "segment_check": check,
                    "sweep": {"freq_hz": f.tolist(), "r_ohm": z.real.tolist(), "x_ohm": z.imag.tolist()}})
         return 0
     print(ant.describe())
@@ -93,11 +94,44 @@ def run_antenna(a: argparse.Namespace) -> int:
         print(f"{r['band']:>5} {r['freq_hz'] / 1e6:8.3f} {r['r_ohm']:9.2f} {r['x_ohm']:+10.2f} {s}")
     for r in res:
         print(f"{r['kind']} resonance at {r['freq_hz'] / 1e6:.3f} MHz, R = {r['r_ohm']:.1f} ohm")
+    for line in _check_lines(check):
+        print(line)
     if a.s1p:
         print(f"wrote {a.s1p}")
     if a.plot:
         print(f"wrote {a.plot}")
     return 0
+
+
+def _segment_check(ant, rows: list[dict[str, Any]], res: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The modelling-error estimate of a NEC-2 antenna: each band centre in the
+    sweep and each anti-resonance re-solved with twice the segments (where NEC-2
+    moves most).  Empty for a closed-form model or a measured file."""
+    if not hasattr(ant, "convergence"):
+        return []
+    fs = [r["freq_hz"] for r in rows] + [r["freq_hz"] for r in res if r["kind"] == "parallel"]
+    out = ant.convergence(fs)
+    for c in out:
+        c["band"] = bands.band_of(c["freq_hz"])
+    return out
+
+
+def _check_lines(check: list[dict[str, Any]]) -> list[str]:
+    from feedmatch.rf.nec import CONVERGENCE_WARN
+
+    if not check:
+        return []
+    n1, n2 = check[0]["segments"]
+    worst = max(check, key=lambda c: c["change"])
+    lines = [f"modelling error: {len(check)} frequencies re-solved with twice the segments ({n1} -> {n2}): "
+             f"|Z| moved {100 * min(c['change'] for c in check):.1f} to {100 * worst['change']:.1f} %"]
+    bad = [c for c in check if c["change"] > CONVERGENCE_WARN]
+    if bad:
+        where = ", ".join(f"{c['freq_hz'] / 1e6:.3f} MHz{'' if c['band'] == 'out' else ' (' + c['band'] + ')'} "
+                          f"{100 * c['change']:.0f} %" for c in bad)
+        lines.append(f"warning: the model is uncertain above {100 * CONVERGENCE_WARN:.0f} % at {where}; "
+                     "trust its impedance less there (design widens its margin)")
+    return lines
 
 
 def _method_line(m: dict) -> str:

@@ -137,9 +137,10 @@ def validate(d: dict, where: str) -> dict:
     return out
 
 
-def _nseg(length: float, f_max_hz: float, minimum: int = 3) -> int:
+def _nseg(length: float, f_max_hz: float, minimum: int = 3, scale: int = 1) -> int:
+    """Segments on one wire; scale 2 doubles them (the convergence check)."""
     lam = C0 / f_max_hz
-    return max(minimum, int(math.ceil(length / lam * SEGS_PER_WAVELENGTH)))
+    return scale * max(minimum, int(math.ceil(length / lam * SEGS_PER_WAVELENGTH)))
 
 
 MIN_RADIATOR_SEGS = 21  # the current on a short radiator needs several segments
@@ -180,14 +181,14 @@ MAX_SEGMENTS = 2000
 SLOW_SEGMENTS = 600
 
 
-def segment_count(desc: dict, f_max_hz: float) -> int:
+def segment_count(desc: dict, f_max_hz: float, scale: int = 1) -> int:
     """Segments of the NEC-2 model as _build lays it out."""
-    n = _nseg(desc["radiator"]["height_m"], f_max_hz, MIN_RADIATOR_SEGS)
+    n = _nseg(desc["radiator"]["height_m"], f_max_hz, MIN_RADIATOR_SEGS, scale)
     if "top_hat" in desc:
-        n += desc["top_hat"]["wires"] * _nseg(desc["top_hat"]["length_m"], f_max_hz)
+        n += desc["top_hat"]["wires"] * _nseg(desc["top_hat"]["length_m"], f_max_hz, 3, scale)
     g = desc["ground"]
     if g["type"] != "perfect":
-        n += g["radials"] * _nseg(g["radial_length_m"], f_max_hz)
+        n += g["radials"] * _nseg(g["radial_length_m"], f_max_hz, 3, scale)
     return n
 
 
@@ -219,7 +220,7 @@ def _warn_unfixed(desc: dict) -> None:
 FEED_TAG = 1  # the radiator's first wire, fed at its base segment
 
 
-def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
+def _build(necpp, nec, desc: dict, f_max_hz: float, scale: int = 1) -> int:
     """The geometry and ground; returns the coil's tag (0 when none)."""
 
     def ok(rc: int, what: str) -> None:
@@ -233,7 +234,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
     a = r["diameter_m"] / 2
     tag = FEED_TAG
     coil = desc.get("coil")
-    nv = _nseg(h, f_max_hz, MIN_RADIATOR_SEGS)
+    nv = _nseg(h, f_max_hz, MIN_RADIATOR_SEGS, scale)
     coil_tag = 0
     if coil is not None:
         # Radiator below the coil (if any), one segment carrying the coil, the rest above.
@@ -255,7 +256,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
         tag += 1
     th = desc.get("top_hat")
     if th is not None:
-        n = _nseg(th["length_m"], f_max_hz)
+        n = _nseg(th["length_m"], f_max_hz, 3, scale)
         for k in range(th["wires"]):
             ang = 2 * math.pi * k / th["wires"]
             ok(necpp.nec_wire(nec, tag, n, 0, 0, z_base + h, th["length_m"] * math.cos(ang),
@@ -263,7 +264,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
                "top hat")
             tag += 1
     if g["type"] != "perfect":
-        n = _nseg(g["radial_length_m"], f_max_hz)
+        n = _nseg(g["radial_length_m"], f_max_hz, 3, scale)
         for k in range(g["radials"]):
             ang = 2 * math.pi * k / g["radials"]
             ok(necpp.nec_wire(nec, tag, n, 0, 0, z_base, g["radial_length_m"] * math.cos(ang),
@@ -278,7 +279,7 @@ def _build(necpp, nec, desc: dict, f_max_hz: float) -> int:
     return coil_tag
 
 
-def _solve(desc: dict, f_mhz: list[float], f_max_hz: float) -> list[complex]:
+def _solve(desc: dict, f_mhz: list[float], f_max_hz: float, scale: int = 1) -> list[complex]:
     """NEC-2 at each frequency, one run per frequency so the coil's loss
     resistance (omega L / Q) is exact at every one of them."""
     import necpp
@@ -289,7 +290,7 @@ def _solve(desc: dict, f_mhz: list[float], f_max_hz: float) -> list[complex]:
     for fm in f_mhz:
         nec = necpp.nec_create()
         try:
-            coil_tag = _build(necpp, nec, desc, f_max_hz)
+            coil_tag = _build(necpp, nec, desc, f_max_hz, scale)
             rcs = []
             if coil is not None:
                 lh = coil["inductance_uh"] * 1e-6
@@ -310,8 +311,8 @@ def _solve(desc: dict, f_mhz: list[float], f_max_hz: float) -> list[complex]:
 
 
 def _solve_chunk(args):
-    desc, fs, fmax = args
-    return _solve(desc, fs, fmax)
+    desc, fs, fmax, *scale = args
+    return _solve(desc, fs, fmax, *scale)
 
 
 def cache_dir() -> Path:
@@ -444,6 +445,36 @@ def sweep(desc: dict, f_hz, workers: int | None = None, use_cache: bool = True,
     return sweep_result(desc, f_hz, workers, use_cache, exact).z
 
 
+# Above this relative change between the model and the model with twice the
+# segments, the antenna command warns and design widens its margin (common
+# practice for a convergence check: the answer should not move with the mesh).
+CONVERGENCE_WARN = 0.05
+
+
+def segment_convergence(desc: dict, f_hz, workers: int | None = None) -> list[dict[str, Any]]:
+    """Re-solve a few frequencies with twice the segments on every wire.
+
+    Returns per frequency the impedance with the usual segmenting and with
+    twice as many, and the change |Z2 - Z1| / |Z1|: an estimate of how far the
+    NEC-2 answer itself (not the interpolation) can be trusted there."""
+    fs = sorted({float(x) for x in np.atleast_1d(np.asarray(f_hz, dtype=float))})
+    if not fs:
+        return []
+    fmax = max(max(fs), F_SEGMENT_HZ)
+    mhz = [f / 1e6 for f in fs]
+    workers = workers if workers is not None else min(2, os.cpu_count() or 1)
+    jobs = [(desc, mhz, fmax, 1), (desc, mhz, fmax, 2)]
+    if workers >= 2:
+        with ProcessPoolExecutor(max_workers=2) as ex:
+            z1, z2 = ex.map(_solve_chunk, jobs)
+    else:
+        z1, z2 = (_solve_chunk(j) for j in jobs)
+    n1, n2 = segment_count(desc, fmax, 1), segment_count(desc, fmax, 2)
+    return [{"freq_hz": f, "z_ohm": [a.real, a.imag], "z_fine_ohm": [b.real, b.imag],
+             "change": abs(b - a) / max(abs(a), 1e-9), "segments": [n1, n2]}
+            for f, a, b in zip(fs, z1, z2)]
+
+
 class NecAntenna:
     """An antenna from its geometry; impedance() runs NEC-2 (through the cache)."""
 
@@ -459,6 +490,10 @@ class NecAntenna:
     def sweep(self, f_hz, exact: bool = False) -> NecSweep:
         """The sweep with how it was computed (solved points, estimated error)."""
         return sweep_result(self.desc, np.asarray(f_hz, dtype=float).ravel(), exact=exact)
+
+    def convergence(self, f_hz) -> list[dict[str, Any]]:
+        """See segment_convergence."""
+        return segment_convergence(self.desc, f_hz)
 
     def describe(self) -> str:
         r = self.desc["radiator"]
