@@ -102,8 +102,10 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
     if unsure:
         out.append("model uncertain (|Z| moves with twice the segments): " + ", ".join(
             f"{r['band']} {100 * r['model_change']:.0f} %" for r in unsure) + "; there Z x (1 -/+ that) must match too")
-    out.append(f"{'':5} {'covered':>15} {'worst SWR':>11} {'loss dB':>11} {'needs at ' + format(s['power_w'], 'g') + ' W':>18}")
-    out.append(f"{'band':>5} {'now':>7} {'new':>7} {'now':>5} {'new':>5} {'now':>5} {'new':>5} {'V cap pk':>9} {'I L rms':>8}")
+    at = f"needs at {s['power_w']:g} W"
+    out.append(f"{'':5} {'covered':>15} {'worst SWR':>11} {'loss dB':>11} {at:>18}")
+    out.append(f"{'band':>5} {'now':>7} {'new':>7} {'now':>5} {'new':>5} {'now':>5} {'new':>5} "
+               f"{'V cap pk':>9} {'I L rms':>8}")
     for r in s["bands"]:
         out.append(f"{r['band']:>5} {_pct(r['coverage_now']):>7} {_pct(r['coverage']):>7} "
                    f"{r['worst_swr_now']:5.2f} {r['worst_swr']:5.2f} {_f(r['loss_db_now'], '5.2f'):>5} "
@@ -120,7 +122,8 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
     out.append(f"parts, rated {s['rating_margin']:g} x the worst stress computed at {s['power_w']:g} W:")
     for q in s["parts"]:
         if q["unit"] == "pF":
-            out.append(f"  {q['part']:<3} {q['value']:9.4g} pF  {q['v_peak']:6.0f} V peak -> rate {q['rated_v_peak']:6.0f} V")
+            out.append(f"  {q['part']:<3} {q['value']:9.4g} pF  {q['v_peak']:6.0f} V peak -> "
+                       f"rate {q['rated_v_peak']:6.0f} V")
         else:
             out.append(f"  {q['part']:<3} {q['value']:9.4g} uH  {q['i_rms']:6.2f} A rms, {q['v_peak']:5.0f} V peak -> "
                        f"rate {q['rated_i_rms']:5.2f} A, {q['rated_v_peak']:5.0f} V")
