@@ -202,9 +202,38 @@ def bench_boxes(quick: bool = False) -> dict[str, Any]:
     return out
 
 
+def bench_design() -> dict[str, Any]:
+    """The issue's design target: the demo vertical (NEC-2), 40 m to 10 m at 100 W,
+    7+7 relays, 5 % parts: the proposal against the shipped bank, per band, and
+    how long one design run takes (the antenna's segment check included)."""
+    import time
+
+    from feedmatch.resources import DATA
+    from feedmatch.rf.antenna import load_antenna
+    from feedmatch.sim.design import DesignSpec, antenna_uncertainty, design
+
+    t = time.perf_counter()
+    ant = load_antenna(DATA / "antennas" / "hollow_oak_vertical.json")
+    names = ["40m", "30m", "20m", "17m", "15m", "12m", "10m"]
+    spec = DesignSpec(names, power_w=100.0, uncertainty=antenna_uncertainty(ant, names))
+    res = design(ant, spec, load_network(None))
+    out: dict[str, Any] = {"design_s": round(time.perf_counter() - t, 1)}
+    gains, dloss = [], []
+    for rp, rc in zip(res["score"]["bands"], res["score_current"]["bands"]):
+        out[f"design_{rp['band']}_coverage"] = round(rp["coverage"], 3)
+        out[f"design_{rp['band']}_coverage_default"] = round(rc["coverage"], 3)
+        gains.append(rp["coverage"] - rc["coverage"])
+        if rp["loss_db_common"] is not None and rc["loss_db_common"] is not None:
+            dloss.append(rp["loss_db_common"] - rc["loss_db_common"])
+    out["design_min_coverage_gain"] = round(min(gains), 3)
+    out["design_max_loss_increase_db"] = round(max(dloss), 3) if dloss else None
+    out["design_kept_default"] = res["kept_current"]
+    return out
+
+
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
-              "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040")
+              "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -242,6 +271,8 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         res.update(bench_boxes(quick))
     if want("cold", "false_lock_rate", "memory_success_rate"):
         res.update(bench_cold(quick))
+    if want("design"):
+        res.update(bench_design())
     if want("rp2040"):
         from feedmatch.bench.chip import bench_rp2040
         from feedmatch.sim.emulator import EmulatorMissing

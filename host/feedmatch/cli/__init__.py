@@ -269,6 +269,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--design-swr", type=float, default=1.3,
                    help="SWR the best state must reach for a frequency to count as covered")
     s.add_argument("--boxes", type=int, default=4, help="drawn boxes each candidate is scored on")
+    s.add_argument("--points", type=int, default=31, help="frequencies per band")
     s.add_argument("--seed", type=int, default=1)
     s.add_argument("--network", help="the bank you have now, for comparison (default: the shipped one)")
     s.add_argument("--out", help="write the proposal as a network JSON")
@@ -285,6 +286,8 @@ def cmd_design(a: argparse.Namespace) -> int:
 
     if not 1 <= a.boxes <= 50:
         raise InputError(f"--boxes must be 1 to 50, got {a.boxes}")
+    if not 3 <= a.points <= 401:
+        raise InputError(f"--points must be 3 to 401 frequencies per band, got {a.points}")
     return run_design(a)
 
 

@@ -49,7 +49,7 @@ def run_design(a: argparse.Namespace) -> int:
             else "antenna loads")
     unc = antenna_uncertainty(ant, names)
     spec = DesignSpec(names, power_w=a.power, n_l=a.inductors, n_c=a.capacitors, tolerance=a.tolerance,
-                      design_swr=a.design_swr, boxes=a.boxes, seed=a.seed, uncertainty=unc,
+                      design_swr=a.design_swr, boxes=a.boxes, seed=a.seed, points=a.points, uncertainty=unc,
                       inductor_q=current.inductor_q or 150.0, capacitor_q=current.capacitor_q or 1000.0)
     p.stage("optimising the banks (differential evolution)")
     res = design(ant, spec, current, progress=p)
