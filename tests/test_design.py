@@ -104,7 +104,7 @@ def test_ratings_match_the_power_balance():
     parts = {p["part"]: p for p in res["parts"]}
     worst_c = max(p["v_peak"] for p in parts.values() if p["unit"] == "pF")
     assert worst_c == pytest.approx(band["v_cap_peak_max"], rel=1e-9)
-    assert all(p["rated_v_peak"] == pytest.approx(1.5 * p["v_peak"]) for p in parts.values())
+    assert all(p["rated_v_peak"] == pytest.approx(spec.rating_margin * p["v_peak"]) for p in parts.values())
 
 
 def test_the_model_segment_check_is_quiet_at_resonance_and_warns_near_anti_resonance(tmp_path):

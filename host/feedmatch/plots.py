@@ -115,10 +115,6 @@ def match_range_plot(path: Path, net: Network, target: float,
 def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> None:
     """Coverage map of a design: per band, the best state's SWR over frequency for
     the bank you have and the proposal (nominal, and the worst drawn box)."""
-    import numpy as np
-
-    from feedmatch.rf.network import swr_of
-
     plt = _plt()
     loads = res["loads"]
     names = loads.names
@@ -136,7 +132,10 @@ def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> Non
         ax.axhline(1.5, color="tab:red", lw=0.8)
         ax.set_title(name, fontsize=9)
         ax.set_yscale("log")
-        ax.set_ylim(1.0, 5.0)
+        ax.set_ylim(1.0, 3.0)
+        ax.set_yticks([1.0, 1.3, 1.5, 2.0, 3.0])
+        ax.yaxis.set_major_formatter(matplotlib_ticker().ScalarFormatter())
+        ax.yaxis.set_minor_formatter(matplotlib_ticker().NullFormatter())
         ax.tick_params(labelsize=7)
         ax.set_xlabel("MHz", fontsize=8)
     axes[0][0].set_ylabel(f"best SWR (green: design {design_swr:g}, red: 1.5)", fontsize=8)
@@ -144,4 +143,9 @@ def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> Non
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
-    _ = np  # numpy is used through the arrays handed in
+
+
+def matplotlib_ticker():
+    import matplotlib.ticker
+
+    return matplotlib.ticker
