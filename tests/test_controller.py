@@ -402,3 +402,58 @@ def test_time_limit_and_watchdog_inside_a_long_search(tmp_path):
     steps = r["n"]
     # Fed more often than once per reading: the search fed it inside its work.
     assert sum(feeds_in_search) > steps
+
+
+def _ask(b, ctl, seq, word, args):
+    b.inbox += link.encode("Q", seq, word, args)
+    run(ctl, 5)
+    return {f[1]: f for f in _frames(b) if f[0] == "A"}[seq]
+
+
+def test_preset_switches_cold_and_the_first_carrier_confirms_it(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    # Learn 7.1 MHz and 14.2 MHz.
+    for f in (7.1e6, 14.2e6):
+        m.key(10, f)
+        assert run(ctl, until=lambda c: c.state == LOCKED)
+        m.key(0, 0)
+        run(ctl, 5)
+    stored = ctl.mem.lookup(7.1e6)
+    _frames(b)
+    # The radio goes back to 40 m, no RF: the relays move to the stored state at once.
+    kind, _seq, word, ans = _ask(b, ctl, 11, "preset", {"freq_hz": 7.1e6, "mode": "CW"})
+    assert word == "ok" and ans["preset"] is True
+    assert tuple(ans["relays"][:3]) == tuple(stored[:3]) and ans["relays"][3] == 0
+    assert m.violations == []
+    # The first carrier needs one reading, and the record says it was a preset.
+    m.key(10, 7.1e6)
+    assert run(ctl, until=lambda c: c.rec.seq == 3)
+    rec = _records(_frames(b))[-1]
+    assert rec["preset"] is True and rec["n"] == 1 and rec["outcome"] == "locked" and rec["mem"] is True
+    assert rec["rig_hz"] == 7.1e6 and rec["rig_mode"] == "CW"
+    # With RF present a preset is refused with its reason and nothing moves.
+    sets = b.sets
+    kind, _seq, word, ans = _ask(b, ctl, 12, "preset", {"freq_hz": 14.2e6})
+    assert word == "err" and ans["why"] == "rf-present" and b.sets == sets
+    # Nothing stored near a frequency: the box is left as it is, and says so.
+    m.key(0, 0)
+    run(ctl, 5)
+    kind, _seq, word, ans = _ask(b, ctl, 13, "preset", {"freq_hz": 24.9e6})
+    assert word == "ok" and ans["preset"] is False and b.sets == sets
+    for bad in ({"freq_hz": -1}, {"freq_hz": "7e6"}, {}, {"freq_hz": True}):
+        assert _ask(b, ctl, 14, "preset", bad)[2] == "err"
+
+
+def test_a_preset_confirmed_at_operating_power_switches_nothing(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    m.key(10, 7.1e6)
+    assert run(ctl, until=lambda c: c.state == LOCKED)
+    m.key(0, 0)
+    run(ctl, 5)
+    assert _ask(b, ctl, 21, "preset", {"freq_hz": 7.1e6})[3]["preset"] is True
+    sets = b.sets
+    m.key(100, 7.1e6)  # straight to operating power: read, never switch
+    assert run(ctl, until=lambda c: c.rec.seq == 2)
+    rec = _records(_frames(b))[-1]
+    assert rec["preset"] is True and rec["strategy"] == "preset" and rec["n"] == 1
+    assert b.sets == sets and m.violations == []

@@ -57,6 +57,8 @@ class Controller:
         self.lock_bin = None
         self.pending_restore = None
         self.manual = False  # the operator set relays or bypass: no automatic tunes until asked
+        self.preset_f = 0.0  # a preset waits for its confirming reading on the next carrier
+        self.rig = None  # (freq_hz, mode) the host last said the radio is on
         self.frames_bad = 0
         self.hot_refusals = 0
         self.boot = _bump_boot(d)
@@ -189,6 +191,24 @@ class Controller:
                 self.tune_req = None
                 self._start_tune(f, req.get("why", "request"))
             return
+        if self.preset_f > 0.0 and fwd >= self.p["min_tune_w"] and not self.manual:
+            # The relays were set from memory before the carrier came: one reading
+            # confirms them.  In the tune window that is a recall (it starts at the
+            # stored state and searches on if it does not hold); above it, the
+            # reading alone, and nothing switches.
+            fp = f if f > 0 else self.preset_f
+            if in_window and self.t["auto"]:
+                self._start_tune(fp, "confirm preset")
+                return
+            self.preset_f = 0.0
+            swr = self._swr()
+            ok = swr <= self.t["target_swr"]
+            st = self._state_list()
+            self._record(fp, st, st, swr, swr, 1, 0, LOCKED if ok else BEST,
+                         "preset confirmed" if ok else "preset above target: tune at lower power",
+                         ok, "preset", None, True)
+            self._set_state(LOCKED if ok else BEST, "preset confirmed" if ok else "preset above target")
+            return
         if not self.t["auto"] or not in_window or self.manual:
             return
         swr = self._swr()
@@ -211,7 +231,8 @@ class Controller:
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
                      "swr0": swr0, "hint": hint is not None, "why": why, "name": name,
-                     "fwd": self.fwd}
+                     "fwd": self.fwd, "preset": self.preset_f > 0.0}
+        self.preset_f = 0.0
         # Inside long work the search feeds the watchdog and stops at the time limit.
         strat.guard = self._guard
         memory.journal_write(self.d, {"freq_hz": f, "before": before, "swr_before": swr0,
@@ -274,7 +295,7 @@ class Controller:
         memory.journal_take(self.d)
         hit = tn["hint"] and s.n == 1 and outcome == LOCKED
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
-                     outcome, why, hit, tn["name"], _trace(s))
+                     outcome, why, hit, tn["name"], _trace(s), tn["preset"])
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
         elif outcome == FAULT:
@@ -288,13 +309,19 @@ class Controller:
     def _state_list(self):
         return [self.relays[0], self.relays[1], self.relays[2], 1 if self.bypass else 0]
 
-    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat, trace=None):
+    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat, trace=None,
+                preset=False):
         rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
                "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
                "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
                "strategy": strat, "board_id": self.cfg["board_id"], "uid": self.uid}
         if trace:
             rec["trace"] = trace
+        if preset:
+            rec["preset"] = True
+        if self.rig is not None:
+            rec["rig_hz"] = self.rig[0]
+            rec["rig_mode"] = self.rig[1]
         self.rec.add(rec)
         self._event("record", rec)
 
@@ -352,6 +379,39 @@ class Controller:
                 frame = link.encode("A", seq, "err", {"why": "reply-too-long"})
             self._send(frame)
 
+    def _preset(self, a):
+        """Set the relays from memory for a frequency, with no RF present: the
+        radio changed band and has not transmitted yet, the safest moment to
+        switch.  The lookup is the memory's own (the bins live here only)."""
+        if self.tune is not None:
+            return False, {"why": "busy"}
+        if self.state == FAULT:
+            return False, {"why": "fault", "msg": self.why}
+        f = a.get("freq_hz")
+        if not isinstance(f, (int, float)) or isinstance(f, bool) or f <= 0 or f > 1e9:
+            return False, {"why": "bad-args", "msg": "freq_hz"}
+        mode = a.get("mode")
+        if isinstance(mode, str):
+            self.rig = (float(f), mode[:12])
+        self._read()
+        if self.fwd > 0.0 or self.rf_w > 0.0:
+            return False, {"why": "rf-present", "msg": "RF on the line: the box tunes on it instead"}
+        hint = self.mem.lookup(f)
+        if hint is None:
+            return True, {"preset": False, "msg": "nothing stored near this frequency",
+                          "relays": self._state_list()}
+        if not self._switch((hint[0], hint[1], hint[2]), False):
+            return False, {"why": "hot", "msg": "power above hot-switch limit"}
+        self.preset_f = float(f)
+        self.manual = False
+        self.freq = float(f)
+        self.lock_bin = self.mem.bin_of(f)
+        self.mem.set_last(f, self.relays, False)
+        self.mem.flush()
+        self._set_state(WAIT_RF, "preset from memory for %.4f MHz" % (f / 1e6))
+        return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
+                      "bin_hz": self.mem.bin_hz}
+
     def _status(self):
         return {"state": self.state, "why": self.why, "relays": self._state_list(),
                 "fwd_w": _r3(self.fwd), "ref_w": _r3(self.ref),
@@ -402,6 +462,16 @@ class Controller:
             self.manual = on
             self._set_state(THROUGH if on else WAIT_RF, "bypass by host" if on else "back in line by host")
             return True, {"relays": self._state_list()}
+        if word == "rig":
+            # What the radio is on, as the host's rig control reads it: kept in records.
+            f = a.get("freq_hz")
+            mode = a.get("mode", "")
+            if not isinstance(f, (int, float)) or f <= 0 or f > 1e9 or not isinstance(mode, str):
+                return False, {"why": "bad-args", "msg": "freq_hz and mode"}
+            self.rig = (float(f), mode[:12])
+            return True, {}
+        if word == "preset":
+            return self._preset(a)
         if word == "mem-list":
             start = a.get("start", 0)
             if not isinstance(start, int) or start < 0:

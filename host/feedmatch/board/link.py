@@ -19,6 +19,10 @@ from fmlogic import link as frames
 
 from feedmatch.errors import BoardRefused, LinkError
 
+# fmhub:// is feedmatch's own pyserial URL backend (board/protocol_fmhub.py).
+if "feedmatch.board" not in serial.protocol_handler_packages:
+    serial.protocol_handler_packages.append("feedmatch.board")
+
 
 def resolve_port(port: str) -> str:
     if port != "auto":
@@ -54,6 +58,12 @@ class BoardLink:
     # -- open / close -----------------------------------------------------------
     def open(self) -> BoardLink:
         dev = resolve_port(self.port)
+        if "://" not in dev:
+            from feedmatch.board.hub import hub_alive, hub_path
+
+            hp = hub_path(dev)
+            if hub_alive(hp):
+                dev = f"fmhub://{hp}"  # another feedmatch process owns the port: attach to it
         try:
             if "://" in dev:
                 self.ser = serial.serial_for_url(dev, baudrate=self.baud, timeout=0.05,

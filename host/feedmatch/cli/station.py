@@ -301,6 +301,12 @@ def cmd_virtual_board(a) -> int:
     what = f"emulated {a.emulate}" if a.emulate else "virtual board"
     sys.stderr.write(f"{what} '{st.board_config.get('board_id')}' on {path} "
                      f"(flash in {d}); Ctrl-C stops it\n")
+    bridge = None
+    if a.rig:
+        from feedmatch.board.rigctl import RigClient, parse_hostport
+        from feedmatch.sim.radio import RigBridge
+
+        bridge = RigBridge(vs, RigClient(*parse_hostport(a.rig)), a.rig_full_power).start()
     try:
         if carrier:
             vs.key(*carrier)
@@ -312,9 +318,54 @@ def cmd_virtual_board(a) -> int:
     except KeyboardInterrupt:
         pass
     finally:
+        if bridge is not None:
+            bridge.close()
         vs.stop()
         if vs.model.violations:
             sys.stderr.write(f"hot-switch violations: {len(vs.model.violations)}\n")
+    return 0
+
+
+def cmd_follow(a) -> int:
+    import datetime as dt
+    import math
+    import signal
+
+    from feedmatch.board.follow import Follower
+    from feedmatch.board.rigctl import RigClient, parse_hostport
+
+    if not (math.isfinite(a.rig_full_power) and 0 < a.rig_full_power <= 10000):
+        raise InputError(f"--rig-full-power must be above 0 and up to 10000 W, got {a.rig_full_power:g}")
+    host, port = parse_hostport(a.rig)
+
+    def say(text: str) -> None:
+        print(f"{dt.datetime.now().strftime('%H:%M:%S')} {text}", flush=True)
+
+    fo = Follower(a.port, RigClient(host, port), say, a.baud, tune_carrier_w=a.tune_carrier,
+                  carrier_mode=a.carrier_mode, rig_full_w=a.rig_full_power)
+    try:
+        fo.rig.open()      # a wrong address is one line, at once
+        fo._board()        # so is a port that is not a board
+    except LinkError:
+        fo.close()
+        raise
+    if a.tune_carrier is not None:
+        say(f"--tune-carrier: this program will KEY THE RADIO at {a.tune_carrier:g} W for at most "
+            f"{fo.max_key_s:g} s where nothing is stored; you stay responsible for the station")
+
+    def _term(_sig, _frame):
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _term)
+    say(f"following the radio at {host}:{port} for the board on {a.port} (Ctrl-C stops)")
+    try:
+        fo.run()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        fo.close()
+    say(f"stopped: {fo.presets} presets, {fo.keyed_tunes} keyed tunes"
+        + (f", {fo.unkey_failures} FAILED UNKEYS" if fo.unkey_failures else ""))
     return 0
 
 
@@ -335,7 +386,22 @@ def add_commands(sub) -> None:
     s.add_argument("--emulate", choices=["rp2040"],
                    help="run the firmware as deployed on an emulated chip (rp2040js, needs node and npm)")
     s.add_argument("--image", help="with --emulate: the MicroPython .uf2 image for the Raspberry Pi Pico")
+    s.add_argument("--rig", metavar="HOST:PORT",
+                   help="a rigctld radio keys the station: its PTT, frequency and RF power become the carrier")
+    s.add_argument("--rig-full-power", type=float, default=100.0, help="W at RF power level 1.0 (with --rig)")
     s.set_defaults(fn=cmd_virtual_board)
+
+    s = sub.add_parser("follow", help="follow the radio's frequency through rigctld: preset the box before "
+                       "the first carrier")
+    _add_port(s)
+    s.add_argument("--rig", required=True, metavar="HOST:PORT", help="rigctld's address (default port 4532)")
+    s.add_argument("--tune-carrier", type=float, metavar="WATTS",
+                   help="KEYS THE RADIO: where nothing is stored, key this power in --carrier-mode for a tune "
+                        "(at most 5 s), then unkey and restore power and mode. Off by default")
+    s.add_argument("--carrier-mode", default="FM", help="the radio mode that sends a steady carrier (default FM)")
+    s.add_argument("--rig-full-power", type=float, default=100.0,
+                   help="the radio's power in W at RF power level 1.0 (to set --tune-carrier)")
+    s.set_defaults(fn=cmd_follow)
 
     s = sub.add_parser("status", help="the board's state, relays, power and SWR")
     _add_port(s)

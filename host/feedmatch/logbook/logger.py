@@ -7,7 +7,8 @@ import threading
 import time
 from typing import Any, TextIO
 
-from feedmatch.board.link import BoardLink
+from feedmatch.board.hub import ensure_hub
+from feedmatch.board.link import BoardLink, resolve_port
 from feedmatch.errors import LinkError
 from feedmatch.logbook.store import Logbook, board_key
 
@@ -34,6 +35,7 @@ class Logger:
         self._floor = 1  # the lowest record seq the board may still hold
         self.notices: list[str] = []  # what the operator must hear (a reappearing board id)
         self.notices_for: set[str] = set()
+        self.hub = None
 
     def _when(self, rec: dict[str, Any]) -> str:
         """Best estimate of when a record happened (the board has no clock)."""
@@ -59,6 +61,10 @@ class Logger:
         self.last_committed = self.book.last_seq(self.board_id)
 
     def _connect(self) -> None:
+        if self.hub is None:
+            # The logger owns the port unless another feedmatch process does;
+            # then it attaches, and the others attach to it while it runs.
+            self.hub = ensure_hub(resolve_port(self.port), self.baud)
         self.link = BoardLink(self.port, self.baud)
         self.link.stop_event = self._stop
         self.link.open()
@@ -163,6 +169,9 @@ class Logger:
                 self.link.close()
             if self.book is not None:
                 self.book.close()
+            if self.hub is not None:
+                self.hub.close()
+                self.hub = None
         return self.added
 
     def _show(self) -> None:

@@ -22,6 +22,14 @@ STATE_DRIFT_FRACTION = 0.06
 MIN_TUNES_FOR_HEALTH = 4
 
 
+def _get(row: Any, key: str) -> Any:
+    """A column that older logbooks lack reads as None."""
+    try:
+        return row[key]
+    except (KeyError, IndexError):
+        return None
+
+
 def _median(xs: list[float]) -> float | None:
     return statistics.median(xs) if xs else None
 
@@ -75,6 +83,9 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
             "most_used_state": ([top[0], top[1], "tx" if top[2] == 0 else "ant"] if top else None),
             "most_used_values": vals,
             "memory_hit_rate": (sum(1 for r in tuned if r["memory_hit"]) / len(tuned)) if tuned else None,
+            "presets": sum(1 for r in rs if _get(r, "preset")),
+            "presets_confirmed": sum(1 for r in rs if _get(r, "preset") and r["outcome"] == LOCKED
+                                     and r["measurements"] == 1),
             "health": health(ok, bank=bank),
         })
     return out
@@ -152,19 +163,23 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
         flag = ("CHECK: " + h["note"]) if h["flag"] else h["note"]
         out.append(f"{b['band']:>5} {b['tunes']:5d} {pct(b['success_rate'])} {swr} {ms} {meas} "
                    f"{pct(b['memory_hit_rate'])}  {sts:<26} {flag}")
+    presets = sum(b["presets"] for b in rep["bands"])
+    if presets:
+        ok = sum(b["presets_confirmed"] for b in rep["bands"])
+        out.append(f"presets from the radio's frequency: {presets}, confirmed by the first reading: {ok}")
     return out
 
 
 def write_csv(path: str, rows: list) -> None:
     cols = ["time", "board_id", "seq", "band", "freq_hz", "outcome", "reason", "swr_before", "swr_after",
             "measurements", "duration_ms", "after_l", "after_c", "after_shunt", "after_bypass",
-            "memory_hit"]
+            "memory_hit", "preset", "rig_hz", "rig_mode"]
     with open(path, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
         w.writerow(cols)
         for r in rows:
             # The capacitor side as the tables say it (tx/ant), not the relay's 0/1.
-            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None else r[c]
+            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None else _get(r, c)
                         for c in cols])
 
 

@@ -17,7 +17,7 @@ from typing import Any
 from feedmatch.errors import InputError
 from feedmatch.rf import bands
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 # The oldest schema report and fit-box read as it is (what it lacks is left out).
 READABLE_FROM = 2
 
@@ -46,6 +46,13 @@ _MIGRATIONS = {
     3: [
         "CREATE TABLE banks (board INTEGER PRIMARY KEY REFERENCES boards(id), seen TEXT NOT NULL,"
         " bank TEXT NOT NULL)",
+    ],
+    # What the radio said it was on (feedmatch follow), and whether the relays
+    # were preset from memory before the carrier came.
+    4: [
+        "ALTER TABLE tunes ADD COLUMN rig_hz REAL",
+        "ALTER TABLE tunes ADD COLUMN rig_mode TEXT",
+        "ALTER TABLE tunes ADD COLUMN preset INTEGER NOT NULL DEFAULT 0",
     ],
 }
 
@@ -160,17 +167,20 @@ class Logbook:
         f = float(rec.get("freq_hz") or 0.0)
         swr_b = rec.get("swr_before")
         swr_a = rec.get("swr_after")
+        rig_hz, rig_mode = rec.get("rig_hz"), rec.get("rig_mode")
         row = (b, int(rec["seq"]), self.session, when or _now(), rec.get("boot"), f,
                bands.band_of(f) if f else "none", *bef, *aft,
                swr_b if isinstance(swr_b, (int, float)) and swr_b >= 0 else None,
                swr_a if isinstance(swr_a, (int, float)) and swr_a >= 0 else None,
                rec.get("n"), rec.get("ms"), rec.get("outcome"), rec.get("why"),
-               1 if rec.get("mem") else 0, rec.get("strategy"), json.dumps(rec, sort_keys=True))
+               1 if rec.get("mem") else 0, rec.get("strategy"), json.dumps(rec, sort_keys=True),
+               rig_hz if isinstance(rig_hz, (int, float)) and not isinstance(rig_hz, bool) else None,
+               rig_mode if isinstance(rig_mode, str) else None, 1 if rec.get("preset") is True else 0)
         cur = self.db.execute(
             "INSERT OR IGNORE INTO tunes (board, seq, session, time, boot, freq_hz, band, before_l, "
             "before_c, before_shunt, before_bypass, after_l, after_c, after_shunt, after_bypass, "
             "swr_before, swr_after, measurements, duration_ms, outcome, reason, memory_hit, strategy, "
-            "raw) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", row)
+            "raw, rig_hz, rig_mode, preset) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", row)
         return cur.rowcount == 1
 
     def tunes(self, since: str | None = None) -> list[sqlite3.Row]:

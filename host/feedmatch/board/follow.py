@@ -1,0 +1,222 @@
+"""The `follow` job: the box follows the radio's frequency through rigctld.
+
+When the radio moves to another memory bin with no RF on the line, the board
+is asked to preset the stored state (the relays switch cold, the safest
+moment there is); the lookup and the bins are the firmware's own.  The radio's
+frequency and mode are sent to the board so every record carries them.
+
+Optionally (tune_carrier_w) the radio is keyed for a tune where nothing is
+stored: carrier mode and a power no higher than the box's limits, read back
+before keying, keyed for at most max_key_s, unkeyed on every way out (an
+error, a timeout, Ctrl-C, a lost board); its power and mode are restored.
+Nothing here prints: messages go to say(text).
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Callable
+from typing import Any
+
+from feedmatch.board.hub import ensure_hub
+from feedmatch.board.link import BoardLink, resolve_port
+from feedmatch.board.rigctl import RigClient, RigError
+from feedmatch.errors import BoardRefused, InputError, LinkError
+
+MAX_KEY_S = 5.0  # the longest a tune carrier stays keyed, whatever happens
+
+
+def _mhz(f: float) -> str:
+    return f"{f / 1e6:.4f} MHz"
+
+
+class Follower:
+    def __init__(self, board_port: str, rig: RigClient, say: Callable[[str], None], baud: int = 115200,
+                 tune_carrier_w: float | None = None, carrier_mode: str = "FM", rig_full_w: float = 100.0,
+                 max_key_s: float = MAX_KEY_S, poll_s: float = 0.25):
+        if tune_carrier_w is not None and not 0 < tune_carrier_w <= rig_full_w:
+            raise InputError(f"--tune-carrier must be above 0 and at most the radio's full power "
+                             f"({rig_full_w:g} W), got {tune_carrier_w:g}")
+        if not 0 < max_key_s <= MAX_KEY_S:
+            raise InputError(f"the key time must be above 0 and at most {MAX_KEY_S:g} s")
+        self.port, self.baud, self.rig, self.say = board_port, baud, rig, say
+        self.tune_carrier_w, self.carrier_mode, self.rig_full_w = tune_carrier_w, carrier_mode, rig_full_w
+        self.max_key_s, self.poll_s = max_key_s, poll_s
+        self.link: BoardLink | None = None
+        self.bin_hz = 50e3
+        self.limits: dict[str, float] = {}
+        self.last_bin: int | None = None
+        self.last_rig: tuple[float, str] | None = None
+        self.presets = 0
+        self.keyed_tunes = 0
+        self.unkey_failures = 0
+        self.stop = threading.Event()
+        self.hub = None
+
+    def close(self) -> None:
+        if self.link is not None:
+            self.link.close()
+            self.link = None
+        if self.hub is not None:
+            self.hub.close()
+            self.hub = None
+        self.rig.close()
+
+    # -- connections -----------------------------------------------------------------
+    def _board(self) -> BoardLink:
+        if self.link is None:
+            if self.hub is None:
+                self.hub = ensure_hub(resolve_port(self.port), self.baud)  # owner, or attach to the owner
+            ln = BoardLink(self.port, self.baud)
+            ln.stop_event = self.stop
+            ln.open()
+            try:
+                ln.request("status")
+                mem = ln.request("cfg-get", {"section": "memory"})["value"]
+                self.bin_hz = float(mem.get("bin_hz", self.bin_hz))
+                self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
+            except (LinkError, KeyError, TypeError, ValueError):
+                ln.close()
+                raise
+            self.link = ln
+        return self.link
+
+    def _drop_board(self, why: str) -> None:
+        if self.link is not None:
+            self.link.close()
+        self.link = None
+        self.say(f"lost the board ({why}); retrying")
+
+    # -- the loop ----------------------------------------------------------------------
+    def run(self, stop: threading.Event | None = None) -> None:
+        if stop is not None:
+            self.stop = stop
+        rig_down = board_down = False
+        while not self.stop.is_set():
+            try:
+                f = self.rig.freq()
+                mode, _pb = self.rig.mode()
+                keyed = self.rig.ptt()
+                if rig_down:
+                    self.say("rigctld is back")
+                rig_down = False
+            except RigError as e:
+                if not rig_down:
+                    self.say(f"{e}; retrying every 2 s")
+                rig_down = True
+                self.rig.close()
+                self.stop.wait(2.0)
+                continue
+            try:
+                ln = self._board()
+                if board_down:
+                    self.say("the board is back")
+                board_down = False
+                self._on_radio(ln, f, mode, keyed)
+            except RigError as e:
+                self.say(f"{e}; retrying every 2 s")
+                rig_down = True
+                self.rig.close()
+                self.stop.wait(2.0)
+                continue
+            except LinkError as e:
+                if not board_down:
+                    self._drop_board(str(e))
+                board_down = True
+                self.link = None
+                self.stop.wait(2.0)
+                continue
+            self.stop.wait(self.poll_s)
+
+    def _on_radio(self, ln: BoardLink, f: float, mode: str, keyed: bool) -> None:
+        if (f, mode) != self.last_rig:
+            self.last_rig = (f, mode)
+            try:
+                ln.request("rig", {"freq_hz": f, "mode": mode})
+            except BoardRefused:
+                pass  # older firmware: the records go without the radio's figures
+        ln.pump()
+        b = int(f // self.bin_hz)
+        if b == self.last_bin:
+            return
+        if keyed:
+            self.last_bin = b
+            self.say(f"{_mhz(f)} {mode}: the radio is transmitting; the box tunes on the carrier itself")
+            return
+        try:
+            ans = ln.request("preset", {"freq_hz": f, "mode": mode})
+        except BoardRefused as e:
+            if e.why == "busy":
+                return  # a tune is under way: ask again on the next poll
+            self.last_bin = b
+            msg = e.detail.get("msg")
+            self.say(f"{_mhz(f)} {mode}: preset refused ({e.why}{': ' + msg if msg else ''})")
+            return
+        self.last_bin = b
+        if ans.get("preset"):
+            self.presets += 1
+            r = ans.get("relays") or [0, 0, 0, 0]
+            self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'} from memory "
+                     f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
+            return
+        self.say(f"{_mhz(f)} {mode}: nothing stored here; the box is left as it is")
+        if self.tune_carrier_w is not None:
+            self.keyed_tune(ln, f)
+
+    # -- keying the radio for a tune ---------------------------------------------------
+    def keyed_tune(self, ln: BoardLink, f: float) -> dict[str, Any] | None:
+        """Key a tune carrier, wait for the board's record, unkey, restore.
+        Returns the record, or None when the tune did not finish in time."""
+        w = float(self.tune_carrier_w or 0.0)
+        hot = float(self.limits.get("hot_switch_w", 0.0))
+        lo, hi = float(self.limits.get("min_tune_w", 0.0)), float(self.limits.get("max_tune_w", 0.0))
+        if not (lo <= w <= hi and w <= hot):
+            self.say(f"not keying: {w:g} W is outside the box's tune window {lo:g}-{hi:g} W "
+                     f"(hot-switch limit {hot:g} W)")
+            return None
+        old_mode, old_pb = self.rig.mode()
+        old_power = self.rig.power()
+        frac = w / self.rig_full_w
+        rec = None
+        keyed = False
+        try:
+            self.rig.set_mode(self.carrier_mode, 0)
+            self.rig.set_power(frac)
+            got = self.rig.power()
+            if abs(got - frac) > max(0.02, 0.05 * frac):
+                self.say(f"not keying: set the power to {frac:.3f} of full but the radio reads back {got:.3f}")
+                return None
+            before = int(ln.request("status").get("seq", 0))
+            ln.request("tune", {"freq_hz": f})
+            self.say(f"keying {w:g} W {self.carrier_mode} for at most {self.max_key_s:g} s to tune {_mhz(f)}")
+            keyed = True
+            self.rig.set_ptt(True)
+            rec = ln.wait_event("record", lambda o: int(o.get("seq", 0)) > before, timeout=self.max_key_s)
+        finally:
+            if keyed:
+                self._unkey()
+            try:
+                self.rig.set_power(old_power)
+                self.rig.set_mode(old_mode, old_pb)
+            except RigError as e:
+                self.say(f"could not restore the radio's power and mode ({e}); check them")
+        if rec is None:
+            self.say(f"no tune result within {self.max_key_s:g} s: unkeyed")
+            return None
+        self.keyed_tunes += 1
+        self.say(f"tuned {_mhz(f)}: {rec.get('outcome')}, SWR {rec.get('swr_after')} in {rec.get('n')} readings; "
+                 "unkeyed, power and mode restored")
+        return rec
+
+    def _unkey(self) -> None:
+        """PTT off, through a fresh connection if the old one broke; said loudly if impossible."""
+        for attempt in range(3):
+            try:
+                self.rig.set_ptt(False)
+                return
+            except RigError:
+                self.rig.close()
+                time.sleep(0.2 * (attempt + 1))
+        self.unkey_failures += 1
+        self.say("COULD NOT UNKEY THE RADIO through rigctld: unkey it by hand now")

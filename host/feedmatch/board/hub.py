@@ -1,0 +1,269 @@
+"""One owner of the board's serial port; every other feedmatch process attaches.
+
+The owner (`log`, `follow` or `serve`, whichever starts first) opens the port
+and listens on a Unix socket named after it (mode 0600: the user's own
+processes only).  Requests from each attached process are forwarded to the
+board under the hub's own sequence numbers, and each answer goes back to the
+process that asked, with its own number restored; events (records, state
+changes) go to everyone.  The board sees one host; records are still
+committed once, by the logger alone.  BoardLink finds the hub by the port's
+name and uses it through the fmhub:// pyserial backend, so `status`, `tune`
+and the rest work the same while `log` runs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import socket
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import serial
+from fmlogic import link as frames
+
+from feedmatch.errors import LinkError
+
+
+def hub_path(device: str) -> Path:
+    """The hub socket for a serial device (the same for every name of it)."""
+    real = os.path.realpath(device)
+    d = os.environ.get("XDG_RUNTIME_DIR") or tempfile.gettempdir()
+    h = hashlib.sha1(real.encode()).hexdigest()[:16]
+    return Path(d) / f"feedmatch-hub-{os.getuid()}-{h}.sock"
+
+
+def hub_alive(path: Path) -> bool:
+    if not path.exists():
+        return False
+    s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    try:
+        s.settimeout(1.0)
+        s.connect(str(path))
+        return True
+    except OSError:
+        return False
+    finally:
+        s.close()
+
+
+class _Client:
+    def __init__(self, conn: socket.socket):
+        self.conn = conn
+        self.reader = frames.LineReader()
+        self.lock = threading.Lock()
+        self.alive = True
+
+    def send(self, data: bytes) -> None:
+        if not self.alive:
+            return
+        with self.lock:
+            try:
+                self.conn.sendall(data)
+            except OSError:
+                self.alive = False
+
+
+class LinkHub:
+    def __init__(self, device: str, baud: int = 115200):
+        self.device, self.baud = device, baud
+        self.path = hub_path(device)
+        self.ser: serial.Serial | None = None
+        self.srv: socket.socket | None = None
+        self.clients: list[_Client] = []
+        self.pending: dict[int, tuple[_Client, int]] = {}
+        self.seq = 0
+        self.lock = threading.Lock()
+        self.wlock = threading.Lock()
+        self.stop = threading.Event()
+        self.dropped = 0
+        self._threads: list[threading.Thread] = []
+
+    # -- life --------------------------------------------------------------------------
+    def _open_serial(self) -> None:
+        try:
+            self.ser = serial.Serial(self.device, self.baud, timeout=0.05, write_timeout=2.0, exclusive=True)
+        except (serial.SerialException, OSError, ValueError) as e:
+            msg = str(e)
+            if "busy" in msg.lower() or "lock" in msg.lower():
+                raise LinkError(f"port {self.device} is busy (another program has it open)") from None
+            raise LinkError(f"cannot open port {self.device}: {msg}") from None
+
+    def start(self) -> LinkHub:
+        self._open_serial()
+        if self.path.exists():
+            if hub_alive(self.path):
+                self.ser.close()
+                raise LinkError(f"another feedmatch process already owns {self.device}")
+            self.path.unlink()  # left by a process that was killed
+        srv = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        old = os.umask(0o177)
+        try:
+            srv.bind(str(self.path))
+        finally:
+            os.umask(old)
+        srv.listen(8)
+        srv.settimeout(0.5)
+        self.srv = srv
+        for fn in (self._serial_loop, self._accept_loop):
+            t = threading.Thread(target=fn, daemon=True)
+            t.start()
+            self._threads.append(t)
+        return self
+
+    def close(self) -> None:
+        self.stop.set()
+        for t in self._threads:
+            t.join(2.0)
+        with self.lock:
+            for c in self.clients:
+                try:
+                    c.conn.close()
+                except OSError:
+                    pass
+            self.clients.clear()
+        if self.srv is not None:
+            self.srv.close()
+            try:
+                self.path.unlink()
+            except OSError:
+                pass
+        if self.ser is not None:
+            self.ser.close()
+
+    # -- the board side -------------------------------------------------------------
+    def _serial_loop(self) -> None:
+        reader = frames.LineReader()
+        while not self.stop.is_set():
+            if self.ser is None:
+                try:
+                    self._open_serial()
+                    reader = frames.LineReader()
+                except LinkError:
+                    self.stop.wait(0.5)
+                    continue
+            try:
+                data = self.ser.read(max(1, self.ser.in_waiting or 1))
+            except (serial.SerialException, OSError, TypeError):
+                # The board went away (cable, USB reset): attached processes keep
+                # their sockets and time out; the port is reopened when it is back.
+                try:
+                    self.ser.close()
+                except (serial.SerialException, OSError):
+                    pass
+                self.ser = None
+                continue
+            for line in reader.feed(data):
+                self._from_board(line)
+
+    def _from_board(self, line: bytes) -> None:
+        if not line or not line.strip():
+            return
+        d = frames.decode(line)
+        if d[0] == "A":
+            _k, seq, word, obj = d
+            with self.lock:
+                who = self.pending.pop(seq, None)
+            if who is None:
+                self.dropped += 1
+                return
+            client, cseq = who
+            client.send(frames.encode("A", cseq, word, obj))
+            return
+        # Events for everyone; a corrupted line too, so each reader counts it and asks again.
+        with self.lock:
+            clients = list(self.clients)
+        for c in clients:
+            c.send(line if line.endswith(b"\n") else line + b"\n")
+
+    def _to_board(self, data: bytes) -> bool:
+        with self.wlock:
+            if self.ser is None:
+                return False
+            try:
+                self.ser.write(data)
+                self.ser.flush()
+                return True
+            except (serial.SerialException, OSError):
+                return False
+
+    # -- the attached processes -------------------------------------------------------
+    def _accept_loop(self) -> None:
+        while not self.stop.is_set():
+            try:
+                conn, _ = self.srv.accept()
+            except TimeoutError:
+                continue
+            except OSError:
+                return
+            c = _Client(conn)
+            with self.lock:
+                self.clients.append(c)
+            t = threading.Thread(target=self._client_loop, args=(c,), daemon=True)
+            t.start()
+
+    def _client_loop(self, c: _Client) -> None:
+        c.conn.settimeout(0.5)
+        while not self.stop.is_set() and c.alive:
+            try:
+                data = c.conn.recv(4096)
+            except TimeoutError:
+                continue
+            except OSError:
+                break
+            if not data:
+                break
+            for line in c.reader.feed(data):
+                if not line:
+                    c.send(frames.encode("A", 0, "err", {"why": "oversize"}))
+                    continue
+                if not line.strip():
+                    continue
+                d = frames.decode(line)
+                if d[0] is None:
+                    c.send(frames.encode("A", 0, "err", {"why": d[1]}))
+                    continue
+                kind, cseq, word, obj = d
+                if kind != "Q":
+                    c.send(frames.encode("A", cseq, "err", {"why": "not-a-request"}))
+                    continue
+                with self.lock:
+                    self.seq = self.seq % 65535 + 1
+                    hseq = self.seq
+                    self.pending[hseq] = (c, cseq)
+                    if len(self.pending) > 4096:  # answers that never came
+                        for k in list(self.pending)[:2048]:
+                            del self.pending[k]
+                if not self._to_board(frames.encode("Q", hseq, word, obj)):
+                    with self.lock:
+                        self.pending.pop(hseq, None)
+        c.alive = False
+        with self.lock:
+            if c in self.clients:
+                self.clients.remove(c)
+            for k in [k for k, v in self.pending.items() if v[0] is c]:
+                del self.pending[k]
+        try:
+            c.conn.close()
+        except OSError:
+            pass
+
+
+def ensure_hub(device: str, baud: int = 115200, wait_s: float = 3.0) -> LinkHub | None:
+    """Make sure one process owns the port: start a hub here (returned: the caller
+    closes it when it exits) unless one runs already (None).  Two processes
+    starting at once: the one that opens the port owns it, the other attaches."""
+    if "://" in device:
+        return None  # URLs (socket://, loop://) are not serial devices to share
+    deadline = time.monotonic() + wait_s
+    while True:
+        if hub_alive(hub_path(device)):
+            return None
+        try:
+            return LinkHub(device, baud).start()
+        except LinkError as e:
+            if "busy" not in str(e) and "owns" not in str(e) or time.monotonic() > deadline:
+                raise
+            time.sleep(0.2)
