@@ -312,3 +312,37 @@ def test_no_stray_processes_after_station_stop(tmp_path):
     vs.stop()
     assert vs.proc.poll() is not None
     assert not Path(f"/proc/{pid}").exists() or "zombie" in Path(f"/proc/{pid}/status").read_text().lower()
+
+
+def test_commands_attach_to_the_logger_that_owns_the_port(tmp_path):
+    # One owner of the serial port: while `log` runs, status, tune and memory reach the
+    # board through its hub with their usual output, and every record lands once.
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--carrier", "10@14.2e6",
+                          "--dir", str(tmp_path / "flash")], stdout=subprocess.PIPE,
+                         stderr=subprocess.DEVNULL, text=True)
+    lg = None
+    db = tmp_path / "station.sqlite"
+    try:
+        pty = p.stdout.readline().strip()
+        lg = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(db), "--json"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        from feedmatch.board.hub import hub_alive, hub_path
+
+        assert _wait(lambda: hub_alive(hub_path(pty)), 10), "the logger owns the port through a hub"
+        r = run_cli("status", "--port", pty)
+        assert r.returncode == 0 and "board hollow-oak-1" in r.stdout, r.stderr
+        r = run_cli("tune", "--port", pty, "--freq", "14.2e6", "--json", timeout=60)
+        assert r.returncode == 0 and json.loads(r.stdout)["outcome"] == "locked", r.stderr
+        r = run_cli("memory", "--port", pty, "--json")
+        assert r.returncode == 0 and json.loads(r.stdout)["entries"]
+        time.sleep(4.0)  # the logger's next status poll
+        lg.send_signal(signal.SIGTERM)
+        out, _err = lg.communicate(timeout=20)
+    finally:
+        if lg is not None and lg.poll() is None:
+            lg.kill()
+        p.send_signal(signal.SIGINT)
+        p.wait(10)
+    seqs = [r["seq"] for r in _rows(str(db))]
+    assert seqs == sorted(set(seqs)) and len(seqs) >= 2  # the boot tune and the asked one, once each
+    assert json.loads(out)["added"] == len(seqs)
