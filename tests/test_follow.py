@@ -16,7 +16,6 @@ import threading
 import time
 
 import pytest
-
 from feedmatch.board.follow import Follower
 from feedmatch.board.link import BoardLink
 from feedmatch.board.rigctl import RigClient
