@@ -369,6 +369,42 @@ def cmd_follow(a) -> int:
     return 0
 
 
+def cmd_serve(a) -> int:
+    import signal
+    from pathlib import Path
+
+    from feedmatch.web.server import serve
+
+    if a.db is not None:
+        from feedmatch.logbook.store import open_existing
+
+        if Path(a.db).exists():
+            open_existing(a.db).close()  # a bad logbook is one line now, not a broken page later
+    if a.port is None and a.db is None:
+        raise InputError("give --port (the board), --db (a logbook) or both")
+    if not 1 <= a.http_port <= 65535:
+        raise InputError(f"--http-port must be 1 to 65535, got {a.http_port}")
+    if a.allow_control is not None and len(a.allow_control) < 8:
+        raise InputError("--allow-control needs a token of at least 8 characters")
+
+    def _term(_sig, _frame):
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _term)
+
+    def ready(url: str) -> None:
+        what = " and ".join(x for x in ((f"the board on {a.port}" if a.port else ""),
+                                         (f"the logbook {a.db}" if a.db else "")) if x)
+        mode = "tune and bypass buttons need the token" if a.allow_control else "read-only"
+        print(f"serving {what} at {url} ({mode}; Ctrl-C stops)", flush=True)
+
+    try:
+        serve(a.db, a.port, a.listen, a.http_port, a.allow_control, a.baud, ready=ready)
+    except KeyboardInterrupt:
+        pass
+    return 0
+
+
 def cmd_demo(a) -> int:
     from feedmatch.sim.demo import run_demo
 
@@ -427,6 +463,16 @@ def add_commands(sub) -> None:
     _add_port(s)
     s.add_argument("--db", required=True)
     s.set_defaults(fn=cmd_log)
+
+    s = sub.add_parser("serve", help="a live web page of the station (board state, logbook, charts)")
+    s.add_argument("--port", help="the board's serial port (optional: without it, the logbook alone)")
+    s.add_argument("--baud", type=int, default=115200)
+    s.add_argument("--db", help="the logbook to show")
+    s.add_argument("--listen", default="127.0.0.1", help="address to bind (default 127.0.0.1: this machine only)")
+    s.add_argument("--http-port", type=int, default=8765)
+    s.add_argument("--allow-control", metavar="TOKEN",
+                   help="add tune and bypass buttons; each request must carry this token")
+    s.set_defaults(fn=cmd_serve)
 
     s = sub.add_parser("report", help="per-band table and antenna-health flags from the logbook")
     s.add_argument("--db", required=True)

@@ -235,3 +235,36 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
     plt.close(fig)
     files.append(f)
     return files
+
+
+def station_view(db: str, last: int = 2000) -> dict[str, Any]:
+    """What the live page shows from the logbook: the per-band table with its health
+    flags, each band's SWR after tune over time (the last `last` tunes), and the
+    matched states as the load each one matches (a reflection coefficient against
+    50 ohm, for a Smith chart), from the board's own element values where the
+    logbook has them (else the shipped network's)."""
+    from fmlogic import lnet
+
+    from feedmatch.rf.network import load_network
+
+    book = open_existing(db)
+    rows = book.tunes()
+    banks = _banks(book.banks())
+    book.close()
+    default_bank = load_network(None).firmware_bank()
+    series: dict[str, list] = defaultdict(list)
+    smith: dict[str, list] = defaultdict(list)
+    for r in rows[-last:]:
+        if r["swr_after"] is not None:
+            series[r["band"]].append([r["time"], r["swr_after"], r["outcome"]])
+        if r["outcome"] == LOCKED and r["after_l"] is not None and not r["after_bypass"] and r["freq_hz"]:
+            bank = banks.get(r["board_id"], default_bank)
+            z = lnet.load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),
+                                     int(r["after_shunt"]))
+            if z is not None and z.real > 0:
+                g = (z - 50.0) / (z + 50.0)
+                smith[r["band"]].append([round(g.real, 4), round(g.imag, 4)])
+    return {"tunes": len(rows), "bands": band_table(rows, banks), "series": series, "smith": smith,
+            "lines": report_lines({"tunes": len(rows), "bands": band_table(rows, banks),
+                                   "first": rows[0]["time"] if rows else None,
+                                   "last": rows[-1]["time"] if rows else None})}

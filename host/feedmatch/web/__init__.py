@@ -1,0 +1,1 @@
+"""The live station page (`feedmatch serve`): aiohttp, server-sent events, no CDN."""

@@ -1,0 +1,124 @@
+// The live station page: server-sent events for the box, the logbook view on change.
+"use strict";
+const $ = (id) => document.getElementById(id);
+const COLORS = ["#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2", "#7f7f7f",
+                "#bcbd22", "#17becf"];
+
+function fmt(v, digits) { return (v === null || v === undefined) ? "-" : Number(v).toFixed(digits); }
+
+function showStatus(s) {
+  $("state").textContent = s.state;
+  $("why").textContent = s.why;
+  const r = s.relays || [];
+  $("relays").textContent = r[3] ? "through (bypass)" : `L${r[0]} C${r[1]} ${r[2] === 0 ? "tx" : "ant"}`;
+  $("fwd").textContent = fmt(s.fwd_w, 1);
+  $("ref").textContent = fmt(s.ref_w, 2);
+  $("swr").textContent = s.swr === null ? "no RF" : fmt(s.swr, 2);
+  $("freq").textContent = s.freq_hz ? (s.freq_hz / 1e6).toFixed(4) + " MHz" : "no carrier";
+  $("seq").textContent = s.seq;
+  document.body.dataset.updates = String(Number(document.body.dataset.updates || 0) + 1);
+}
+
+function setLink(text, cls) { const l = $("link"); l.textContent = text; l.className = "pill " + cls; }
+
+function pct(x) { return x === null ? "-" : Math.round(100 * x) + "%"; }
+
+function showView(v) {
+  $("summary").textContent = (v.lines && v.lines[0]) || (v.error ? v.error : "no logbook");
+  const tb = $("bands").querySelector("tbody");
+  tb.innerHTML = "";
+  for (const b of v.bands) {
+    const tr = document.createElement("tr");
+    const st = b.most_used_state ? `L${b.most_used_state[0]} C${b.most_used_state[1]} ${b.most_used_state[2]}` +
+      (b.most_used_values ? ` (${b.most_used_values.l_uh.toFixed(2)} uH, ${Math.round(b.most_used_values.c_pf)} pF)` : "") : "-";
+    const cells = [b.band, b.tunes, pct(b.success_rate), fmt(b.median_swr_after, 2), fmt(b.median_measurements, 0),
+                   pct(b.memory_hit_rate), st, (b.health.flag ? "CHECK: " : "") + b.health.note];
+    cells.forEach((c, i) => {
+      const td = document.createElement("td");
+      td.textContent = c;
+      if (i === 7 && b.health.flag) td.className = "flag";
+      tr.appendChild(td);
+    });
+    tb.appendChild(tr);
+  }
+  drawSeries(v.series || {});
+  drawSmith(v.smith || {});
+}
+
+function drawSeries(series) {
+  const c = $("swrtime"), g = c.getContext("2d");
+  g.clearRect(0, 0, c.width, c.height);
+  const pts = [];
+  Object.values(series).forEach((rows) => rows.forEach((r) => pts.push(Date.parse(r[0]))));
+  const L = 40, R = c.width - 80, T = 10, B = c.height - 25;
+  g.strokeStyle = "#999"; g.strokeRect(L, T, R - L, B - T);
+  const y = (s) => B - (Math.min(Math.max(s, 1), 3) - 1) / 2 * (B - T);
+  g.fillStyle = "#555"; g.font = "11px sans-serif";
+  [1, 1.5, 2, 3].forEach((s) => { g.fillText(String(s), 8, y(s) + 4);
+    g.strokeStyle = s === 1.5 ? "#d62728" : "#eee"; g.beginPath(); g.moveTo(L, y(s)); g.lineTo(R, y(s)); g.stroke(); });
+  if (!pts.length) { g.fillText("no tunes logged yet", L + 10, T + 20); return; }
+  const t0 = Math.min(...pts), t1 = Math.max(...pts) + 1;
+  const x = (t) => L + (t - t0) / (t1 - t0) * (R - L);
+  Object.keys(series).forEach((band, k) => {
+    const col = COLORS[k % COLORS.length];
+    g.fillStyle = col;
+    series[band].forEach((r) => {
+      const px = x(Date.parse(r[0])), py = y(r[1]);
+      if (r[2] === "locked") { g.beginPath(); g.arc(px, py, 3, 0, 2 * Math.PI); g.fill(); }
+      else { g.strokeStyle = col; g.beginPath(); g.moveTo(px - 3, py - 3); g.lineTo(px + 3, py + 3);
+             g.moveTo(px + 3, py - 3); g.lineTo(px - 3, py + 3); g.stroke(); }
+    });
+    g.fillText(band, R + 8, T + 12 + 14 * k);
+  });
+}
+
+function drawSmith(smith) {
+  const c = $("smith"), g = c.getContext("2d");
+  g.clearRect(0, 0, c.width, c.height);
+  const cx = c.width / 2, cy = c.height / 2, rad = c.width / 2 - 12;
+  g.strokeStyle = "#bbb";
+  g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.stroke();
+  g.beginPath(); g.moveTo(cx - rad, cy); g.lineTo(cx + rad, cy); g.stroke();
+  [0.2, 1, 3].forEach((r) => {   // constant-resistance circles
+    const rr = rad / (1 + r); g.beginPath(); g.arc(cx + rad - rr, cy, rr, 0, 2 * Math.PI); g.stroke(); });
+  g.save();                      // constant-reactance arcs, inside the unit circle only
+  g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.clip();
+  [0.5, 1, 2].forEach((xv) => [1, -1].forEach((sgn) => {
+    const rr = rad / xv; g.beginPath(); g.arc(cx + rad, cy - sgn * rr, rr, 0, 2 * Math.PI); g.stroke(); }));
+  g.restore();
+  Object.keys(smith).forEach((band, k) => {
+    g.fillStyle = COLORS[k % COLORS.length];
+    smith[band].forEach((p) => { g.beginPath(); g.arc(cx + p[0] * rad, cy - p[1] * rad, 3, 0, 2 * Math.PI); g.fill(); });
+  });
+}
+
+async function loadView() {
+  try { const r = await fetch("/api/view"); showView(await r.json()); }
+  catch (e) { $("summary").textContent = "logbook view failed: " + e; }
+}
+
+async function control(word, body) {
+  const r = await fetch("/api/" + word, { method: "POST", headers: { "X-Feedmatch-Token": $("token").value,
+    "Content-Type": "application/json" }, body: JSON.stringify(body || {}) });
+  const a = await r.json();
+  $("control-msg").textContent = r.ok ? word + ": ok" : (a.error || r.statusText);
+}
+
+async function start() {
+  const cfg = await (await fetch("/api/config")).json();
+  if (!cfg.board) { $("noboard").hidden = false; $("board-panel").querySelector("table").hidden = true; setLink("logbook only", ""); }
+  if (cfg.control) {
+    $("controls").hidden = false;
+    $("tune").onclick = () => control("tune");
+    $("bypass").onclick = () => control("bypass", { on: true });
+    $("inline").onclick = () => control("bypass", { on: false });
+  }
+  loadView();
+  const es = new EventSource("/api/events");
+  es.addEventListener("status", (e) => { setLink("board", "ok"); showStatus(JSON.parse(e.data)); });
+  es.addEventListener("record", () => loadView());
+  es.addEventListener("logbook", () => loadView());
+  es.addEventListener("board-lost", (e) => setLink("board lost: " + JSON.parse(e.data).error, "bad"));
+  es.onerror = () => setLink("server unreachable", "bad");
+}
+start();

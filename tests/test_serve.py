@@ -1,0 +1,200 @@
+"""The live page in a real headless browser (Debian's chromium, driven through the
+Chrome DevTools Protocol), with the logger and the server sharing one board."""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import io
+import json
+import shutil
+import signal
+import socket
+import subprocess
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+from feedmatch.sim.demo import _wait
+from feedmatch.sim.station import load_station
+from feedmatch.sim.virtual import VirtualStation
+
+from .conftest import BIN, run_cli
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def _free_port() -> int:
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    p = s.getsockname()[1]
+    s.close()
+    return p
+
+
+def _get(url: str, token: str | None = None, method: str = "GET") -> tuple[int, dict]:
+    req = urllib.request.Request(url, method=method, data=b"{}" if method == "POST" else None,
+                                 headers={"X-Feedmatch-Token": token} if token else {})
+    try:
+        with urllib.request.urlopen(req, timeout=10) as r:
+            return r.status, json.loads(r.read())
+    except urllib.error.HTTPError as e:
+        return e.code, json.loads(e.read())
+
+
+class _Page:
+    """One page of a headless chromium, through the DevTools Protocol websocket."""
+
+    def __init__(self, ws):
+        self.ws, self.n = ws, 0
+
+    async def call(self, method: str, **params):
+        self.n += 1
+        await self.ws.send_json({"id": self.n, "method": method, "params": params})
+        while True:
+            msg = await self.ws.receive_json(timeout=30)
+            if msg.get("id") == self.n:
+                if "error" in msg:
+                    raise RuntimeError(msg["error"])
+                return msg["result"]
+
+    async def js(self, expr: str):
+        r = await self.call("Runtime.evaluate", expression=expr, returnByValue=True)
+        return r["result"].get("value")
+
+    async def until(self, expr: str, timeout: float = 20.0):
+        t = time.monotonic() + timeout
+        while time.monotonic() < t:
+            v = await self.js(expr)
+            if v:
+                return v
+            await asyncio.sleep(0.2)
+        raise AssertionError(f"the page never showed: {expr}")
+
+
+def _text(id_: str) -> str:
+    return f"document.getElementById('{id_}').textContent"
+
+
+@pytest.fixture
+def served(tmp_path):
+    """A virtual board, `log` owning its port, and `serve` attached to it."""
+    vs = VirtualStation(load_station(), tmp_path / "flash")
+    pty = vs.start()
+    time.sleep(1.0)
+    db = tmp_path / "station.sqlite"
+    procs = [subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(db)],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)]
+    assert _wait(lambda: db.exists(), 15)
+    http = _free_port()
+    procs.append(subprocess.Popen([str(BIN / "feedmatch"), "serve", "--port", pty, "--db", str(db), "--http-port",
+                                   str(http), "--allow-control", "s3cret-token"],
+                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
+    line = procs[1].stdout.readline()
+    assert "serving the board" in line, procs[1].stderr.read() if procs[1].poll() is not None else line
+    yield vs, f"http://127.0.0.1:{http}/"
+    for p in procs:
+        p.send_signal(signal.SIGTERM)
+    for p in procs:
+        try:
+            p.wait(15)
+        except subprocess.TimeoutExpired:
+            p.kill()
+    vs.stop()
+
+
+def test_control_needs_the_token_and_reads_work(served):
+    vs, url = served
+    assert _get(url + "api/config")[1] == {"board": True, "logbook": True, "control": True}
+    assert _get(url + "api/tune", method="POST")[0] == 403
+    assert _get(url + "api/tune", token="wrong-token", method="POST")[0] == 403
+    code, ans = _get(url + "api/tune", token="s3cret-token", method="POST")
+    assert code == 200 and ans["accepted"] is True
+    assert _wait(lambda: (_get(url + "api/status")[1]["status"] or {}).get("state") == "wait-rf", 10)
+
+
+def test_read_only_by_default_and_logbook_alone(tmp_path):
+    from feedmatch.logbook.store import Logbook
+
+    db = tmp_path / "station.sqlite"
+    b = Logbook(db)
+    b.start_session("hollow-oak-1", "-")
+    b.add({"board_id": "hollow-oak-1", "seq": 1, "freq_hz": 7.1e6, "swr_before": 3.0, "swr_after": 1.2,
+           "outcome": "locked", "n": 5, "ms": 400, "after": [101, 94, 0, 0]})
+    b.close()
+    http = _free_port()
+    p = subprocess.Popen([str(BIN / "feedmatch"), "serve", "--db", str(db), "--http-port", str(http)],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        assert "read-only" in p.stdout.readline()
+        url = f"http://127.0.0.1:{http}/"
+        assert _get(url + "api/config")[1] == {"board": False, "logbook": True, "control": False}
+        assert _get(url + "api/tune", token="anything", method="POST")[0] == 403
+        v = _get(url + "api/view")[1]
+        assert v["tunes"] == 1 and v["bands"][0]["band"] == "40m" and len(v["smith"]["40m"]) == 1
+        # The matched state as a load on the Smith chart: inside the unit circle.
+        g = v["smith"]["40m"][0]
+        assert g[0] ** 2 + g[1] ** 2 < 1.0
+    finally:
+        p.send_signal(signal.SIGTERM)
+        p.wait(15)
+    assert run_cli("serve", "--http-port", "8").returncode == 2  # neither a board nor a logbook
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Debian's chromium is not installed (`make test` installs it "
+                    "where it may run apt-get)")
+def test_the_page_in_a_real_browser_shows_the_box_and_follows_a_tune(served, tmp_path):
+    vs, url = served
+    prof = tmp_path / "chromium-profile"
+    br = subprocess.Popen([CHROMIUM, "--headless=new", "--no-sandbox", "--disable-gpu", "--no-first-run",
+                           "--remote-debugging-port=0", f"--user-data-dir={prof}", "--window-size=1200,1000",
+                           "about:blank"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        port_file = prof / "DevToolsActivePort"
+        assert _wait(lambda: port_file.exists() and port_file.read_text().strip(), 30), "chromium did not start"
+        dport = int(port_file.read_text().split()[0])
+        shot = asyncio.run(_drive(dport, url, vs))
+    finally:
+        br.kill()
+        br.wait(10)
+    # The screenshot is a real rendering: many distinct colours, not a blank page.
+    import matplotlib.image as mpimg
+    import numpy as np
+
+    im = mpimg.imread(io.BytesIO(shot), format="png")
+    assert im.shape[0] > 500 and im.shape[1] > 800
+    rgb = (im[..., :3] * 255).astype(int)
+    assert len(np.unique(rgb.reshape(-1, 3), axis=0)) > 50 and rgb.std() > 20
+    Path(tmp_path / "page.png").write_bytes(shot)
+
+
+async def _drive(dport: int, url: str, vs) -> bytes:
+    import aiohttp
+
+    async with aiohttp.ClientSession() as s:
+        async with s.get(f"http://127.0.0.1:{dport}/json/list") as r:
+            targets = await r.json()
+        ws_url = [t for t in targets if t["type"] == "page"][0]["webSocketDebuggerUrl"]
+        async with s.ws_connect(ws_url, max_msg_size=0) as ws:
+            page = _Page(ws)
+            await page.call("Page.enable")
+            await page.call("Page.navigate", url=url)
+            # The board's values arrive by server-sent events.
+            await page.until(f"{_text('state')} === 'wait-rf' || {_text('state')} === 'through'")
+            assert await page.js(_text("relays")) != "-"
+            assert "board" in await page.js(_text("link"))
+            before = int(await page.js(_text("seq")))
+            # A tune on the virtual board: the page follows without a reload.
+            vs.key(10.0, 14.2e6)
+            await page.until(f"{_text('state')} === 'locked'", timeout=30)
+            await page.until(f"Number({_text('seq')}) > {before}")
+            swr = float(await page.js(_text("swr")))
+            assert 1.0 <= swr <= 1.5
+            assert (await page.js(_text("freq"))).startswith("14.2")
+            # The logbook table (written by `log`) shows the tune's band.
+            await page.until("[...document.querySelectorAll('#bands tbody td:first-child')]"
+                             ".some(td => td.textContent === '20m')", timeout=30)
+            vs.key(0.0)
+            shot = await page.call("Page.captureScreenshot", format="png")
+            return base64.b64decode(shot["data"])
