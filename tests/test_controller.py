@@ -404,10 +404,15 @@ def test_time_limit_and_watchdog_inside_a_long_search(tmp_path):
     assert sum(feeds_in_search) > steps
 
 
+_SEEN: list = []  # the frames _ask read, events included
+
+
 def _ask(b, ctl, seq, word, args):
     b.inbox += link.encode("Q", seq, word, args)
     run(ctl, 5)
-    return {f[1]: f for f in _frames(b) if f[0] == "A"}[seq]
+    fr = _frames(b)
+    _SEEN[:] = fr
+    return {f[1]: f for f in fr if f[0] == "A"}[seq]
 
 
 def test_preset_switches_cold_and_the_first_carrier_confirms_it(tmp_path):
@@ -425,9 +430,12 @@ def test_preset_switches_cold_and_the_first_carrier_confirms_it(tmp_path):
     assert word == "ok" and ans["preset"] is True
     assert tuple(ans["relays"][:3]) == tuple(stored[:3]) and ans["relays"][3] == 0
     assert m.violations == []
-    # The first carrier needs one reading, and the record says it was a preset.
+    # The preset itself is a record (no reading: no RF) ...
+    pre = _records(_SEEN)[-1]
+    assert pre["outcome"] == "preset" and pre["n"] == 0 and pre["rig_mode"] == "CW"
+    # ... and the first carrier needs one reading; its record says it followed a preset.
     m.key(10, 7.1e6)
-    assert run(ctl, until=lambda c: c.rec.seq == 3)
+    assert run(ctl, until=lambda c: c.rec.seq == 4)
     rec = _records(_frames(b))[-1]
     assert rec["preset"] is True and rec["n"] == 1 and rec["outcome"] == "locked" and rec["mem"] is True
     assert rec["rig_hz"] == 7.1e6 and rec["rig_mode"] == "CW"
@@ -453,7 +461,7 @@ def test_a_preset_confirmed_at_operating_power_switches_nothing(tmp_path):
     assert _ask(b, ctl, 21, "preset", {"freq_hz": 7.1e6})[3]["preset"] is True
     sets = b.sets
     m.key(100, 7.1e6)  # straight to operating power: read, never switch
-    assert run(ctl, until=lambda c: c.rec.seq == 2)
+    assert run(ctl, until=lambda c: c.rec.seq == 3)
     rec = _records(_frames(b))[-1]
     assert rec["preset"] is True and rec["strategy"] == "preset" and rec["n"] == 1
     assert b.sets == sets and m.violations == []

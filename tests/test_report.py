@@ -177,3 +177,13 @@ def test_national_60m_channels_count_as_60m(mhz, band):
     from feedmatch.rf.bands import band_of
 
     assert band_of(mhz * 1e6) == band
+
+
+def test_presets_are_counted_apart_from_tunes():
+    pre = dict(_row(1, 7.1e6, 101, 94), outcome="preset", measurements=0, preset=0)
+    conf = dict(_row(2, 7.1e6, 101, 94), preset=1, measurements=1)
+    searched = dict(_row(3, 7.1e6, 101, 94), preset=1, measurements=6)
+    plain = dict(_row(4, 7.1e6, 101, 94), preset=0)
+    b = band_table([dict(pre, preset=0), conf, dict(pre, seq=5), searched, plain])[0]
+    assert b["tunes"] == 3 and b["presets"] == 2 and b["presets_confirmed"] == 1
+    assert b["median_measurements"] == 1

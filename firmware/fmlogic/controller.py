@@ -402,12 +402,17 @@ class Controller:
                           "relays": self._state_list()}
         if not self._switch((hint[0], hint[1], hint[2]), False):
             return False, {"why": "hot", "msg": "power above hot-switch limit"}
+        before = self._state_list()
         self.preset_f = float(f)
         self.manual = False
         self.freq = float(f)
         self.lock_bin = self.mem.bin_of(f)
         self.mem.set_last(f, self.relays, False)
         self.mem.flush()
+        # Each preset is a record too (no reading: there is no RF), so the
+        # logbook holds every one, confirmed by a carrier or not.
+        self._record(float(f), before, self._state_list(), -1.0, hint[3], 0, 0, "preset",
+                     "preset from memory", True, "preset")
         self._set_state(WAIT_RF, "preset from memory for %.4f MHz" % (f / 1e6))
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
                       "bin_hz": self.mem.bin_hz}

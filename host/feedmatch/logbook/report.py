@@ -18,6 +18,7 @@ from feedmatch.rf import bands
 # more than these (common practice for trend alarms: a fixed margin over a
 # per-band baseline, not a global threshold).
 SWR_DRIFT = 0.25
+PRESET = "preset"  # the outcome of a preset record (feedmatch follow)
 STATE_DRIFT_FRACTION = 0.06
 MIN_TUNES_FOR_HEALTH = 4
 
@@ -65,6 +66,8 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
     out = []
     for name in sorted(by, key=lambda n: order.index(n) if n in order else 99):
         rs = by[name]
+        presets = [r for r in rs if r["outcome"] == PRESET]
+        rs = [r for r in rs if r["outcome"] != PRESET]  # a preset is not a tune: no reading was taken
         ok = [r for r in rs if r["outcome"] == LOCKED]
         tuned = [r for r in rs if r["outcome"] not in ("refused",)]
         states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
@@ -83,7 +86,7 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
             "most_used_state": ([top[0], top[1], "tx" if top[2] == 0 else "ant"] if top else None),
             "most_used_values": vals,
             "memory_hit_rate": (sum(1 for r in tuned if r["memory_hit"]) / len(tuned)) if tuned else None,
-            "presets": sum(1 for r in rs if _get(r, "preset")),
+            "presets": len(presets),
             "presets_confirmed": sum(1 for r in rs if _get(r, "preset") and r["outcome"] == LOCKED
                                      and r["measurements"] == 1),
             "health": health(ok, bank=bank),
@@ -138,7 +141,8 @@ def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     rows = book.tunes(since)
     banks = _banks(book.banks())
     book.close()
-    return {"tunes": len(rows), "bands": band_table(rows, banks), "rows": rows,
+    n = sum(1 for r in rows if r["outcome"] != PRESET)
+    return {"tunes": n, "bands": band_table(rows, banks), "rows": rows,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 
@@ -192,6 +196,8 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
     by = defaultdict(list)
     missed = []     # tunes that ended without a lock: they belong in the picture too
     for r in rows:
+        if r["outcome"] == PRESET:
+            continue  # not a tune: no reading was taken
         if r["outcome"] == LOCKED and r["swr_after"] is not None:
             by[r["band"]].append(r)
         else:
@@ -255,6 +261,8 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
     series: dict[str, list] = defaultdict(list)
     smith: dict[str, list] = defaultdict(list)
     for r in rows[-last:]:
+        if r["outcome"] == PRESET:
+            continue  # no reading was taken
         if r["swr_after"] is not None:
             series[r["band"]].append([r["time"], r["swr_after"], r["outcome"]])
         if r["outcome"] == LOCKED and r["after_l"] is not None and not r["after_bypass"] and r["freq_hz"]:
@@ -264,7 +272,8 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
             if z is not None and z.real > 0:
                 g = (z - 50.0) / (z + 50.0)
                 smith[r["band"]].append([round(g.real, 4), round(g.imag, 4)])
-    return {"tunes": len(rows), "bands": band_table(rows, banks), "series": series, "smith": smith,
-            "lines": report_lines({"tunes": len(rows), "bands": band_table(rows, banks),
+    n = sum(1 for r in rows if r["outcome"] != PRESET)
+    return {"tunes": n, "bands": band_table(rows, banks), "series": series, "smith": smith,
+            "lines": report_lines({"tunes": n, "bands": band_table(rows, banks),
                                    "first": rows[0]["time"] if rows else None,
                                    "last": rows[-1]["time"] if rows else None})}
