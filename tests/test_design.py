@@ -159,3 +159,13 @@ def test_design_bad_input(argv, words, tmp_path):
     argv = [a.replace("x.txt", str(tmp_path / "x.txt")) for a in argv]
     r = run_cli("design", "--antenna", str(DATA / "antennas" / "hollow_oak_closed_form.json"), *argv, timeout=60)
     assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr
+
+
+def test_a_fixed_coil_adds_its_reactance_and_loss_to_the_load():
+    # A series coil: X = 2 pi f L, R = X / Q (the definition of Q; common practice).
+    from feedmatch.sim.design import with_coil
+
+    ld = Loads(np.array([3.6e6]), np.array([0]), np.array([[complex(12, -600)]]), ["80m"])
+    z = with_coil(ld, 20.0, 200.0).z[0, 0]
+    x = 2 * math.pi * 3.6e6 * 20e-6
+    assert z.imag == pytest.approx(-600 + x) and z.real == pytest.approx(12 + x / 200)

@@ -56,9 +56,11 @@ def run_design(a: argparse.Namespace) -> int:
     p.close()
     prop = res["proposal"]
     if a.out:
+        coil = (f"; with a fixed {res['coil_uh']:g} uH coil in series with the antenna (outside the switched "
+                "network)") if res["coil_uh"] else ""
         doc = prop.to_json() | {"name": prop.name, "comment": (
             f"feedmatch design for {ant.describe()}: {', '.join(names)}, {a.power:g} W, tolerance "
-            f"{100 * a.tolerance:g} %, design SWR {a.design_swr:g}")}
+            f"{100 * a.tolerance:g} %, design SWR {a.design_swr:g}{coil}")}
         with open(a.out, "w", encoding="utf-8") as fh:
             json.dump(doc, fh, indent=2)
             fh.write("\n")
@@ -88,6 +90,7 @@ def _summary(res: dict[str, Any], spec: Any, unc: dict[str, float], relay_count)
             "relays": relay_count(prop), "relays_now": relay_count(cur), "kept_current": res["kept_current"],
             "worse_bands": res["worse_bands"], "design_s": round(res["design_s"], 2),
             "evaluations": res["evaluations"], "power_w": spec.power_w, "tolerance": spec.tolerance,
+            "fixed_coil_uh": res["coil_uh"], "fixed_coil_tried": res["coil_tried"],
             "design_swr": spec.design_swr, "boxes": spec.boxes, "rating_margin": spec.rating_margin}
 
 
@@ -119,6 +122,11 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
     out.append("proposed: L " + " ".join(f"{v:g}" for v in p["inductors_uh"]) + f" uH (up to "
                f"{sum(p['inductors_uh']):.3g} uH); C " + " ".join(f"{v:g}" for v in p["capacitors_pf"]) +
                f" pF (up to {sum(p['capacitors_pf']):.4g} pF)")
+    if s["fixed_coil_uh"]:
+        out.append(f"fixed extra element: a {s['fixed_coil_uh']:g} uH coil in series with the antenna, between the "
+                   "box's antenna port and the radiator (part Lfix below); the figures above include it")
+    elif s["fixed_coil_tried"]:
+        out.append("a fixed series coil at the antenna was tried for the poorly covered bands: it does not pay")
     out.append(f"parts, rated {s['rating_margin']:g} x the worst stress computed at {s['power_w']:g} W:")
     for q in s["parts"]:
         if q["unit"] == "pF":

@@ -36,6 +36,9 @@ from feedmatch.rf.network import Network, StateTable, evaluate, series_table, sh
 L0_UH = (0.02, 2.0)
 C0_PF = (1.0, 100.0)
 RATIO = (1.6, 2.1)
+COIL_UH = (0.5, 60.0)  # a fixed series coil at the antenna, when one pays
+COIL_WHEN_BELOW = 0.9  # tried when some band is covered less than this by the banks alone
+COIL_MUST_GAIN = 0.02  # and kept only when it adds this much mean coverage, losing no band
 COARSE_POINTS = 31    # frequencies per band while optimising (the quick evaluation makes it cheap)
 RATING_MARGIN = 2.0   # parts rated twice the worst computed stress (hardware_notes/ratings.md; common practice)
 UNCERTAIN = 0.05      # see feedmatch.rf.nec.CONVERGENCE_WARN
@@ -63,6 +66,7 @@ class DesignSpec:
     rating_margin: float = RATING_MARGIN
     maxiter: int = 25
     uncertainty: dict[str, float] = field(default_factory=dict)  # band -> relative |Z| change
+    fixed_coil: bool = True  # try a fixed series coil at the antenna where a band stays poorly covered
 
 
 def binary_bank(l0_uh: float, r_l: float, c0_pf: float, r_c: float, spec: DesignSpec, name: str = "") -> Network:
@@ -92,6 +96,16 @@ class Loads:
     band: np.ndarray          # (n,) band index
     z: np.ndarray             # (n, v) impedances, v variants (column 0 the model's own)
     names: list[str]
+
+
+def with_coil(loads: Loads, l_uh: float, q: float | None) -> Loads:
+    """The loads the box sees through a fixed series coil of l_uh (Q q) at the antenna:
+    Z + omega L / Q + j omega L (a base-loading coil, outside the switched network)."""
+    if l_uh <= 0:
+        return loads
+    x = 2 * np.pi * loads.f_hz * l_uh * 1e-6
+    r = x / q if q else 0.0
+    return replace(loads, z=loads.z + (r + 1j * x)[:, None])
 
 
 def make_loads(antenna: Any, names: list[str], points: int, uncertainty: dict[str, float]) -> Loads:
@@ -237,7 +251,8 @@ def _objective_factory(spec: DesignSpec, loads: Loads, floor: np.ndarray | None)
 
     def cost(x: np.ndarray) -> float:
         net = binary_bank(10 ** x[0], x[2], 10 ** x[1], x[3], spec)
-        soft = _quick_cover(net, spec, loads, soft=True)
+        ld = with_coil(loads, 10 ** x[4], spec.inductor_q) if len(x) > 4 else loads
+        soft = _quick_cover(net, spec, ld, soft=True)
         cov = np.array([soft[m].mean() for m in masks])
         c = -cov.mean()
         if floor is not None:
@@ -263,7 +278,8 @@ def _start_point(net: Network) -> np.ndarray | None:
     return np.clip(x, lo, hi)
 
 
-def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float) -> dict[str, Any]:
+def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float,
+               coil_uh: float = 0.0) -> dict[str, Any]:
     """Per band: covered share on drawn boxes and on the nominal bank, worst best
     SWR, network loss at the matched state, and the worst stresses at power_w."""
 
@@ -276,12 +292,18 @@ def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float) -> 
     loss_db = np.full(len(loads.f_hz), np.nan)
     v_pk = np.zeros(len(loads.f_hz))
     i_rms = np.zeros(len(loads.f_hz))
+    p_load = np.zeros(len(loads.f_hz))
     states = []
     for i, f in enumerate(loads.f_hz):
         gm = st.gamma_mag(float(f), complex(loads.z[i, 0]))
         sh, lc, cc = np.unravel_index(int(np.argmin(gm)), gm.shape)
         e = evaluate(net, float(f), complex(loads.z[i, 0]), int(lc), int(cc), int(sh), power_w)
-        loss_db[i] = -10 * math.log10(max(float(e["efficiency"]), 1e-12))
+        eff = float(e["efficiency"])
+        if coil_uh > 0:  # the coil's own loss: its resistance in series with the antenna's
+            rc = 2 * math.pi * float(f) * coil_uh * 1e-6 / (spec.inductor_q or math.inf)
+            eff *= max(loads.z[i, 0].real - rc, 1e-9) / loads.z[i, 0].real
+        loss_db[i] = -10 * math.log10(max(eff, 1e-12))
+        p_load[i] = float(e["p_load_w"])
         v_pk[i] = float(e["v_cap_rms"]) * math.sqrt(2)
         i_rms[i] = float(e["i_ind_rms"])
         states.append((int(lc), int(cc), int(sh)))
@@ -300,11 +322,13 @@ def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float) -> 
             "i_ind_rms_max": float(i_rms[m].max()),
         })
     return {"bands": rows, "states": states, "v_cap_peak": v_pk, "i_ind_rms": i_rms, "loss_db": loss_db,
+            "p_load_w": p_load, "z_seen": loads.z[:, 0],
             "best_gamma_nominal": nom[:, 0], "best_gamma_boxes_worst":
                 np.max([g[:, 0] for g in per_box], axis=0) if per_box else nom[:, 0]}
 
 
-def parts_list(net: Network, score: dict[str, Any], loads: Loads, margin: float) -> list[dict[str, Any]]:
+def parts_list(net: Network, score: dict[str, Any], loads: Loads, margin: float,
+               coil_uh: float = 0.0) -> list[dict[str, Any]]:
     """Each element with what it must carry: a capacitor the peak voltage across
     the shunt arm, an inductor the RMS current of the series arm and its own
     peak voltage (I * omega * L * sqrt 2), each the worst over the grid states
@@ -320,6 +344,14 @@ def parts_list(net: Network, score: dict[str, Any], loads: Loads, margin: float)
         vl = max((score["i_ind_rms"][i] * 2 * math.pi * loads.f_hz[i] * v * 1e-6 * math.sqrt(2) for i in idx),
                  default=0.0)
         out.append({"part": f"L{k}", "value": v, "unit": "uH", "in_use": len(idx), "i_rms": cur,
+                    "rated_i_rms": margin * cur, "v_peak": vl, "rated_v_peak": margin * vl})
+    if coil_uh > 0:
+        # The fixed coil carries the antenna current: power into the load over its resistance.
+        i_ant = [math.sqrt(max(p, 0.0) / max(z.real, 1e-3)) for p, z in zip(score["p_load_w"], score["z_seen"])]
+        cur = max(i_ant, default=0.0)
+        vl = max((i * 2 * math.pi * f * coil_uh * 1e-6 * math.sqrt(2) for i, f in zip(i_ant, loads.f_hz)),
+                 default=0.0)
+        out.append({"part": "Lfix", "value": coil_uh, "unit": "uH", "in_use": len(loads.f_hz), "i_rms": cur,
                     "rated_i_rms": margin * cur, "v_peak": vl, "rated_v_peak": margin * vl})
     return out
 
@@ -375,9 +407,33 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
     res = differential_evolution(cost, bounds, x0=x0, seed=spec.seed, maxiter=spec.maxiter, popsize=6,
                                  tol=1e-4, polish=False, init="sobol", callback=cb)
     x = res.x
-    prop = binary_bank(10 ** x[0], x[2], 10 ** x[1], x[3], spec,
-                       name=f"designed: {spec.n_l}+{spec.n_c} relays for {', '.join(spec.band_names)}")
+    nfev = int(res.nfev)
+    name = f"designed: {spec.n_l}+{spec.n_c} relays for {', '.join(spec.band_names)}"
+    prop = binary_bank(10 ** x[0], x[2], 10 ** x[1], x[3], spec, name=name)
     s_prop = score_bank(prop, spec, fine, spec.power_w)
+    coil_uh, coil_tried = 0.0, False
+    covs = [b["coverage"] for b in s_prop["bands"]]
+    if spec.fixed_coil and min(covs) < COIL_WHEN_BELOW:
+        # Where the banks alone leave a band short (a short vertical on a low band needs
+        # more inductance than a binary bank holds), a fixed coil may pay: a second
+        # search with its value as a fifth variable, kept only if it gains overall
+        # and loses no band.
+        coil_tried = True
+        gen[0] = 0
+        res2 = differential_evolution(cost, bounds + [tuple(math.log10(v) for v in COIL_UH)],
+                                      x0=np.append(x, math.log10(COIL_UH[0])), seed=spec.seed,
+                                      maxiter=spec.maxiter, popsize=6, tol=1e-4, polish=False, init="sobol",
+                                      callback=cb)
+        nfev += int(res2.nfev)
+        x2 = res2.x
+        net2 = binary_bank(10 ** x2[0], x2[2], 10 ** x2[1], x2[3], spec, name=name)
+        s2 = score_bank(net2, spec, with_coil(fine, 10 ** x2[4], spec.inductor_q), spec.power_w, 10 ** x2[4])
+        covs2 = [b["coverage"] for b in s2["bands"]]
+        if np.mean(covs2) >= np.mean(covs) + COIL_MUST_GAIN and all(a >= b - 1e-9 for a, b in zip(covs2, covs)):
+            coil_uh = float(f"{10 ** x2[4]:.3g}")
+            x, prop, s_prop = x2, net2, score_bank(net2, spec, with_coil(fine, coil_uh, spec.inductor_q),
+                                                   spec.power_w, coil_uh)
+            prop.extra["fixed_series_coil_uh"] = coil_uh
     s_cur = score_bank(cur, spec, fine, spec.power_w)
     # Never propose a bank the builder would lose by: when the current bank of the
     # same size covers a band better, keep it and say so.
@@ -386,6 +442,7 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
     candidate, s_candidate = prop, s_prop
     if kept_current:
         prop, s_prop = replace(cur, name=cur.name or "current bank"), s_cur
+        coil_uh = 0.0
     # Loss compared like with like: over the frequencies both banks match.
     gd = _gamma_of(spec.design_swr)
     both = (s_prop["best_gamma_nominal"] <= gd) & (s_cur["best_gamma_nominal"] <= gd)
@@ -395,9 +452,9 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
         rc["loss_db_common"] = float(np.median(s_cur["loss_db"][m])) if m.any() else None
     return {
         "proposal": prop, "current": cur, "score": s_prop, "score_current": s_cur, "loads": fine,
-        "parts": parts_list(prop, s_prop, fine, spec.rating_margin),
+        "parts": parts_list(prop, s_prop, fine, spec.rating_margin, coil_uh),
         "kept_current": kept_current, "worse_bands": worse, "candidate": candidate,
-        "score_candidate": s_candidate, "evaluations": int(res.nfev),
+        "score_candidate": s_candidate, "evaluations": nfev, "coil_uh": coil_uh, "coil_tried": coil_tried,
         "design_s": time.perf_counter() - t0, "x": [float(v) for v in x],
     }
 
