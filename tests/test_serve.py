@@ -192,6 +192,7 @@ async def _drive(dport: int, url: str, vs) -> bytes:
             swr = float(await page.js(_text("swr")))
             assert 1.0 <= swr <= 1.5
             assert (await page.js(_text("freq"))).startswith("14.2")
+            assert " uH, " in await page.js(_text("relays"))  # the board's own values beside the codes
             # The logbook table (written by `log`) shows the tune's band.
             await page.until("[...document.querySelectorAll('#bands tbody td:first-child')]"
                              ".some(td => td.textContent === '20m')", timeout=30)

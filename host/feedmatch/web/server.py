@@ -38,6 +38,7 @@ class BoardWatch:
         self.hub = None
         self.link: BoardLink | None = None
         self.lock = threading.Lock()  # one request at a time on the link
+        self.bank = None  # the board's element values, for uH and pF beside the codes
         self._th = threading.Thread(target=self._loop, daemon=True)
 
     def start(self) -> BoardWatch:
@@ -60,6 +61,7 @@ class BoardWatch:
             ln.stop_event = self.stop
             ln.open()
             self.link = ln
+            self.bank = _bank(ln)
         return self.link
 
     def request(self, word: str, args: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -76,6 +78,9 @@ class BoardWatch:
                     ln.pump()
                     recs = [o for w, o in list(ln.events) if w == "record"]
                     ln.events.clear()
+                r, bank = st.get("relays") or [], self.bank
+                if bank is not None and len(r) == 4 and 0 <= r[0] <= bank.l_max and 0 <= r[1] <= bank.c_max:
+                    st["l_uh"], st["c_pf"] = round(bank.lv[r[0]], 3), round(bank.cv[r[1]], 1)
                 self.status, self.error = st, ""
                 for r in recs:
                     self.publish("record", r)
@@ -94,6 +99,17 @@ class BoardWatch:
                 self.stop.wait(1.5)
                 continue
             self.stop.wait(self.period_s)
+
+
+def _bank(ln: BoardLink):
+    """The board's firmware Bank from its config, or None when it does not say."""
+    from fmlogic.config import bank_from
+
+    m = ln.element_sections()
+    try:
+        return bank_from(m) if m else None
+    except (KeyError, TypeError, ValueError):
+        return None
 
 
 class Station:

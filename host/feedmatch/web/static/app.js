@@ -10,7 +10,8 @@ function showStatus(s) {
   $("state").textContent = s.state;
   $("why").textContent = s.why;
   const r = s.relays || [];
-  $("relays").textContent = r[3] ? "through (bypass)" : `L${r[0]} C${r[1]} ${r[2] === 0 ? "tx" : "ant"}`;
+  $("relays").textContent = r[3] ? "through (bypass)" : `L${r[0]} C${r[1]} ${r[2] === 0 ? "tx" : "ant"}` +
+    (s.l_uh !== undefined ? ` (${s.l_uh.toFixed(2)} uH, ${Math.round(s.c_pf)} pF)` : "");
   $("fwd").textContent = fmt(s.fwd_w, 1);
   $("ref").textContent = fmt(s.ref_w, 2);
   $("swr").textContent = s.swr === null ? "no RF" : fmt(s.swr, 2);
