@@ -169,3 +169,13 @@ def test_a_fixed_coil_adds_its_reactance_and_loss_to_the_load():
     z = with_coil(ld, 20.0, 200.0).z[0, 0]
     x = 2 * math.pi * 3.6e6 * 20e-6
     assert z.imag == pytest.approx(-600 + x) and z.real == pytest.approx(12 + x / 200)
+
+
+@pytest.mark.parametrize("v,want", [(8.633, 8.2), (16.61, 16.0), (437.9, 430.0), (118.3, 120.0), (95.0, 91.0),
+                                    (97.0, 100.0)])
+def test_capacitors_snap_to_the_e24_series(v, want):
+    # The E24 preferred numbers of IEC 60063 (from memory: 1.0 1.1 1.2 1.3 1.5 1.6 1.8 2.0 2.2 2.4 2.7
+    # 3.0 3.3 3.6 3.9 4.3 4.7 5.1 5.6 6.2 6.8 7.5 8.2 9.1); the nearest on a log scale.
+    from feedmatch.sim.design import e24
+
+    assert e24(v) == pytest.approx(want)

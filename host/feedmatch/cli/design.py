@@ -91,6 +91,8 @@ def _summary(res: dict[str, Any], spec: Any, unc: dict[str, float], relay_count)
             "worse_bands": res["worse_bands"], "design_s": round(res["design_s"], 2),
             "evaluations": res["evaluations"], "power_w": spec.power_w, "tolerance": spec.tolerance,
             "fixed_coil_uh": res["coil_uh"], "fixed_coil_tried": res["coil_tried"],
+            "capacitors_e24": res["proposal"].extra.get("capacitors") == "E24",
+            "e24_alternative": None if res["kept_current"] else res["e24_alternative"],
             "design_swr": spec.design_swr, "boxes": spec.boxes, "rating_margin": spec.rating_margin}
 
 
@@ -122,6 +124,13 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
     out.append("proposed: L " + " ".join(f"{v:g}" for v in p["inductors_uh"]) + f" uH (up to "
                f"{sum(p['inductors_uh']):.3g} uH); C " + " ".join(f"{v:g}" for v in p["capacitors_pf"]) +
                f" pF (up to {sum(p['capacitors_pf']):.4g} pF)")
+    if s["capacitors_e24"]:
+        out.append("capacitors are E24 values (IEC 60063), scored as such; inductors are wound to value")
+    alt = s["e24_alternative"]
+    if alt:
+        out.append("with the nearest E24 capacitors (" + " ".join(f"{v:g}" for v in alt["capacitors_pf"]) +
+                   " pF) it would cover " + ", ".join(f"{k} {100 * v:.1f}%" for k, v in alt["coverage"].items()) +
+                   "; pair or trim parts to keep the values above")
     if s["fixed_coil_uh"]:
         out.append(f"fixed extra element: a {s['fixed_coil_uh']:g} uH coil in series with the antenna, between the "
                    "box's antenna port and the radiator (part Lfix below); the figures above include it")

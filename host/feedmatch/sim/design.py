@@ -69,6 +69,20 @@ class DesignSpec:
     fixed_coil: bool = True  # try a fixed series coil at the antenna where a band stays poorly covered
 
 
+# The E24 preferred numbers (IEC 60063), the series capacitors are sold in.
+E24 = (1.0, 1.1, 1.2, 1.3, 1.5, 1.6, 1.8, 2.0, 2.2, 2.4, 2.7, 3.0, 3.3, 3.6, 3.9, 4.3, 4.7, 5.1, 5.6, 6.2, 6.8,
+       7.5, 8.2, 9.1)
+
+
+def e24(v: float) -> float:
+    """The E24 value nearest to v (on a log scale: the series is geometric)."""
+    if v <= 0:
+        return v
+    dec = 10 ** math.floor(math.log10(v))
+    cands = [m * dec for m in E24] + [10 * dec]
+    return float(f"{min(cands, key=lambda c: abs(math.log(c / v))):.3g}")
+
+
 def binary_bank(l0_uh: float, r_l: float, c0_pf: float, r_c: float, spec: DesignSpec, name: str = "") -> Network:
     """A network of N+N weighted elements: L0*rL**k uH and C0*rC**k pF."""
     ind = [float(f"{l0_uh * r_l ** k:.4g}") for k in range(spec.n_l)]
@@ -434,6 +448,19 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
             x, prop, s_prop = x2, net2, score_bank(net2, spec, with_coil(fine, coil_uh, spec.inductor_q),
                                                    spec.power_w, coil_uh)
             prop.extra["fixed_series_coil_uh"] = coil_uh
+    # Capacitors as a buyer finds them: each snapped to E24, kept when no band
+    # loses more than half a point of coverage by it.
+    snapped = replace(prop, capacitors_pf=[e24(v) for v in prop.capacitors_pf], extra=dict(prop.extra))
+    e24_cover = None
+    if snapped.capacitors_pf != prop.capacitors_pf:
+        ld = with_coil(fine, coil_uh, spec.inductor_q)
+        s_snap = score_bank(snapped, spec, ld, spec.power_w, coil_uh)
+        e24_cover = {"capacitors_pf": snapped.capacitors_pf,
+                     "coverage": {b["band"]: b["coverage"] for b in s_snap["bands"]}}
+        if all(a["coverage"] >= b["coverage"] - 0.005 for a, b in zip(s_snap["bands"], s_prop["bands"])):
+            prop, s_prop = snapped, s_snap
+            prop.extra["capacitors"] = "E24"
+            e24_cover = None
     s_cur = score_bank(cur, spec, fine, spec.power_w)
     # Never propose a bank the builder would lose by: when the current bank of the
     # same size covers a band better, keep it and say so.
@@ -454,7 +481,8 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
         "proposal": prop, "current": cur, "score": s_prop, "score_current": s_cur, "loads": fine,
         "parts": parts_list(prop, s_prop, fine, spec.rating_margin, coil_uh),
         "kept_current": kept_current, "worse_bands": worse, "candidate": candidate,
-        "score_candidate": s_candidate, "evaluations": nfev, "coil_uh": coil_uh, "coil_tried": coil_tried,
+        "score_candidate": s_candidate, "evaluations": nfev, "e24_alternative": e24_cover,
+        "coil_uh": coil_uh, "coil_tried": coil_tried,
         "design_s": time.perf_counter() - t0, "x": [float(v) for v in x],
     }
 
