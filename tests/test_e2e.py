@@ -346,3 +346,31 @@ def test_commands_attach_to_the_logger_that_owns_the_port(tmp_path):
     seqs = [r["seq"] for r in _rows(str(db))]
     assert seqs == sorted(set(seqs)) and len(seqs) >= 2  # the boot tune and the asked one, once each
     assert json.loads(out)["added"] == len(seqs)
+
+
+def test_a_killed_owner_leaves_no_one_locked_out(tmp_path):
+    # SIGKILL gives the owner no chance to remove its socket: the next commands see a
+    # dead hub, open the port themselves, and a new logger takes over.
+    from feedmatch.board.hub import hub_alive, hub_path
+
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--dir", str(tmp_path / "flash")],
+                         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    procs = []
+    try:
+        pty = p.stdout.readline().strip()
+        for _ in range(2):
+            lg = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(tmp_path / "s.sqlite")],
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            procs.append(lg)
+            assert _wait(lambda: hub_alive(hub_path(pty)), 15)
+            lg.send_signal(signal.SIGKILL)
+            lg.wait(10)
+            assert hub_path(pty).exists() and not hub_alive(hub_path(pty))  # stale
+            r = run_cli("status", "--port", pty)
+            assert r.returncode == 0 and "board hollow-oak-1" in r.stdout, r.stderr
+    finally:
+        for q in procs:
+            if q.poll() is None:
+                q.kill()
+        p.send_signal(signal.SIGINT)
+        p.wait(10)
