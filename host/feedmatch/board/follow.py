@@ -53,6 +53,7 @@ class Follower:
         self.unkey_failures = 0
         self.stop = threading.Event()
         self.hub = None
+        self.bank = None  # the board's element values, for uH and pF beside the codes
 
     def close(self) -> None:
         if self.link is not None:
@@ -76,6 +77,7 @@ class Follower:
                 mem = ln.request("cfg-get", {"section": "memory"})["value"]
                 self.bin_hz = float(mem.get("bin_hz", self.bin_hz))
                 self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
+                self.bank = ln.bank()
             except (LinkError, KeyError, TypeError, ValueError):
                 ln.close()
                 raise
@@ -157,7 +159,10 @@ class Follower:
         if ans.get("preset"):
             self.presets += 1
             r = ans.get("relays") or [0, 0, 0, 0]
-            self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'} from memory "
+            b = self.bank
+            vals = (f" ({b.lv[r[0]]:.2f} uH, {b.cv[r[1]]:.0f} pF)"
+                    if b is not None and 0 <= r[0] <= b.l_max and 0 <= r[1] <= b.c_max else "")
+            self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'}{vals} from memory "
                      f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
             return
         self.say(f"{_mhz(f)} {mode}: nothing stored here; the box is left as it is")

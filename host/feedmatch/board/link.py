@@ -219,6 +219,17 @@ class BoardLink:
             pass  # no learned values: the nominal ones
         return m
 
+    def bank(self):
+        """The board's element values as a firmware Bank (learned ones where it has
+        them), or None when it does not say: callers then show codes alone."""
+        from fmlogic.config import bank_from
+
+        m = self.element_sections()
+        try:
+            return bank_from(m) if m else None
+        except (KeyError, TypeError, ValueError):
+            return None
+
     def wait_event(self, word: str, pred: Callable[[dict], bool] = lambda o: True,
                    timeout: float = 10.0) -> dict[str, Any] | None:
         deadline = time.monotonic() + timeout

@@ -41,15 +41,8 @@ def _values_text(bank, l: int, c: int) -> str:
 
 
 def _board_bank(ln):
-    """The board's element values (its network, with any learned correction), or
-    None when the board does not say: codes are then printed alone."""
-    from fmlogic.config import bank_from
-
-    m = ln.element_sections()
-    try:
-        return bank_from(m) if m else None
-    except (KeyError, TypeError, ValueError):
-        return None
+    """The board's element values, or None: codes are then printed alone."""
+    return ln.bank()
 
 
 def _mhz(f_hz) -> str:

@@ -61,7 +61,7 @@ class BoardWatch:
             ln.stop_event = self.stop
             ln.open()
             self.link = ln
-            self.bank = _bank(ln)
+            self.bank = ln.bank()
         return self.link
 
     def request(self, word: str, args: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -99,17 +99,6 @@ class BoardWatch:
                 self.stop.wait(1.5)
                 continue
             self.stop.wait(self.period_s)
-
-
-def _bank(ln: BoardLink):
-    """The board's firmware Bank from its config, or None when it does not say."""
-    from fmlogic.config import bank_from
-
-    m = ln.element_sections()
-    try:
-        return bank_from(m) if m else None
-    except (KeyError, TypeError, ValueError):
-        return None
 
 
 class Station:
