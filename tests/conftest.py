@@ -43,3 +43,14 @@ def run_mpy(mp: str, code: str, timeout: float = 120) -> str:
 def run_cli(*args: str, timeout: float = 300, input: str | None = None) -> subprocess.CompletedProcess:
     return subprocess.run([str(BIN / "feedmatch"), *args], capture_output=True, text=True,
                           timeout=timeout, input=input)
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on right now."""
+    import socket
+
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    port = s.getsockname()[1]
+    s.close()
+    return port

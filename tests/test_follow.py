@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import shutil
 import signal
-import socket
 import subprocess
 import threading
 import time
@@ -24,24 +23,16 @@ from feedmatch.sim.radio import RigBridge
 from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 
-from .conftest import BIN
+from .conftest import BIN, free_port
 
 pytestmark = pytest.mark.skipif(shutil.which("rigctld") is None,
                                 reason="Hamlib's rigctld is not installed (Debian package libhamlib-utils; "
                                        "`make test` installs it where it may run apt-get)")
 
 
-def _free_port() -> int:
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    p = s.getsockname()[1]
-    s.close()
-    return p
-
-
 @pytest.fixture
 def rig():
-    port = _free_port()
+    port = free_port()
     p = subprocess.Popen(["rigctld", "-m", "1", "-P", "RIG", "-T", "127.0.0.1", "-t", str(port)],
                          stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
 

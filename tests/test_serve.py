@@ -9,7 +9,6 @@ import io
 import json
 import shutil
 import signal
-import socket
 import subprocess
 import time
 import urllib.request
@@ -20,17 +19,9 @@ from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 
-from .conftest import BIN, run_cli
+from .conftest import BIN, free_port, run_cli
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
-
-
-def _free_port() -> int:
-    s = socket.socket()
-    s.bind(("127.0.0.1", 0))
-    p = s.getsockname()[1]
-    s.close()
-    return p
 
 
 def _get(url: str, token: str | None = None, method: str = "GET") -> tuple[int, dict]:
@@ -87,7 +78,7 @@ def served(tmp_path):
     procs = [subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(db)],
                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)]
     assert _wait(lambda: db.exists(), 15)
-    http = _free_port()
+    http = free_port()
     procs.append(subprocess.Popen([str(BIN / "feedmatch"), "serve", "--port", pty, "--db", str(db), "--http-port",
                                    str(http), "--allow-control", "s3cret-token"],
                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
@@ -123,7 +114,7 @@ def test_read_only_by_default_and_logbook_alone(tmp_path):
     b.add({"board_id": "hollow-oak-1", "seq": 1, "freq_hz": 7.1e6, "swr_before": 3.0, "swr_after": 1.2,
            "outcome": "locked", "n": 5, "ms": 400, "after": [101, 94, 0, 0]})
     b.close()
-    http = _free_port()
+    http = free_port()
     p = subprocess.Popen([str(BIN / "feedmatch"), "serve", "--db", str(db), "--http-port", str(http)],
                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
