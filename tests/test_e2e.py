@@ -335,6 +335,8 @@ def test_commands_attach_to_the_logger_that_owns_the_port(tmp_path):
         assert r.returncode == 0 and json.loads(r.stdout)["outcome"] == "locked", r.stderr
         r = run_cli("memory", "--port", pty, "--json")
         assert r.returncode == 0 and json.loads(r.stdout)["entries"]
+        r = run_cli("deploy", "--port", pty)  # mpremote needs the port to itself: said, not hung
+        assert r.returncode == 2 and "in use by a running feedmatch log" in r.stderr
         time.sleep(4.0)  # the logger's next status poll
         lg.send_signal(signal.SIGTERM)
         out, _err = lg.communicate(timeout=20)

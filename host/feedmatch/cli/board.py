@@ -69,6 +69,13 @@ def cmd_deploy(a: argparse.Namespace) -> int:
     from feedmatch.board.deploy import CONFIGS, DirTarget, MpremoteTarget, apply, plan
 
     cfg = Path(a.config) if a.config else CONFIGS / f"{a.board}.json"
+    if not Path(a.port).is_dir():
+        from feedmatch.board.hub import hub_alive, hub_path
+
+        if hub_alive(hub_path(a.port)):
+            # mpremote needs the port to itself (the raw REPL), and the board reboots.
+            raise InputError(f"{a.port} is in use by a running feedmatch log, follow or serve; stop it, "
+                             "deploy, then start it again")
     target = DirTarget(a.port) if Path(a.port).is_dir() else MpremoteTarget(a.port)
     with tempfile.TemporaryDirectory() as d:
         p = plan(a.board, cfg, a.compile, target, Path(d))
