@@ -155,6 +155,8 @@ def test_the_radio_is_unkeyed_when_the_tune_cannot_finish(fault, rig, station):
         if fault == "the board dies mid-tune":
             vs.stop()
         assert _wait(lambda: not ctl.ptt(), 6), said  # unkeyed within the key limit
+        if fault == "the board dies mid-tune":
+            assert _wait(lambda: any("lost the board" in s and "retrying" in s for s in said), 10), said
     finally:
         fo.stop.set()
         th.join(10)

@@ -25,6 +25,7 @@ from feedmatch.board.rigctl import RigClient, RigError
 from feedmatch.errors import BoardRefused, InputError, LinkError
 
 MAX_KEY_S = 5.0  # the longest a tune carrier stays keyed, whatever happens
+HEARTBEAT_S = 3.0  # how often the board is asked whether it is still there
 
 
 def _mhz(f: float) -> str:
@@ -54,6 +55,7 @@ class Follower:
         self.stop = threading.Event()
         self.hub = None
         self.bank = None  # the board's element values, for uH and pF beside the codes
+        self._heard = 0.0
 
     def close(self) -> None:
         if self.link is not None:
@@ -132,6 +134,10 @@ class Follower:
             self.stop.wait(self.poll_s)
 
     def _on_radio(self, ln: BoardLink, f: float, mode: str, keyed: bool) -> None:
+        now = time.monotonic()
+        if now - self._heard > HEARTBEAT_S:
+            ln.request("status")  # a board that went quiet is noticed (LinkError), not waited on
+            self._heard = now
         if (f, mode) != self.last_rig:
             self.last_rig = (f, mode)
             try:
