@@ -443,9 +443,14 @@ def test_preset_switches_cold_and_the_first_carrier_confirms_it(tmp_path):
     sets = b.sets
     kind, _seq, word, ans = _ask(b, ctl, 12, "preset", {"freq_hz": 14.2e6})
     assert word == "err" and ans["why"] == "rf-present" and b.sets == sets
-    # Nothing stored near a frequency: the box is left as it is, and says so.
+    # The dial moved within the same bin: nothing to do, no record, and the answer says so.
     m.key(0, 0)
     run(ctl, 5)
+    n = ctl.rec.seq
+    kind, _seq, word, ans = _ask(b, ctl, 15, "preset", {"freq_hz": 7.1e6 + 100.0})
+    assert word == "ok" and ans["already"] is True and ctl.rec.seq == n
+    assert ans["bin"] == ctl.mem.bin_of(7.1e6)
+    # Nothing stored near a frequency: the box is left as it is, and says so.
     kind, _seq, word, ans = _ask(b, ctl, 13, "preset", {"freq_hz": 24.9e6})
     assert word == "ok" and ans["preset"] is False and b.sets == sets
     for bad in ({"freq_hz": -1}, {"freq_hz": "7e6"}, {}, {"freq_hz": True}):
@@ -454,14 +459,15 @@ def test_preset_switches_cold_and_the_first_carrier_confirms_it(tmp_path):
 
 def test_a_preset_confirmed_at_operating_power_switches_nothing(tmp_path):
     m, b, ctl = _setup(tmp_path)
-    m.key(10, 7.1e6)
-    assert run(ctl, until=lambda c: c.state == LOCKED)
-    m.key(0, 0)
-    run(ctl, 5)
+    for f in (7.1e6, 14.2e6):  # learn two bands; the box ends on the second
+        m.key(10, f)
+        assert run(ctl, until=lambda c: c.state == LOCKED)
+        m.key(0, 0)
+        run(ctl, 5)
     assert _ask(b, ctl, 21, "preset", {"freq_hz": 7.1e6})[3]["preset"] is True
     sets = b.sets
     m.key(100, 7.1e6)  # straight to operating power: read, never switch
-    assert run(ctl, until=lambda c: c.rec.seq == 3)
+    assert run(ctl, until=lambda c: c.rec.seq == 4)
     rec = _records(_frames(b))[-1]
     assert rec["preset"] is True and rec["strategy"] == "preset" and rec["n"] == 1
     assert b.sets == sets and m.violations == []

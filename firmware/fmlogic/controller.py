@@ -397,9 +397,14 @@ class Controller:
         if self.fwd > 0.0 or self.rf_w > 0.0:
             return False, {"why": "rf-present", "msg": "RF on the line: the box tunes on it instead"}
         hint = self.mem.lookup(f)
+        b = self.mem.bin_of(f)
         if hint is None:
-            return True, {"preset": False, "msg": "nothing stored near this frequency",
+            return True, {"preset": False, "msg": "nothing stored near this frequency", "bin": b,
                           "relays": self._state_list()}
+        if b == self.lock_bin and self.relays == (hint[0], hint[1], hint[2]) and not self.bypass:
+            # The same bin, already at its state (the radio's dial moved within it): nothing to do.
+            return True, {"preset": True, "already": True, "bin": b, "relays": self._state_list(),
+                          "stored_swr": hint[3], "bin_hz": self.mem.bin_hz}
         if not self._switch((hint[0], hint[1], hint[2]), False):
             return False, {"why": "hot", "msg": "power above hot-switch limit"}
         before = self._state_list()
@@ -415,7 +420,7 @@ class Controller:
                      "preset from memory", True, "preset")
         self._set_state(WAIT_RF, "preset from memory for %.4f MHz" % (f / 1e6))
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
-                      "bin_hz": self.mem.bin_hz}
+                      "bin_hz": self.mem.bin_hz, "bin": b}
 
     def _status(self):
         return {"state": self.state, "why": self.why, "relays": self._state_list(),

@@ -26,6 +26,7 @@ from feedmatch.errors import BoardRefused, InputError, LinkError
 
 MAX_KEY_S = 5.0  # the longest a tune carrier stays keyed, whatever happens
 HEARTBEAT_S = 3.0  # how often the board is asked whether it is still there
+SETTLE_S = 0.3     # a frequency is offered to the board once the dial has rested this long
 
 
 def _mhz(f: float) -> str:
@@ -45,7 +46,6 @@ class Follower:
         self.tune_carrier_w, self.carrier_mode, self.rig_full_w = tune_carrier_w, carrier_mode, rig_full_w
         self.max_key_s, self.poll_s = max_key_s, poll_s
         self.link: BoardLink | None = None
-        self.bin_hz = 50e3
         self.limits: dict[str, float] = {}
         self.last_bin: int | None = None
         self.last_rig: tuple[float, str] | None = None
@@ -56,6 +56,9 @@ class Follower:
         self.hub = None
         self.bank = None  # the board's element values, for uH and pF beside the codes
         self._heard = 0.0
+        self.last_f: float | None = None
+        self._asked = True
+        self._settled = 0.0
 
     def close(self) -> None:
         if self.link is not None:
@@ -76,8 +79,6 @@ class Follower:
             ln.open()
             try:
                 ln.request("status")
-                mem = ln.request("cfg-get", {"section": "memory"})["value"]
-                self.bin_hz = float(mem.get("bin_hz", self.bin_hz))
                 self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
                 self.bank = ln.bank()
             except (LinkError, KeyError, TypeError, ValueError):
@@ -145,29 +146,40 @@ class Follower:
             except BoardRefused:
                 pass  # older firmware: the records go without the radio's figures
         ln.pump()
-        b = int(f // self.bin_hz)
-        if b == self.last_bin:
+        # The bins are the firmware's: every settled frequency change is offered to
+        # the board, which answers with its bin and whether anything had to move.
+        if f != self.last_f:
+            self.last_f, self._asked = f, False
+            self._settled = now
             return
+        if self._asked or now - self._settled < SETTLE_S:
+            return
+        self._asked = True
         if keyed:
-            self.last_bin = b
             self.say(f"{_mhz(f)} {mode}: the radio is transmitting; the box tunes on the carrier itself")
             return
         try:
             ans = ln.request("preset", {"freq_hz": f, "mode": mode})
         except BoardRefused as e:
             if e.why == "busy":
-                return  # a tune is under way: ask again on the next poll
-            self.last_bin = b
+                self._asked = False  # a tune is under way: ask again on the next poll
+                return
             msg = e.detail.get("msg")
             self.say(f"{_mhz(f)} {mode}: preset refused ({e.why}{': ' + msg if msg else ''})")
             return
+        b = ans.get("bin")
+        if b is not None and b == self.last_bin and (ans.get("already") or not ans.get("preset")):
+            return  # the dial moved within the same bin: said already
         self.last_bin = b
+        if ans.get("already"):
+            self.say(f"{_mhz(f)} {mode}: the box is already on its stored state for this frequency")
+            return
         if ans.get("preset"):
             self.presets += 1
             r = ans.get("relays") or [0, 0, 0, 0]
-            b = self.bank
-            vals = (f" ({b.lv[r[0]]:.2f} uH, {b.cv[r[1]]:.0f} pF)"
-                    if b is not None and 0 <= r[0] <= b.l_max and 0 <= r[1] <= b.c_max else "")
+            bk = self.bank
+            vals = (f" ({bk.lv[r[0]]:.2f} uH, {bk.cv[r[1]]:.0f} pF)"
+                    if bk is not None and 0 <= r[0] <= bk.l_max and 0 <= r[1] <= bk.c_max else "")
             self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'}{vals} from memory "
                      f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
             return
