@@ -385,6 +385,10 @@ def cmd_serve(a) -> int:
 
     signal.signal(signal.SIGTERM, _term)
 
+    if a.allow_control is not None and a.listen not in ("127.0.0.1", "localhost", "::1"):
+        sys.stderr.write("feedmatch: warning: --allow-control on a network address: the token and the "
+                         "page travel unencrypted; anyone who can read the network can tune the box\n")
+
     def ready(url: str) -> None:
         what = " and ".join(x for x in ((f"the board on {a.port}" if a.port else ""),
                                          (f"the logbook {a.db}" if a.db else "")) if x)
