@@ -5,62 +5,8 @@ from __future__ import annotations
 from feedmatch.rf.antenna import Monopole
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
+from feedmatch.sim.inproc import InProcessBoard as FakeBoard  # noqa: F401 (the tests' name)
 from feedmatch.sim.station import StationModel
-
-
-class FakeBoard:
-    def __init__(self, model: StationModel):
-        self.m = model
-        self.t = 0
-        self.inbox = bytearray()
-        self.outbox = bytearray()
-        self.button = False
-        self.feeds = 0
-        self.sets = 0
-        self.on_set = None  # hook(board) after each relay change
-        self.led_on = False
-
-    def read_detectors(self):
-        self.t += 1
-        return self.m.read()
-
-    def set_relays(self, l, c, sh, bypass):
-        self.m.set(l, c, sh, 1 if bypass else 0)
-        self.sets += 1
-        if self.on_set:
-            self.on_set(self)
-
-    def count_freq(self):
-        return self.m.count()
-
-    def tune_button(self):
-        b, self.button = self.button, False
-        return b
-
-    def led(self, on):
-        self.led_on = on
-
-    def wdt_feed(self):
-        self.feeds += 1
-
-    def ticks_ms(self):
-        return self.t
-
-    def ticks_diff(self, a, b):
-        return a - b
-
-    def sleep_ms(self, ms):
-        self.t += ms
-
-    def link_read(self):
-        if not self.inbox:
-            return None
-        data = bytes(self.inbox[:200])
-        del self.inbox[:200]
-        return data
-
-    def link_write(self, data):
-        self.outbox += data
 
 
 def make_model(antenna=None, ideal=False, hot=25.0, seed=3):

@@ -471,3 +471,16 @@ def test_a_preset_confirmed_at_operating_power_switches_nothing(tmp_path):
     rec = _records(_frames(b))[-1]
     assert rec["preset"] is True and rec["strategy"] == "preset" and rec["n"] == 1
     assert b.sets == sets and m.violations == []
+
+
+def test_presets_spare_the_first_carrier_a_mismatch():
+    # The demo station over 10 band changes: without a preset the first carrier meets the
+    # previous band's state; with one it meets the stored state, switched cold. The SWR
+    # the matched state should show is the firmware's own target (1.5, the config).
+    from feedmatch.bench.presets import bench_presets
+
+    r = bench_presets(changes=10, seed=3)
+    assert r["first_carrier_swr_median_no_preset"] > 3.0
+    assert r["first_carrier_swr_median_preset"] <= 1.5
+    assert r["relay_changes_under_carrier_per_change_preset"] < r["relay_changes_under_carrier_per_change_no_preset"]
+    assert r["preset_hot_switches"] == 0
