@@ -81,9 +81,13 @@ class Follower:
                 ln.request("status")
                 self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
                 self.bank = ln.bank()
-            except (LinkError, KeyError, TypeError, ValueError):
+            except LinkError:
                 ln.close()
                 raise
+            except (KeyError, TypeError, ValueError) as e:
+                ln.close()
+                raise LinkError(f"the board's power limits are unreadable ({e!r}); is its firmware current?") \
+                    from None
             self.link = ln
         return self.link
 
