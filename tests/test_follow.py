@@ -8,6 +8,7 @@ answers with its values, a set with "RPRT 0").  The dummy radio keys through
 
 from __future__ import annotations
 
+import json
 import shutil
 import signal
 import subprocess
@@ -165,9 +166,10 @@ def test_the_radio_is_unkeyed_when_the_tune_cannot_finish(fault, rig, station):
     assert not ctl.ptt()
 
 
-def _follow_cli(host, port, pty):
+def _follow_cli(host, port, pty, *more):
     return subprocess.Popen([str(BIN / "feedmatch"), "follow", "--port", pty, "--rig", f"{host}:{port}",
-                             "--tune-carrier", "10"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                             "--tune-carrier", "10", *more], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
 
 
 def _wait_line(p, words, timeout=15.0):
@@ -188,9 +190,9 @@ def test_ctrl_c_mid_tune_unkeys(rig, station):
     vs, pty = station
     ctl = RigClient(host, port).open()
     ctl.set_freq(21.2e6)
-    p = _follow_cli(host, port, pty)
+    p = _follow_cli(host, port, pty, "--json")
     try:
-        _wait_line(p, "keying 10 W")
+        lines = _wait_line(p, "keying 10 W")
         assert _wait(lambda: ctl.ptt(), 3)
         p.send_signal(signal.SIGINT)
         out, err = p.communicate(timeout=15)
@@ -199,6 +201,9 @@ def test_ctrl_c_mid_tune_unkeys(rig, station):
             p.kill()
     assert p.returncode == 0 and "Traceback" not in err, err
     assert not ctl.ptt()
+    # --json: one object per line, each with its time and message
+    msgs = [json.loads(x) for x in lines + out.splitlines() if x.strip()]
+    assert any("KEY THE RADIO" in m["message"] for m in msgs) and all("time" in m for m in msgs)
 
 
 def test_losing_rigctld_mid_tune_is_said_not_a_traceback(rig, station):

@@ -332,7 +332,13 @@ def cmd_follow(a) -> int:
     host, port = parse_hostport(a.rig)
 
     def say(text: str) -> None:
-        print(f"{dt.datetime.now().strftime('%H:%M:%S')} {text}", flush=True)
+        now = dt.datetime.now()
+        if a.json:  # one JSON object per line, for other programs
+            import json
+
+            print(json.dumps({"time": now.isoformat(timespec="seconds"), "message": text}), flush=True)
+        else:
+            print(f"{now.strftime('%H:%M:%S')} {text}", flush=True)
 
     fo = Follower(a.port, RigClient(host, port), say, a.baud, tune_carrier_w=a.tune_carrier,
                   carrier_mode=a.carrier_mode, rig_full_w=a.rig_full_power)
