@@ -37,6 +37,11 @@ CASES = [
     (["score", "--fitted"], "--fitted needs --boxes"),
     (["simulate", "--freq", "7e6", "--load", "50", "--best", "--power", "nan"], "--power: needs a power above 0"),
     (["calibrate", "--config", "x.json"], "give --port"),
+    (["virtual-board", "--rig", "127.0.0.1:1"], "cannot reach rigctld at 127.0.0.1:1"),
+    (["follow", "--port", "/dev/null", "--rig", "127.0.0.1:1"], "cannot reach rigctld at 127.0.0.1:1"),
+    (["follow", "--port", "/dev/null", "--rig", "host:99999"], "--rig port must be 1 to 65535"),
+    (["serve", "--http-port", "8"], "give --port (the board), --db (a logbook) or both"),
+    (["serve", "--db", "x.sqlite", "--allow-control", "short"], "at least 8 characters"),
     (["calibrate", "--rehearse", "--port", "/dev/null"], "leave out --port"),
 ]
 

@@ -275,6 +275,10 @@ def cmd_virtual_board(a) -> int:
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, _term)
+    if a.rig:
+        from feedmatch.board.rigctl import RigClient, parse_hostport
+
+        RigClient(*parse_hostport(a.rig)).open().close()  # an unreachable rigctld is one line, now
     if a.dir:
         output_dir(a.dir, "--dir")
     d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
