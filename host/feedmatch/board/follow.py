@@ -20,7 +20,7 @@ from collections.abc import Callable
 from typing import Any
 
 from feedmatch.board.hub import ensure_hub
-from feedmatch.board.link import BoardLink, resolve_port
+from feedmatch.board.link import BoardLink, state_values
 from feedmatch.board.rigctl import RigClient, RigError
 from feedmatch.errors import BoardRefused, InputError, LinkError
 
@@ -72,11 +72,8 @@ class Follower:
     # -- connections -----------------------------------------------------------------
     def _board(self) -> BoardLink:
         if self.link is None:
-            if self.hub is None:
-                self.hub = ensure_hub(resolve_port(self.port), self.baud)  # owner, or attach to the owner
-            ln = BoardLink(self.port, self.baud)
-            ln.stop_event = self.stop
-            ln.open()
+            self.hub = self.hub or ensure_hub(self.port, self.baud)  # owner, or attach to the owner
+            ln = BoardLink(self.port, self.baud, stop_event=self.stop).open()
             try:
                 ln.request("status")
                 self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
@@ -181,9 +178,8 @@ class Follower:
         if ans.get("preset"):
             self.presets += 1
             r = ans.get("relays") or [0, 0, 0, 0]
-            bk = self.bank
-            vals = (f" ({bk.lv[r[0]]:.2f} uH, {bk.cv[r[1]]:.0f} pF)"
-                    if bk is not None and 0 <= r[0] <= bk.l_max and 0 <= r[1] <= bk.c_max else "")
+            v = state_values(self.bank, r[0], r[1])
+            vals = f" ({v[0]:.2f} uH, {v[1]:.0f} pF)" if v else ""
             self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'}{vals} from memory "
                      f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
             return

@@ -251,10 +251,14 @@ class LinkHub:
             pass
 
 
-def ensure_hub(device: str, baud: int = 115200, wait_s: float = 3.0) -> LinkHub | None:
-    """Make sure one process owns the port: start a hub here (returned: the caller
-    closes it when it exits) unless one runs already (None).  Two processes
-    starting at once: the one that opens the port owns it, the other attaches."""
+def ensure_hub(port: str, baud: int = 115200, wait_s: float = 3.0) -> LinkHub | None:
+    """Make sure one process owns the port (a device path, "auto" or a URL): start a
+    hub here (returned: the caller closes it when it exits) unless one runs already
+    (None).  Two processes starting at once: the one that opens the port owns it,
+    the other attaches."""
+    from feedmatch.board.link import resolve_port
+
+    device = resolve_port(port)
     if "://" in device:
         return None  # URLs (socket://, loop://) are not serial devices to share
     deadline = time.monotonic() + wait_s

@@ -36,8 +36,16 @@ def resolve_port(port: str) -> str:
     return usb[0].device
 
 
+def state_values(bank, l_code: int, c_code: int) -> tuple[float, float] | None:
+    """(uH, pF) of a state's codes in a firmware Bank, or None without a bank or
+    for codes it does not have: the values a builder measures, beside the codes."""
+    if bank is None or not (0 <= l_code <= bank.l_max and 0 <= c_code <= bank.c_max):
+        return None
+    return bank.lv[l_code], bank.cv[c_code]
+
+
 class BoardLink:
-    def __init__(self, port: str, baud: int = 115200, timeout: float = 2.0):
+    def __init__(self, port: str, baud: int = 115200, timeout: float = 2.0, stop_event=None):
         self.port = port
         self.baud = baud
         self.timeout = timeout
@@ -53,7 +61,7 @@ class BoardLink:
         self._awaited: int | None = None
         self._answer: tuple[str, dict] | None = None
         self.stale_answers = 0
-        self.stop_event = None  # set by an owner that must be able to stop us mid-retry
+        self.stop_event = stop_event  # set by an owner that must be able to stop us mid-retry
 
     # -- open / close -----------------------------------------------------------
     def open(self) -> BoardLink:

@@ -37,6 +37,3 @@ class Serial(_SocketSerial):
         self.is_open = True
         self.reset_input_buffer()
         self.reset_output_buffer()
-
-    def from_url(self, url: str):  # pragma: no cover - not used for Unix sockets
-        return url[len(PREFIX):]

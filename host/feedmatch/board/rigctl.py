@@ -103,12 +103,15 @@ class RigClient:
         return out
 
     # -- the commands --------------------------------------------------------------
-    def freq(self) -> float:
-        v = self.command("f", 1)[0]
+    def _number(self, cmd: str, what: str) -> float:
+        v = self.command(cmd, 1)[0]
         try:
             return float(v)
         except ValueError:
-            raise RigError(f"rigctld gave '{v}' for the frequency") from None
+            raise RigError(f"rigctld gave '{v}' for the {what}") from None
+
+    def freq(self) -> float:
+        return self._number("f", "frequency")
 
     def mode(self) -> tuple[str, int]:
         m, pb = self.command("m", 2)
@@ -121,11 +124,7 @@ class RigClient:
         return self.command("t", 1)[0].strip() not in ("0", "")
 
     def power(self) -> float:
-        v = self.command("l RFPOWER", 1)[0]
-        try:
-            return float(v)
-        except ValueError:
-            raise RigError(f"rigctld gave '{v}' for the RF power level") from None
+        return self._number("l RFPOWER", "RF power level")
 
     def set_freq(self, hz: float) -> None:
         self.command(f"F {hz:.0f}", 0)

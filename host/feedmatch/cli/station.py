@@ -35,14 +35,10 @@ def _state_text(r, bank=None) -> str:
 
 
 def _values_text(bank, l: int, c: int) -> str:
-    if bank is None or not (0 <= l <= bank.l_max and 0 <= c <= bank.c_max):
-        return ""
-    return f" ({bank.lv[l]:.2f} uH, {bank.cv[c]:.0f} pF)"
+    from feedmatch.board.link import state_values
 
-
-def _board_bank(ln):
-    """The board's element values, or None: codes are then printed alone."""
-    return ln.bank()
+    v = state_values(bank, l, c)
+    return f" ({v[0]:.2f} uH, {v[1]:.0f} pF)" if v else ""
 
 
 def _mhz(f_hz) -> str:
@@ -81,7 +77,7 @@ def cmd_status(a) -> int:
 
     with _link(a) as ln:
         st = ln.request("status")
-        bank = None if a.json else _board_bank(ln)
+        bank = None if a.json else ln.bank()
     if a.json:
         emit_json(st)
         return 0
@@ -119,7 +115,7 @@ def cmd_tune(a) -> int:
         if rec is None:
             recs = ln.records_since(before)
             rec = recs[0] if recs else None
-        bank = None if a.json else _board_bank(ln)
+        bank = None if a.json else ln.bank()
     if rec is None:
         raise LinkError(f"no tune result within {a.wait:g} s (is a carrier keyed?)")
     if a.json:
@@ -144,7 +140,7 @@ def cmd_bypass(a) -> int:
 
     with _link(a) as ln:
         r = ln.request("bypass", {"on": not a.off})
-        bank = None if a.json else _board_bank(ln)
+        bank = None if a.json else ln.bank()
     if a.json:
         emit_json(r)
     else:
@@ -171,7 +167,7 @@ def cmd_memory(a) -> int:
             start += len(r["entries"])
             if not r["entries"] or start >= r["total"]:
                 break
-        bank = None if a.json else _board_bank(ln)
+        bank = None if a.json else ln.bank()
     if a.json:
         emit_json({"bin_hz": r["bin_hz"], "entries": items})
         return 0

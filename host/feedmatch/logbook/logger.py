@@ -8,7 +8,7 @@ import time
 from typing import Any, TextIO
 
 from feedmatch.board.hub import ensure_hub
-from feedmatch.board.link import BoardLink, resolve_port
+from feedmatch.board.link import BoardLink
 from feedmatch.errors import LinkError
 from feedmatch.logbook.store import Logbook, board_key
 
@@ -61,12 +61,10 @@ class Logger:
         self.last_committed = self.book.last_seq(self.board_id)
 
     def _connect(self) -> None:
-        if self.hub is None:
-            # The logger owns the port unless another feedmatch process does;
-            # then it attaches, and the others attach to it while it runs.
-            self.hub = ensure_hub(resolve_port(self.port), self.baud)
-        self.link = BoardLink(self.port, self.baud)
-        self.link.stop_event = self._stop
+        # The logger owns the port unless another feedmatch process does; then it
+        # attaches, and the others attach to it while it runs.
+        self.hub = self.hub or ensure_hub(self.port, self.baud)
+        self.link = BoardLink(self.port, self.baud, stop_event=self._stop)
         self.link.open()
         self.link.on_event = self._on_event
         self.link.request("status")  # a board answers before the logbook is touched

@@ -11,6 +11,7 @@ from typing import Any
 from fmlogic.config import DEFAULTS
 from fmlogic.controller import LOCKED
 
+from feedmatch.board.link import state_values
 from feedmatch.logbook.store import open_existing
 from feedmatch.rf import bands
 
@@ -73,10 +74,8 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
         states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
         top = states.most_common(1)[0][0] if states else None
         bank = banks.get(ok[-1]["board_id"]) if banks and ok else None
-        vals = None
-        if top and bank is not None:
-            lv, cv = _value(bank, "L", top[0]), _value(bank, "C", top[1])
-            vals = {"l_uh": round(lv, 4), "c_pf": round(cv, 2)} if lv is not None and cv is not None else None
+        v = state_values(bank, top[0], top[1]) if top else None
+        vals = {"l_uh": round(v[0], 4), "c_pf": round(v[1], 2)} if v else None
         out.append({
             "band": name, "tunes": len(rs),
             "success_rate": len(ok) / len(tuned) if tuned else None,
@@ -142,7 +141,7 @@ def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     banks = _banks(book.banks())
     book.close()
     n = sum(1 for r in rows if r["outcome"] != PRESET)
-    return {"tunes": n, "bands": band_table(rows, banks), "rows": rows,
+    return {"tunes": n, "bands": band_table(rows, banks), "rows": rows, "banks": banks,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 
@@ -251,12 +250,10 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
     logbook has them (else the shipped network's)."""
     from fmlogic import lnet
 
-    from feedmatch.rf.network import load_network
+    from feedmatch.rf.network import Z0_OHM, gamma, load_network
 
-    book = open_existing(db)
-    rows = book.tunes()
-    banks = _banks(book.banks())
-    book.close()
+    rep = make_report(db)
+    rows, banks = rep["rows"], rep["banks"]
     default_bank = load_network(None).firmware_bank()
     series: dict[str, list] = defaultdict(list)
     smith: dict[str, list] = defaultdict(list)
@@ -270,10 +267,7 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
             z = lnet.load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),
                                      int(r["after_shunt"]))
             if z is not None and z.real > 0:
-                g = (z - 50.0) / (z + 50.0)
+                g = complex(gamma(z, Z0_OHM))
                 smith[r["band"]].append([round(g.real, 4), round(g.imag, 4)])
-    n = sum(1 for r in rows if r["outcome"] != PRESET)
-    return {"tunes": n, "bands": band_table(rows, banks), "series": series, "smith": smith,
-            "lines": report_lines({"tunes": n, "bands": band_table(rows, banks),
-                                   "first": rows[0]["time"] if rows else None,
-                                   "last": rows[-1]["time"] if rows else None})}
+    return {"tunes": rep["tunes"], "bands": rep["bands"], "series": series, "smith": smith,
+            "lines": report_lines(rep)}

@@ -397,8 +397,9 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
     t0 = time.perf_counter()
     for n in spec.band_names:
         bands.by_name(n)  # an unknown band is refused before any work
-    coarse = make_loads(antenna, spec.band_names, min(COARSE_POINTS, spec.points), spec.uncertainty)
     fine = make_loads(antenna, spec.band_names, spec.points, spec.uncertainty)
+    coarse = fine if spec.points <= COARSE_POINTS else \
+        make_loads(antenna, spec.band_names, COARSE_POINTS, spec.uncertainty)
     cur = replace(current, inductor_q=current.inductor_q or spec.inductor_q,
                   capacitor_q=current.capacitor_q or spec.capacitor_q)
     # The current bank's coarse coverage is the floor no band may fall below; it
@@ -418,8 +419,11 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
         if progress:
             progress(gen[0], spec.maxiter)
         return False
-    res = differential_evolution(cost, bounds, x0=x0, seed=spec.seed, maxiter=spec.maxiter, popsize=6,
-                                 tol=1e-4, polish=False, init="sobol", callback=cb)
+    def search(bnds: list, start: np.ndarray | None):
+        gen[0] = 0
+        return differential_evolution(cost, bnds, x0=start, seed=spec.seed, maxiter=spec.maxiter, popsize=6,
+                                      tol=1e-4, polish=False, init="sobol", callback=cb)
+    res = search(bounds, x0)
     x = res.x
     nfev = int(res.nfev)
     name = f"designed: {spec.n_l}+{spec.n_c} relays for {', '.join(spec.band_names)}"
@@ -433,20 +437,15 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
         # search with its value as a fifth variable, kept only if it gains overall
         # and loses no band.
         coil_tried = True
-        gen[0] = 0
-        res2 = differential_evolution(cost, bounds + [tuple(math.log10(v) for v in COIL_UH)],
-                                      x0=np.append(x, math.log10(COIL_UH[0])), seed=spec.seed,
-                                      maxiter=spec.maxiter, popsize=6, tol=1e-4, polish=False, init="sobol",
-                                      callback=cb)
+        res2 = search(bounds + [tuple(math.log10(v) for v in COIL_UH)], np.append(x, math.log10(COIL_UH[0])))
         nfev += int(res2.nfev)
         x2 = res2.x
+        coil2 = float(f"{10 ** x2[4]:.3g}")  # scored as it would be wound and printed
         net2 = binary_bank(10 ** x2[0], x2[2], 10 ** x2[1], x2[3], spec, name=name)
-        s2 = score_bank(net2, spec, with_coil(fine, 10 ** x2[4], spec.inductor_q), spec.power_w, 10 ** x2[4])
+        s2 = score_bank(net2, spec, with_coil(fine, coil2, spec.inductor_q), spec.power_w, coil2)
         covs2 = [b["coverage"] for b in s2["bands"]]
         if np.mean(covs2) >= np.mean(covs) + COIL_MUST_GAIN and all(a >= b - 1e-9 for a, b in zip(covs2, covs)):
-            coil_uh = float(f"{10 ** x2[4]:.3g}")
-            x, prop, s_prop = x2, net2, score_bank(net2, spec, with_coil(fine, coil_uh, spec.inductor_q),
-                                                   spec.power_w, coil_uh)
+            coil_uh, prop, s_prop = coil2, net2, s2
             prop.extra["fixed_series_coil_uh"] = coil_uh
     # Capacitors as a buyer finds them: each snapped to E24, kept when no band
     # loses more than half a point of coverage by it.
@@ -466,7 +465,6 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
     # same size covers a band better, keep it and say so.
     worse = [a["band"] for a, b in zip(s_prop["bands"], s_cur["bands"]) if a["coverage"] < b["coverage"] - 1e-9]
     kept_current = bool(worse) and same_size
-    candidate, s_candidate = prop, s_prop
     if kept_current:
         prop, s_prop = replace(cur, name=cur.name or "current bank"), s_cur
         coil_uh = 0.0
@@ -480,10 +478,9 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
     return {
         "proposal": prop, "current": cur, "score": s_prop, "score_current": s_cur, "loads": fine,
         "parts": parts_list(prop, s_prop, fine, spec.rating_margin, coil_uh),
-        "kept_current": kept_current, "worse_bands": worse, "candidate": candidate,
-        "score_candidate": s_candidate, "evaluations": nfev, "e24_alternative": e24_cover,
+        "kept_current": kept_current, "worse_bands": worse, "evaluations": nfev, "e24_alternative": e24_cover,
         "coil_uh": coil_uh, "coil_tried": coil_tried,
-        "design_s": time.perf_counter() - t0, "x": [float(v) for v in x],
+        "design_s": time.perf_counter() - t0,
     }
 
 

@@ -20,7 +20,7 @@ from typing import Any
 from aiohttp import web
 
 from feedmatch.board.hub import ensure_hub
-from feedmatch.board.link import BoardLink, resolve_port
+from feedmatch.board.link import BoardLink, state_values
 from feedmatch.errors import BoardRefused, InputError, LinkError
 
 STATIC = Path(__file__).parent / "static"
@@ -55,13 +55,9 @@ class BoardWatch:
 
     def _connect(self) -> BoardLink:
         if self.link is None:
-            if self.hub is None:
-                self.hub = ensure_hub(resolve_port(self.port), self.baud)
-            ln = BoardLink(self.port, self.baud)
-            ln.stop_event = self.stop
-            ln.open()
-            self.link = ln
-            self.bank = ln.bank()
+            self.hub = self.hub or ensure_hub(self.port, self.baud)
+            self.link = BoardLink(self.port, self.baud, stop_event=self.stop).open()
+            self.bank = self.link.bank()
         return self.link
 
     def request(self, word: str, args: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -78,9 +74,10 @@ class BoardWatch:
                     ln.pump()
                     recs = [o for w, o in list(ln.events) if w == "record"]
                     ln.events.clear()
-                r, bank = st.get("relays") or [], self.bank
-                if bank is not None and len(r) == 4 and 0 <= r[0] <= bank.l_max and 0 <= r[1] <= bank.c_max:
-                    st["l_uh"], st["c_pf"] = round(bank.lv[r[0]], 3), round(bank.cv[r[1]], 1)
+                r = st.get("relays") or []
+                v = state_values(self.bank, r[0], r[1]) if len(r) == 4 else None
+                if v:
+                    st["l_uh"], st["c_pf"] = round(v[0], 3), round(v[1], 1)
                 self.status, self.error = st, ""
                 for r in recs:
                     self.publish("record", r)
