@@ -43,6 +43,11 @@ CASES = [
     (["serve", "--http-port", "8"], "give --port (the board), --db (a logbook) or both"),
     (["serve", "--db", "x.sqlite", "--allow-control", "short"], "at least 8 characters"),
     (["calibrate", "--rehearse", "--port", "/dev/null"], "leave out --port"),
+    (["score", "--fault", "L3:stuck-oot"], "kind must be stuck-out, stuck-in or drift=P%"),
+    (["score", "--fault", "L9:stuck-out"], "the bank has L0..L6"),
+    (["score", "--fault", "C2:drift=-30"], "a drift is in percent"),
+    (["virtual-board", "--fault", "side:stuck-in"], "the side relay can be stuck-tx or stuck-ant"),
+    (["virtual-board", "--fault", "L1:stuck-in,L1:drift=5%"], "element L1 has two faults"),
 ]
 
 

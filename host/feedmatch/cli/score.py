@@ -39,6 +39,9 @@ def run_score_job(a: argparse.Namespace) -> int:
     if a.plots:
         output_dir(a.plots, "--plots")
     net = load_network(a.network)
+    from feedmatch.sim.faults import parse_faults
+
+    faults = parse_faults(a.fault, net)
     if a.loads:
         loads, bad = read_loads(a.loads, a.skip_bad)
         for b in bad:
@@ -70,7 +73,7 @@ def run_score_job(a: argparse.Namespace) -> int:
         for k, true_net, bdet, nominal in box_list:
             cfg = ScoreConfig(strategy=name, target_swr=a.target, budget=a.budget,
                               settle_ms=a.settle_ms, tune_power_w=a.power, seed=a.seed + (k or 0),
-                              detector=bdet)
+                              detector=bdet, faults=faults)
             part = score(loads, true_net, nominal, cfg, det=bdet, workers=a.workers,
                          progress=progress)
             if k is not None:
@@ -80,6 +83,8 @@ def run_score_job(a: argparse.Namespace) -> int:
         for r in rows:
             r.pop("trace", None)
         out.append({"strategy": name, "results": rows, "summary": summarise(rows, a.target)})
+        if faults:
+            out[-1]["faults"] = faults.spec()
     progress.close()
     if a.plots:
         from feedmatch.plots import score_plots
@@ -95,6 +100,8 @@ def run_score_job(a: argparse.Namespace) -> int:
                 doc["boxes"] = boxes_json
             emit_json(doc)
         return 0
+    if faults:
+        print(f"damaged box: {faults.spec()} (the oracle is the best state it still reaches)")
     _print_table(out, a.target, len(loads), len(box_list))
     return 0
 

@@ -244,6 +244,10 @@ def cmd_virtual_board(a) -> int:
     from feedmatch.sim.virtual import VirtualStation
 
     st = load_station(a.station)
+    if a.fault:
+        from feedmatch.sim.faults import parse_faults
+
+        st.faults = parse_faults(a.fault, st.network)
     import math
     import signal
     import tempfile
@@ -428,6 +432,8 @@ def add_commands(sub) -> None:
     s.add_argument("--rig", metavar="HOST:PORT",
                    help="a rigctld radio keys the station: its PTT, frequency and RF power become the carrier")
     s.add_argument("--rig-full-power", type=float, default=100.0, help="W at RF power level 1.0 (with --rig)")
+    s.add_argument("--fault", metavar="SPEC",
+                   help="damage the simulated box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
     s.set_defaults(fn=cmd_virtual_board)
 
     s = sub.add_parser("follow", help="follow the radio's frequency through rigctld: preset the box before "

@@ -29,6 +29,8 @@ import numpy as np
 
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import SHUNTS, Network, StateTable, oracle, swr_of
+from feedmatch.sim.faults import NONE as NO_FAULTS
+from feedmatch.sim.faults import Faults
 from feedmatch.sim.loads import Load
 
 
@@ -54,6 +56,8 @@ class ScoreConfig:
     leak: float | None = None
     # Tune the loads in order with the firmware's memory carried from one to the next.
     memory: bool = False
+    # Faults of the true box (sim.faults): stuck relays and drifted elements.
+    faults: Faults = NO_FAULTS
 
 
 def _popcount(x: int) -> int:
@@ -84,9 +88,15 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
 
     det = det or cfg.detector
     rng = random.Random(seed)
-    table = _table_for(true_net)
-    gm = table.gamma_mag(load.freq_hz, load.z)
-    tg = table._g
+    if cfg.faults:
+        # The damaged box: drifted values, and every commanded state read where
+        # the stuck relays really leave it (the oracle then is the best the damaged box reaches).
+        tg = cfg.faults.remap(_table_for(cfg.faults.apply_net(true_net)).gamma(load.freq_hz, load.z))
+        gm = np.abs(tg)
+    else:
+        table = _table_for(true_net)
+        gm = table.gamma_mag(load.freq_hz, load.z)
+        tg = table._g
     o_l, o_c, o_sh, oracle_g = oracle(gm)
     z0 = true_net.z0_ohm
     g_through = (load.z - z0) / (load.z + z0)

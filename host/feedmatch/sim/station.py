@@ -4,7 +4,9 @@ StationModel answers what a board asks (detector counts, frequency, relay
 changes) from the network model, the antenna and the detector model, for a
 transmitter whose power and frequency the operator script sets.  It records a
 violation whenever relays change with forward power above the hot-switch
-limit: the tests assert there are none.
+limit: the tests assert there are none.  Faults (sim.faults) make it a damaged
+box: stuck relays reach other states than the board commands, drifted elements
+have other values.
 """
 
 from __future__ import annotations
@@ -21,6 +23,8 @@ from feedmatch.rf import bands
 from feedmatch.rf.antenna import antenna_from_dict
 from feedmatch.rf.detector import DetectorModel, detector_from_dict
 from feedmatch.rf.network import Network, evaluate, load_network, network_from_dict, swr_of
+from feedmatch.sim.faults import NONE as NO_FAULTS
+from feedmatch.sim.faults import Faults
 
 DEFAULT_STATION = DATA / "station_demo.json"
 
@@ -35,8 +39,9 @@ class Violation:
 
 class StationModel:
     def __init__(self, net: Network, antenna, det: DetectorModel, hot_switch_w: float,
-                 seed: int = 1, clock=None):
-        self.net = net
+                 seed: int = 1, clock=None, faults: Faults = NO_FAULTS):
+        self.faults = faults
+        self.net = faults.apply_net(net)
         self.antenna = antenna
         self.det = det
         self.hot_switch_w = hot_switch_w
@@ -78,6 +83,8 @@ class StationModel:
         if g is None:
             z = self.antenna_z(f)
             l, c, sh, byp = self.relays
+            if self.faults:
+                l, c, sh = self.faults.reach(l, c, sh)
             if byp:
                 g = (z - self.net.z0_ohm) / (z + self.net.z0_ohm)
             else:
@@ -136,9 +143,11 @@ class Station:
     board_config: dict
     seed: int = 1
 
+    faults: Faults = NO_FAULTS
+
     def model(self, clock=None) -> StationModel:
         hot = self.board_config.get("power", {}).get("hot_switch_w", 30.0)
-        return StationModel(self.network, self.antenna, self.detector, hot, self.seed, clock)
+        return StationModel(self.network, self.antenna, self.detector, hot, self.seed, clock, self.faults)
 
 
 _KEYS = {"name", "site", "antenna", "network", "detector", "script", "board", "seed", "comment"}
