@@ -183,11 +183,20 @@ def cmd_log(a) -> int:
     from pathlib import Path
 
     from feedmatch.logbook.logger import Logger
-    from feedmatch.logbook.store import Logbook
+    from feedmatch.logbook.store import START_FLOOR, Logbook, LogbookUnwritable, free_bytes
 
     if Path(a.db).exists():
         if not Path(a.db).is_file():
             raise InputError(f"logbook {a.db} is not a file")
+    else:
+        output_file(a.db, "--db", (Path(a.db).suffix.lower(),))  # any name; its directory must exist
+    free = free_bytes(a.db)
+    if free is not None and free < START_FLOOR:
+        # A logger restarted on a full disk would take its last bytes and die again.
+        raise InputError(f"logbook {a.db}: only {free // 1024} KiB free on its disk; the logger needs "
+                         f"{START_FLOOR // 1024} KiB to start. Free some space: the board keeps its records "
+                         "and the next `feedmatch log` fetches them")
+    if Path(a.db).exists():
         Logbook(a.db).close()  # refuse a non-SQLite file before touching the port
     lg = Logger(a.port, a.db, a.baud, out=sys.stdout if sys.stdout.isatty() and not a.json else None)
 
@@ -195,16 +204,23 @@ def cmd_log(a) -> int:
         raise KeyboardInterrupt  # SIGTERM ends the session as cleanly as Ctrl-C
 
     signal.signal(signal.SIGTERM, _term)
+    failed = ""
     try:
         lg.run(first_connect_s=5.0)
     except KeyboardInterrupt:
         pass
+    except LogbookUnwritable as e:
+        failed = str(e)
+        sys.stderr.write(f"{chr(10) if lg.out else ''}feedmatch: error: {e} ({lg.added} new records "
+                         "were logged this run)\n")
     if a.json:
         from feedmatch.cli.output import emit_json
 
         emit_json({"db": a.db, "added": lg.added, "board": lg.board_id, "bad_frames": lg.corrupt,
-                   "notices": lg.notices})
-        return 0
+                   "notices": lg.notices, **({"error": failed} if failed else {})})
+        return 2 if failed else 0
+    if failed:
+        return 2
     print(f"\nlogged {lg.added} new records into {a.db}")
     for note in lg.notices:
         print("note: " + note)

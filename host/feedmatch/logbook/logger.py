@@ -76,6 +76,9 @@ class Logger:
         """Ask the board where it is and fetch every record the logbook lacks."""
         assert self.link is not None and self.book is not None
         self.status = self.link.request("status")
+        # A full, lost or read-only disk ends the run here, with one line, before a
+        # write meets it; the board keeps what is not logged.
+        self.book.check_room()
         bid = board_key(self.status)
         if bid != self.board_id or self.book.session is None:
             others = self.book.other_identities(bid)

@@ -7,8 +7,10 @@ replay or backfill only fills the gaps.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import json
+import os
 import socket
 import sqlite3
 from pathlib import Path
@@ -57,6 +59,64 @@ _MIGRATIONS = {
 }
 
 
+# The write-ahead log is checkpointed into the logbook every WAL_PAGES pages and
+# truncated back to WAL_LIMIT bytes, so a backfill never grows it past about
+# 256 KiB (SQLite's defaults let it reach 4 MiB: more than a small disk holds).
+WAL_PAGES = 64
+WAL_LIMIT = 256 * 1024
+# `log` will not start with less than this free beside the logbook, and stops
+# (before SQLite meets a full disk) when less than RUN_FLOOR is left: a logger
+# restarted on a nearly full disk must not take what other programs need.
+START_FLOOR = 1024 * 1024
+RUN_FLOOR = 256 * 1024
+
+# SQLite's primary result codes (sqlite3.h, "Result and Error Codes").
+_SQLITE_READONLY, _SQLITE_IOERR, _SQLITE_FULL, _SQLITE_CANTOPEN = 8, 10, 13, 14
+_KEPT = ("the board keeps its records and the next `feedmatch log` fetches them; "
+         "nothing already in the logbook was lost")
+
+
+class LogbookUnwritable(InputError):
+    """The logbook's disk refused a write: full, gone or read-only.  One line for the
+    operator; every record committed before stays, the rest waits on the board."""
+
+
+def write_failure(path: str | Path, e: BaseException) -> LogbookUnwritable:
+    """The one-line account of a failed write to the logbook at path."""
+    code = getattr(e, "sqlite_errorcode", None)
+    prim = code & 0xFF if isinstance(code, int) else None
+    err = getattr(e, "errno", None)
+    if prim == _SQLITE_FULL or err in (28, 122):  # ENOSPC, EDQUOT
+        why = "the disk holding it is full"
+    elif prim == _SQLITE_READONLY or err == 30 or _read_only_fs(path):  # EROFS
+        why = "it is read-only now (a file system remounted read-only?)"
+    elif prim in (_SQLITE_IOERR, _SQLITE_CANTOPEN) or err in (5, 2, 19, 6):  # EIO, ENOENT, ENODEV, ENXIO
+        why = f"its disk failed or went away ({e})"
+    else:
+        why = str(e)
+    return LogbookUnwritable(f"logbook {path} cannot be written: {why}; {_KEPT}")
+
+
+def _read_only_fs(path: str | Path) -> bool:
+    p = Path(path)
+    try:
+        return bool(os.statvfs(p.parent if str(p.parent) else ".").f_flag & os.ST_RDONLY)
+    except OSError:
+        return False
+
+
+def free_bytes(path: str | Path) -> int | None:
+    """Bytes an unprivileged writer may still use on the file system of path
+    (None where that cannot be known)."""
+    p = Path(path)
+    d = p if p.is_dir() else (p.parent if str(p.parent) else Path("."))
+    try:
+        st = os.statvfs(d)
+    except OSError:
+        return None
+    return st.f_bavail * st.f_frsize
+
+
 def _now() -> str:
     return dt.datetime.now(dt.UTC).isoformat(timespec="milliseconds")
 
@@ -84,8 +144,12 @@ class Logbook:
             self.db = sqlite3.connect(str(self.path), timeout=10, isolation_level=None)
             self.db.execute("PRAGMA journal_mode=WAL")
             self.db.execute("PRAGMA synchronous=NORMAL")
+            self.db.execute(f"PRAGMA wal_autocheckpoint={WAL_PAGES}")
+            self.db.execute(f"PRAGMA journal_size_limit={WAL_LIMIT}")
             self.db.execute("PRAGMA foreign_keys=ON")
             self._migrate()
+        except sqlite3.OperationalError as e:
+            raise write_failure(self.path, e) from None
         except sqlite3.DatabaseError as e:
             raise InputError(f"{self.path} is not a usable SQLite logbook: {e}") from None
         try:
@@ -96,7 +160,7 @@ class Logbook:
             self.db.execute("COMMIT")
         except sqlite3.OperationalError as e:
             self.db.close()
-            raise InputError(f"logbook {self.path} cannot be written ({e}); nothing was changed") from None
+            raise write_failure(self.path, e) from None
         self.session: int | None = None
 
     def _migrate(self) -> None:
@@ -116,12 +180,41 @@ class Logbook:
                 self.db.execute("ROLLBACK")
                 raise
 
+    @contextlib.contextmanager
+    def writing(self):
+        """Every write goes through here: a refused write (full disk, lost disk,
+        read-only file system) becomes LogbookUnwritable, one line for the operator."""
+        try:
+            yield
+        except (sqlite3.OperationalError, OSError) as e:
+            raise write_failure(self.path, e) from None
+
+    def check_room(self, floor: int = RUN_FLOOR) -> None:
+        """Stop before the disk is full: raise LogbookUnwritable when less than floor
+        bytes are left beside the logbook, or the logbook file is gone."""
+        if not self.path.exists():
+            raise LogbookUnwritable(f"logbook {self.path} is gone (deleted, or its disk went away); {_KEPT}")
+        free = free_bytes(self.path)
+        if free is not None and free < floor:
+            raise LogbookUnwritable(f"logbook {self.path}: only {free // 1024} KiB left on its disk (the logger "
+                                    f"stops below {floor // 1024} KiB rather than fill it); {_KEPT}")
+
     def close(self) -> None:
-        if self.session is not None:
-            self.db.execute("UPDATE sessions SET ended=? WHERE id=?", (_now(), self.session))
+        """End the session and give the write-ahead log's space back; on a disk
+        that refuses, close anyway (what was committed is in the logbook)."""
+        try:
+            if self.session is not None:
+                self.db.execute("UPDATE sessions SET ended=? WHERE id=?", (_now(), self.session))
+            self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        except sqlite3.Error:
+            pass
         self.db.close()
 
     def board(self, board_id: str) -> int:
+        with self.writing():
+            return self._board(board_id)
+
+    def _board(self, board_id: str) -> int:
         now = _now()
         self.db.execute("INSERT INTO boards (board_id, first_seen, last_seen) VALUES (?, ?, ?) "
                         "ON CONFLICT(board_id) DO UPDATE SET last_seen=excluded.last_seen",
@@ -130,8 +223,9 @@ class Logbook:
 
     def start_session(self, board_id: str, port: str) -> int:
         b = self.board(board_id)
-        cur = self.db.execute("INSERT INTO sessions (board, started, port, host) VALUES (?, ?, ?, ?)",
-                              (b, _now(), port, socket.gethostname()))
+        with self.writing():
+            cur = self.db.execute("INSERT INTO sessions (board, started, port, host) VALUES (?, ?, ?, ?)",
+                                  (b, _now(), port, socket.gethostname()))
         self.session = cur.lastrowid
         return self.session
 
@@ -139,8 +233,10 @@ class Logbook:
         """Keep the element values the board reported (its "network" and any
         "correction" config sections); the latest report wins."""
         b = self.board(board_id)
-        self.db.execute("INSERT INTO banks (board, seen, bank) VALUES (?, ?, ?) ON CONFLICT(board) DO UPDATE "
-                        "SET seen=excluded.seen, bank=excluded.bank", (b, _now(), json.dumps(bank, sort_keys=True)))
+        with self.writing():
+            self.db.execute("INSERT INTO banks (board, seen, bank) VALUES (?, ?, ?) ON CONFLICT(board) DO UPDATE "
+                            "SET seen=excluded.seen, bank=excluded.bank",
+                            (b, _now(), json.dumps(bank, sort_keys=True)))
 
     def other_identities(self, key: str) -> list[str]:
         """Keys already in the logbook with the same configured id but another identity."""
@@ -176,11 +272,13 @@ class Logbook:
                1 if rec.get("mem") else 0, rec.get("strategy"), json.dumps(rec, sort_keys=True),
                rig_hz if isinstance(rig_hz, (int, float)) and not isinstance(rig_hz, bool) else None,
                rig_mode if isinstance(rig_mode, str) else None, 1 if rec.get("preset") is True else 0)
-        cur = self.db.execute(
-            "INSERT OR IGNORE INTO tunes (board, seq, session, time, boot, freq_hz, band, before_l, "
-            "before_c, before_shunt, before_bypass, after_l, after_c, after_shunt, after_bypass, "
-            "swr_before, swr_after, measurements, duration_ms, outcome, reason, memory_hit, strategy, "
-            "raw, rig_hz, rig_mode, preset) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", row)
+        with self.writing():
+            cur = self.db.execute(
+                "INSERT OR IGNORE INTO tunes (board, seq, session, time, boot, freq_hz, band, before_l, "
+                "before_c, before_shunt, before_bypass, after_l, after_c, after_shunt, after_bypass, "
+                "swr_before, swr_after, measurements, duration_ms, outcome, reason, memory_hit, strategy, "
+                "raw, rig_hz, rig_mode, preset) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                row)
         return cur.rowcount == 1
 
     def tunes(self, since: str | None = None) -> list[sqlite3.Row]:
