@@ -251,8 +251,13 @@ def build_parser() -> argparse.ArgumentParser:
                    help="with rp2040: write the fitted board cost model into the package data")
     s.set_defaults(fn=cmd_bench)
 
-    s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form)")
-    s.add_argument("--antenna", required=True, help="antenna JSON or .s1p")
+    s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form, or as the box "
+                       "measured it from the logbook)")
+    s.add_argument("--antenna", help="antenna JSON or .s1p (with --logbook: the model drawn beside the measurement)")
+    s.add_argument("--logbook", metavar="DB", help="the antenna as the box measured it from its logged tunes")
+    s.add_argument("--since", help="with --logbook: tunes from this ISO date or time on, e.g. 2026-11-01")
+    s.add_argument("--until", help="with --logbook: tunes before this ISO date or time")
+    s.add_argument("--network", help="with --logbook: nominal network JSON where the logbook has no element values")
     s.add_argument("--sweep", help="start:stop:points in Hz (default: 1.8e6:30e6:300, within the model's range)")
     s.add_argument("--plot", help="plot of R, X and SWR (.png, .svg or .pdf)")
     s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
