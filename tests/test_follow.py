@@ -17,6 +17,7 @@ import time
 
 import pytest
 from feedmatch.board.follow import Follower
+from feedmatch.board.keying import KeyerLock, KeyPolicy, parse_segments
 from feedmatch.board.link import BoardLink
 from feedmatch.board.rigctl import RigClient
 from feedmatch.sim.demo import _wait
@@ -31,10 +32,9 @@ pytestmark = pytest.mark.skipif(shutil.which("rigctld") is None,
                                        "`make test` installs it where it may run apt-get)")
 
 
-@pytest.fixture
-def rig():
+def _start_rigctld(*ptt):
     port = free_port()
-    p = subprocess.Popen(["rigctld", "-m", "1", "-P", "RIG", "-T", "127.0.0.1", "-t", str(port)],
+    p = subprocess.Popen(["rigctld", "-m", "1", *ptt, "-T", "127.0.0.1", "-t", str(port)],
                          stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
 
     def up():
@@ -44,6 +44,12 @@ def rig():
         except Exception:
             return False
     assert _wait(up, 10), "rigctld did not start"
+    return port, p
+
+
+@pytest.fixture
+def rig():
+    port, p = _start_rigctld("-P", "RIG")
     yield ("127.0.0.1", port, p)
     p.kill()
     p.wait(5)
@@ -113,8 +119,22 @@ def test_a_band_change_presets_the_box_and_the_first_carrier_confirms_it(rig, st
     assert fo.presets == 1
 
 
-def _keyed_follower(host, port, pty, said, max_key_s=3.0):
-    return Follower(pty, RigClient(host, port), said.append, tune_carrier_w=10.0, max_key_s=max_key_s)
+# Segments a Region 1 operator might declare (MHz): 40, 30, 20, 15 m and 10 m FM, plus 6 m and
+# 2 m, which are amateur bands (ITU Radio Regulations, Article 5, Table of Frequency
+# Allocations, edition 2020: 50-52 MHz and 144-146 MHz in Region 1) that this HF box
+# is not built for.
+SEGMENTS = "7.0-7.2,10.1-10.15,14.0-14.35,21.0-21.45,29.51-29.7,50.0-50.5,144-146"
+
+
+def _policy(mode="CW", segments=SEGMENTS, antenna=None):
+    pol = KeyPolicy(parse_segments(segments), 1, mode, 10.0, antenna=antenna)
+    pol.check_declared()
+    return pol
+
+
+def _keyed_follower(host, port, pty, said, max_key_s=3.0, mode="CW", lock=None):
+    return Follower(pty, RigClient(host, port), said.append, tune_carrier_w=10.0, max_key_s=max_key_s,
+                    carrier_mode=mode, policy=_policy(mode), lock=lock)
 
 
 def test_a_keyed_tune_unkeys_and_restores_the_radio(rig, station):
@@ -168,8 +188,8 @@ def test_the_radio_is_unkeyed_when_the_tune_cannot_finish(fault, rig, station):
 
 def _follow_cli(host, port, pty, *more):
     return subprocess.Popen([str(BIN / "feedmatch"), "follow", "--port", pty, "--rig", f"{host}:{port}",
-                             "--tune-carrier", "10", *more], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True)
+                             "--tune-carrier", "10", "--segments", SEGMENTS, "--region", "1", *more],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
 def _wait_line(p, words, timeout=15.0):
@@ -224,3 +244,170 @@ def test_losing_rigctld_mid_tune_is_said_not_a_traceback(rig, station):
     text = "".join(lines) + out
     assert "COULD NOT UNKEY THE RADIO" in text and "Traceback" not in err, (text, err)
     assert p.returncode == 0
+
+
+class PttWatch:
+    """Polls 't' through rigctld every 20 ms for the whole test; counts key-downs."""
+
+    def __init__(self, host, port):
+        self.c = RigClient(host, port)
+        self.downs = self.samples = 0
+        self.on = False
+        self.stop = threading.Event()
+        self._th = threading.Thread(target=self._loop, daemon=True)
+
+    def start(self):
+        self._th.start()
+        assert _wait(lambda: self.samples > 0, 5)
+        return self
+
+    def _loop(self):
+        while not self.stop.is_set():
+            on = self.c.ptt()
+            self.samples += 1
+            if on and not self.on:
+                self.downs += 1
+            self.on = on
+            self.stop.wait(0.02)
+
+    def close(self):
+        self.stop.set()
+        self._th.join(2)
+        self.c.close()
+
+
+def _run(fo):
+    th = threading.Thread(target=fo.run, daemon=True)
+    th.start()
+    return th
+
+
+def _said(said, *words):
+    return lambda: any(all(w in s for w in words) for s in said)
+
+
+def test_no_carrier_outside_a_declared_matchable_segment_and_one_inside(rig, station):
+    host, port, _ = rig
+    vs, pty = station
+    bridge = RigBridge(vs, RigClient(host, port)).start()
+    ctl = RigClient(host, port).open()
+    ctl.set_freq(27.185e6)   # a CB channel, in no amateur band
+    watch = PttWatch(host, port).start()
+    said: list[str] = []
+    fo = Follower(pty, RigClient(host, port), said.append, tune_carrier_w=10.0, max_key_s=3.0,
+                  policy=_policy(segments=SEGMENTS + ",3.5-3.8", antenna=vs.station.antenna))
+    th = _run(fo)
+    try:
+        for f, why in [(27.185e6, "in no amateur band of ITU Region 1"),
+                       (50.1e6, "outside the range the box is built for"),
+                       (145.0e6, "outside the range the box is built for"),
+                       (21.0005e6, "within 2 kHz of the edge of 21.0000-21.4500 MHz"),
+                       (14.3495e6, "within 2 kHz of the edge"),
+                       (3.6e6, "the box cannot match the antenna")]:  # a 4.5 m vertical on 80 m
+            ctl.set_freq(f)
+            assert _wait(_said(said, f"{f / 1e6:.4f} MHz: not keying", why), 15), said
+        assert watch.downs == 0 and watch.samples > 20
+        ctl.set_freq(21.2e6)  # inside a declared segment the box can match: keys, tunes, unkeys
+        assert _wait(_said(said, "tuned 21.2000 MHz"), 20), said
+    finally:
+        fo.stop.set()
+        th.join(10)
+        fo.close()
+        bridge.close()
+        watch.close()
+    assert any("tuned 21.2000 MHz: locked" in s for s in said), said
+    assert watch.downs == 1 and not ctl.ptt()
+    assert vs.model.violations == []
+
+
+def test_no_fm_carrier_on_30_m(rig, station):
+    host, port, _ = rig
+    vs, pty = station
+    ctl = RigClient(host, port).open()
+    ctl.set_freq(10.12e6)
+    watch = PttWatch(host, port).start()
+    said: list[str] = []
+    fo = _keyed_follower(host, port, pty, said, mode="FM")
+    th = _run(fo)
+    try:
+        assert _wait(_said(said, "10.1200 MHz: not keying", "FM carrier", "not in the band plan"), 10), said
+        time.sleep(1.0)
+    finally:
+        fo.stop.set()
+        th.join(10)
+        fo.close()
+        watch.close()
+    assert watch.downs == 0 and watch.samples > 20
+
+
+def test_two_followers_one_key_down(rig, station):
+    host, port, _ = rig
+    vs, pty = station
+    bridge = RigBridge(vs, RigClient(host, port)).start()
+    ctl = RigClient(host, port).open()
+    ctl.set_freq(21.2e6)
+    watch = PttWatch(host, port).start()
+    said1: list[str] = []
+    said2: list[str] = []
+    locks = [KeyerLock(f"{host}:{port}", pty), KeyerLock(f"{host}:{port}", pty)]
+    fos = [_keyed_follower(host, port, pty, said1, lock=locks[0]),
+           _keyed_follower(host, port, pty, said2, lock=locks[1])]
+    ths = [_run(fo) for fo in fos]
+    try:
+        assert _wait(lambda: any("tuned 21.2000 MHz" in s for s in said1 + said2), 20), (said1, said2)
+        assert _wait(lambda: any("another follower (pid" in s for s in said1 + said2), 10), (said1, said2)
+    finally:
+        for fo, th in zip(fos, ths):
+            fo.stop.set()
+            th.join(10)
+            fo.close()
+        for lk in locks:
+            lk.release()
+        bridge.close()
+        watch.close()
+    assert watch.downs == 1 and not ctl.ptt()
+    assert any("following without keying" in s for s in said1 + said2)
+
+
+def test_a_dummy_radio_without_ptt_is_followed_and_refused_for_keying_in_words(station):
+    vs, pty = station
+    port, proc = _start_rigctld()   # no -P RIG: 't' answers RPRT -11
+    try:
+        ctl = RigClient("127.0.0.1", port).open()
+        ctl.set_freq(7.1e6)
+        said: list[str] = []
+        fo = Follower(pty, RigClient("127.0.0.1", port), said.append)
+        th = _run(fo)
+        try:
+            assert _wait(_said(said, "RPRT -11", "-P RIG", "without knowing PTT"), 10), said
+            assert _wait(_said(said, "7.1000 MHz", "nothing stored here"), 10), said  # still following
+        finally:
+            fo.stop.set()
+            th.join(10)
+            fo.close()
+        p = subprocess.run([str(BIN / "feedmatch"), "follow", "--port", pty, "--rig", f"127.0.0.1:{port}",
+                            "--tune-carrier", "10", "--segments", SEGMENTS, "--region", "1"],
+                           capture_output=True, text=True, timeout=30)
+        assert p.returncode == 2 and len(p.stderr.splitlines()) == 1, p.stderr
+        assert "RPRT -11" in p.stderr and "-P RIG" in p.stderr and "Traceback" not in p.stderr
+    finally:
+        proc.kill()
+        proc.wait(5)
+
+
+def test_while_it_cannot_follow_it_says_so_again_and_again(rig, station):
+    host, port, proc = rig
+    vs, pty = station
+    said: list[str] = []
+    fo = Follower(pty, RigClient(host, port), said.append)
+    fo.remind_s = 1.0   # 30 s in use
+    th = _run(fo)
+    try:
+        assert _wait(lambda: fo.last_f is not None, 10)
+        proc.kill()
+        assert _wait(lambda: sum("still not following" in s for s in said) >= 2, 15), said
+    finally:
+        fo.stop.set()
+        th.join(10)
+        fo.close()
+    assert any(s.startswith("not following: ") and "rigctld" in s for s in said), said

@@ -9,6 +9,7 @@ import threading
 
 import pytest
 from feedmatch.board.follow import Follower
+from feedmatch.board.keying import KeyPolicy, parse_segments
 from feedmatch.board.rigctl import RigClient, RigError, parse_hostport
 from feedmatch.errors import InputError
 
@@ -60,10 +61,13 @@ def test_the_client_reads_and_sets_as_the_protocol_says():
     c.close()
 
 
+_POLICY = KeyPolicy(parse_segments("7.0-7.2"), 1, "CW", 10.0)
+
+
 def test_no_key_when_the_power_does_not_read_back():
     r = _Radio(0.9)   # the radio ignores the power it is given
     said = []
-    fo = Follower("unused", RigClient("127.0.0.1", r.port), said.append, tune_carrier_w=10.0)
+    fo = Follower("unused", RigClient("127.0.0.1", r.port), said.append, tune_carrier_w=10.0, policy=_POLICY)
     fo.limits = {"hot_switch_w": 30.0, "min_tune_w": 2.0, "max_tune_w": 20.0}
     assert fo.keyed_tune(None, 7.1e6) is None
     assert any("reads back 0.900" in s for s in said) and "T 1" not in r.log
@@ -72,11 +76,13 @@ def test_no_key_when_the_power_does_not_read_back():
 
 def test_no_key_above_the_box_limits():
     said = []
-    fo = Follower("unused", RigClient("127.0.0.1", 1), said.append, tune_carrier_w=25.0)
+    fo = Follower("unused", RigClient("127.0.0.1", 1), said.append, tune_carrier_w=25.0, policy=_POLICY)
     fo.limits = {"hot_switch_w": 30.0, "min_tune_w": 2.0, "max_tune_w": 20.0}
     assert fo.keyed_tune(None, 7.1e6) is None and "outside the box's tune window" in said[0]
     with pytest.raises(InputError):
-        Follower("unused", RigClient("127.0.0.1", 1), said.append, tune_carrier_w=500.0)
+        Follower("unused", RigClient("127.0.0.1", 1), said.append, tune_carrier_w=500.0, policy=_POLICY)
+    with pytest.raises(InputError, match="--segments"):  # no keying without declared segments
+        Follower("unused", RigClient("127.0.0.1", 1), said.append, tune_carrier_w=10.0)
 
 
 @pytest.mark.parametrize("text,want", [("localhost:4532", ("localhost", 4532)), ("rig.lan", ("rig.lan", 4532)),

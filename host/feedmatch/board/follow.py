@@ -6,10 +6,14 @@ moment there is); the lookup and the bins are the firmware's own.  The radio's
 frequency and mode are sent to the board so every record carries them.
 
 Optionally (tune_carrier_w) the radio is keyed for a tune where nothing is
-stored: carrier mode and a power no higher than the box's limits, read back
-before keying, keyed for at most max_key_s, unkeyed on every way out (an
-error, a timeout, Ctrl-C, a lost board); its power and mode are restored.
-Nothing here prints: messages go to say(text).
+stored, and only where the KeyPolicy (board/keying.py) allows it: a declared
+segment inside an amateur band, clear of its edges, a carrier mode the band
+plan allows there, the box's range.  Only the holder of the KeyerLock keys.
+Carrier mode and a power no higher than the box's limits, read back before
+keying, keyed for at most max_key_s, unkeyed on every way out (an error, a
+timeout, Ctrl-C, a lost board); its power and mode are restored.  Nothing here
+prints: messages go to say(text); while it cannot follow it says so every
+REMIND_S.
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from collections.abc import Callable
 from typing import Any
 
 from feedmatch.board.hub import ensure_hub
+from feedmatch.board.keying import KeyerLock, KeyPolicy
 from feedmatch.board.link import BoardLink, state_values
 from feedmatch.board.rigctl import RigClient, RigError
 from feedmatch.errors import BoardRefused, InputError, LinkError
@@ -27,6 +32,7 @@ from feedmatch.errors import BoardRefused, InputError, LinkError
 MAX_KEY_S = 5.0  # the longest a tune carrier stays keyed, whatever happens
 HEARTBEAT_S = 3.0  # how often the board is asked whether it is still there
 SETTLE_S = 0.3     # a frequency is offered to the board once the dial has rested this long
+REMIND_S = 30.0    # while it cannot follow, it says so this often: never silent
 
 
 def _mhz(f: float) -> str:
@@ -35,13 +41,22 @@ def _mhz(f: float) -> str:
 
 class Follower:
     def __init__(self, board_port: str, rig: RigClient, say: Callable[[str], None], baud: int = 115200,
-                 tune_carrier_w: float | None = None, carrier_mode: str = "FM", rig_full_w: float = 100.0,
-                 max_key_s: float = MAX_KEY_S, poll_s: float = 0.25):
+                 tune_carrier_w: float | None = None, carrier_mode: str = "CW", rig_full_w: float = 100.0,
+                 max_key_s: float = MAX_KEY_S, poll_s: float = 0.25, policy: KeyPolicy | None = None,
+                 lock: KeyerLock | None = None):
         if tune_carrier_w is not None and not 0 < tune_carrier_w <= rig_full_w:
             raise InputError(f"--tune-carrier must be above 0 and at most the radio's full power "
                              f"({rig_full_w:g} W), got {tune_carrier_w:g}")
         if not 0 < max_key_s <= MAX_KEY_S:
             raise InputError(f"the key time must be above 0 and at most {MAX_KEY_S:g} s")
+        if tune_carrier_w is not None and policy is None:
+            raise InputError("--tune-carrier needs the segments you may transmit in (--segments) and your "
+                             "ITU Region (--region)")
+        self.policy, self.lock = policy, lock
+        self.no_key_bins: set[int] = set()  # bins where a keyed tune found no match: not keyed again
+        self.ptt_known = True
+        self.remind_s = REMIND_S
+        self.key_off = ""  # set when the radio refused to key: no more keying this session
         self.port, self.baud, self.rig, self.say = board_port, baud, rig, say
         self.tune_carrier_w, self.carrier_mode, self.rig_full_w = tune_carrier_w, carrier_mode, rig_full_w
         self.max_key_s, self.poll_s = max_key_s, poll_s
@@ -78,6 +93,8 @@ class Follower:
                 ln.request("status")
                 self.limits = dict(ln.request("cfg-get", {"section": "power"})["value"])
                 self.bank = ln.bank()
+                if self.policy is not None:
+                    self._policy_from_board(ln)
             except LinkError:
                 ln.close()
                 raise
@@ -88,49 +105,72 @@ class Follower:
             self.link = ln
         return self.link
 
-    def _drop_board(self, why: str) -> None:
-        if self.link is not None:
-            self.link.close()
-        self.link = None
-        self.say(f"lost the board ({why}); retrying")
+    def _policy_from_board(self, ln: BoardLink) -> None:
+        """The box's own network and retune SWR decide what it can match (not a file's)."""
+        from feedmatch.rf.network import network_from_dict
+
+        assert self.policy is not None
+        m = ln.element_sections()
+        if m and isinstance(m.get("network"), dict):
+            try:
+                self.policy.network = network_from_dict(m["network"], "the board's network")
+                self.policy._matched.clear()
+            except InputError:
+                pass  # an older board: the station's network stands
+        try:
+            self.policy.swr_limit = float(ln.request("cfg-get", {"section": "tune"})["value"]["retune_swr"])
+        except (BoardRefused, KeyError, TypeError, ValueError):
+            pass
 
     # -- the loop ----------------------------------------------------------------------
+    def _read_rig(self) -> tuple[float, str, bool]:
+        f = self.rig.freq()
+        mode, _pb = self.rig.mode()
+        if not self.ptt_known:
+            return f, mode, False
+        try:
+            return f, mode, self.rig.ptt()
+        except RigError as e:
+            if e.code not in (-11, -4) or self.tune_carrier_w is not None:
+                raise
+            # A radio without a PTT rigctld can read still has a frequency to follow; the
+            # board's hot-switch guard refuses to move relays under power whatever we think.
+            self.ptt_known = False
+            self.say(f"{e}. Following the frequency without knowing PTT: the board's hot-switch guard "
+                     "still keeps the relays still under power")
+            return f, mode, False
+
     def run(self, stop: threading.Event | None = None) -> None:
         if stop is not None:
             self.stop = stop
-        rig_down = board_down = False
+        down = ""          # why it cannot follow now ("" while it follows)
+        said_at = 0.0
         while not self.stop.is_set():
             try:
-                f = self.rig.freq()
-                mode, _pb = self.rig.mode()
-                keyed = self.rig.ptt()
-                if rig_down:
-                    self.say("rigctld is back")
-                rig_down = False
-            except RigError as e:
-                if not rig_down:
-                    self.say(f"{e}; retrying every 2 s")
-                rig_down = True
-                self.rig.close()
-                self.stop.wait(2.0)
-                continue
-            try:
+                f, mode, keyed = self._read_rig()
                 ln = self._board()
-                if board_down:
-                    self.say("the board is back")
-                board_down = False
                 self._on_radio(ln, f, mode, keyed)
+                if down:
+                    self.say("following again: rigctld and the board answer")
+                down = ""
             except RigError as e:
-                self.say(f"{e}; retrying every 2 s")
-                rig_down = True
                 self.rig.close()
+                why = f"{e}"
+                if why != down or time.monotonic() - said_at >= self.remind_s:
+                    self.say(f"{'still ' if why == down else ''}not following: {why}; retrying every 2 s")
+                    said_at = time.monotonic()
+                down = why
                 self.stop.wait(2.0)
                 continue
             except LinkError as e:
-                if not board_down:
-                    self._drop_board(str(e))
-                board_down = True
+                if self.link is not None:
+                    self.link.close()
                 self.link = None
+                why = f"lost the board ({e})"
+                if why != down or time.monotonic() - said_at >= self.remind_s:
+                    self.say(f"{'still ' if why == down else ''}not following: {why}; retrying every 2 s")
+                    said_at = time.monotonic()
+                down = why
                 self.stop.wait(2.0)
                 continue
             self.stop.wait(self.poll_s)
@@ -185,7 +225,29 @@ class Follower:
             return
         self.say(f"{_mhz(f)} {mode}: nothing stored here; the box is left as it is")
         if self.tune_carrier_w is not None:
-            self.keyed_tune(ln, f)
+            why = self.may_key(f, b)
+            if why:
+                self.say(f"{_mhz(f)}: not keying: {why}")
+                return
+            rec = self.keyed_tune(ln, f)
+            if rec is not None and rec.get("outcome") not in ("locked", "best") and b is not None:
+                self.no_key_bins.add(int(b))
+
+    def may_key(self, f: float, bin_no: int | None = None) -> str:
+        """Why a tune carrier may not be keyed at f now ("" when it may)."""
+        assert self.policy is not None
+        why = self.policy.refusal(f)
+        if why:
+            return why
+        if self.key_off:
+            return self.key_off
+        if bin_no is not None and int(bin_no) in self.no_key_bins:
+            return "a keyed tune here found no match earlier in this session; tune it by hand"
+        if self.lock is not None:
+            held = self.lock.acquire()
+            if held:
+                return f"{held}; following without keying"
+        return ""
 
     # -- keying the radio for a tune ---------------------------------------------------
     def keyed_tune(self, ln: BoardLink, f: float) -> dict[str, Any] | None:
@@ -214,7 +276,14 @@ class Follower:
             ln.request("tune", {"freq_hz": f})
             self.say(f"keying {w:g} W {self.carrier_mode} for at most {self.max_key_s:g} s to tune {_mhz(f)}")
             keyed = True
-            self.rig.set_ptt(True)
+            try:
+                self.rig.set_ptt(True)
+            except RigError as e:
+                if e.code is None:
+                    raise  # rigctld went away: the loop says so and retries
+                self.key_off = f"the radio refused to key earlier ({e})"
+                self.say(f"cannot key: {e}. No more keying in this session")
+                return None
             rec = ln.wait_event("record", lambda o: int(o.get("seq", 0)) > before, timeout=self.max_key_s)
         finally:
             if keyed:

@@ -15,7 +15,45 @@ from feedmatch.errors import InputError, LinkError
 
 
 class RigError(LinkError):
-    """rigctld is unreachable, went away, or refused a command."""
+    """rigctld is unreachable, went away, or refused a command (code: its RPRT number)."""
+
+    def __init__(self, msg: str, code: int | None = None, cmd: str = ""):
+        super().__init__(msg)
+        self.code, self.cmd = code, cmd
+
+
+# Hamlib's error codes as rigctld reports them ("RPRT -n"): enum rig_errcode_e in
+# hamlib/rig.h and the rigerror() texts (Hamlib 4.5; from memory, -11's text checked
+# against Debian's rigctl 4.5.4: "Feature not available").
+HAMLIB_ERRORS = {
+    1: "invalid parameter", 2: "invalid configuration", 3: "memory shortage",
+    4: "function not implemented", 5: "communication timed out", 6: "IO error",
+    7: "internal Hamlib error", 8: "protocol error", 9: "command rejected by the rig",
+    10: "command performed, but arg truncated", 11: "feature not available",
+    12: "target VFO unaccessible", 13: "communication bus error", 14: "communication bus collision",
+    15: "NULL RIG handle or invalid pointer parameter", 16: "invalid VFO", 17: "argument out of domain of func",
+}
+
+
+def explain(cmd: str, code: int | None, where: str) -> str:
+    """A refused command in words: what is wrong and what to do."""
+    name = HAMLIB_ERRORS.get(abs(code), "unknown error") if code is not None else "no code"
+    word = cmd.split()[0] if cmd else "?"
+    base = f"rigctld at {where} refused '{cmd}' (RPRT {code}: {name})"
+    if word in ("t", "T") and code in (-11, -4):
+        return (f"{base}: the radio has no PTT rigctld can use. Start rigctld with a PTT type: -P RIG "
+                "(PTT by CAT command; the dummy radio -m 1 needs it) or -P RTS/-P DTR with -p DEVICE for a "
+                "PTT line; or follow without --tune-carrier")
+    if word == "T" and code == -9:
+        return (f"{base}: the radio would not transmit. Check that it may transmit on this frequency "
+                "(its own band limits, TX inhibit, a locked front panel)")
+    if word in ("l", "L") and "RFPOWER" in cmd:
+        return (f"{base}: the radio's RF power cannot be read or set through rigctld, so the tune power "
+                "cannot be checked; set it up in rigctld (model and port) or follow without --tune-carrier")
+    if word in ("m", "M"):
+        return (f"{base}: the radio does not take this mode through rigctld; choose a --carrier-mode it has "
+                "(`rigctl -m MODEL M ?` lists them)")
+    return f"{base}: check the radio and rigctld's model (-m) and port (-r)"
 
 
 def parse_hostport(text: str, default_port: int = 4532) -> tuple[str, int]:
@@ -98,7 +136,11 @@ class RigClient:
             code = first.split()[1] if len(first.split()) > 1 else "?"
             if values == 0 and code == "0":
                 return []
-            raise RigError(f"rigctld refused '{cmd}' (RPRT {code})")
+            try:
+                n: int | None = int(code)
+            except ValueError:
+                n = None
+            raise RigError(explain(cmd, n, f"{self.host}:{self.port}"), n, cmd)
         out = [first] + [self._line(deadline) for _ in range(values - 1)]
         return out
 

@@ -339,17 +339,71 @@ def cmd_virtual_board(a) -> int:
     return 0
 
 
+def _carrier_policy(a):
+    """--tune-carrier's checks, all before anything connects: one line and exit 2 on any."""
+    from feedmatch.board import keying
+    from feedmatch.rf import bands
+
+    st = None
+    if a.station:
+        from feedmatch.sim.station import load_station
+
+        st = load_station(a.station)
+    if a.tune_carrier is None:
+        return None, []
+    mode = keying.check_mode(a.carrier_mode)
+    if a.segments:
+        segs = keying.parse_segments(a.segments)
+    elif st is not None and st.segments:
+        segs = st.segments
+    else:
+        raise InputError("--tune-carrier keys only inside the segments you may transmit in: give --segments "
+                         "(MHz, e.g. 7.0-7.2,14.0-14.35, or a file) or put \"segments\" in the --station file")
+    region = a.region if a.region is not None else (st.region if st is not None else None)
+    if region is None:
+        raise InputError("--tune-carrier needs your ITU Region: --region 1, 2 or 3 (or \"region\" in the "
+                         "--station file)")
+    bands.check_region(region)
+    if not a.tune_carrier <= a.rig_full_power:
+        raise InputError(f"--tune-carrier {a.tune_carrier:g} W is above the radio's full power "
+                         f"(--rig-full-power {a.rig_full_power:g} W)")
+    from fmlogic.config import merged
+
+    cfg = merged(st.board_config if st is not None else {})
+    keying.check_power(a.tune_carrier, cfg["power"],
+                       f"the board config of {a.station}" if st is not None else "the firmware's default board "
+                       "config; the board's own limits are checked again before keying")
+    antenna = st.antenna if st is not None else None
+    if a.antenna:
+        from feedmatch.rf.antenna import load_antenna
+
+        antenna = load_antenna(a.antenna)
+    from feedmatch.rf.network import load_network
+
+    pol = keying.KeyPolicy(segs, int(region), mode, a.tune_carrier,
+                           network=st.network if st is not None else load_network(), antenna=antenna,
+                           swr_limit=float(cfg["tune"]["retune_swr"]))
+    notes = pol.check_declared()
+    if antenna is None:
+        notes.append(f"no antenna model (--station or --antenna): the box's range is taken as "
+                     f"{pol.box_range_hz[0] / 1e6:g}-{pol.box_range_hz[1] / 1e6:g} MHz without checking "
+                     "that it can match the antenna there")
+    return pol, notes
+
+
 def cmd_follow(a) -> int:
     import datetime as dt
     import math
     import signal
 
     from feedmatch.board.follow import Follower
+    from feedmatch.board.keying import KeyerLock
     from feedmatch.board.rigctl import RigClient, parse_hostport
 
     if not (math.isfinite(a.rig_full_power) and 0 < a.rig_full_power <= 10000):
         raise InputError(f"--rig-full-power must be above 0 and up to 10000 W, got {a.rig_full_power:g}")
     host, port = parse_hostport(a.rig)
+    policy, notes = _carrier_policy(a)
 
     def say(text: str) -> None:
         now = dt.datetime.now()
@@ -360,17 +414,29 @@ def cmd_follow(a) -> int:
         else:
             print(f"{now.strftime('%H:%M:%S')} {text}", flush=True)
 
+    lock = KeyerLock(f"{host}:{port}", a.port) if policy is not None else None
     fo = Follower(a.port, RigClient(host, port), say, a.baud, tune_carrier_w=a.tune_carrier,
-                  carrier_mode=a.carrier_mode, rig_full_w=a.rig_full_power)
+                  carrier_mode=policy.mode if policy else "CW", rig_full_w=a.rig_full_power,
+                  policy=policy, lock=lock)
     try:
         fo.rig.open()      # a wrong address is one line, at once
+        if policy is not None:
+            fo.rig.ptt()   # a radio without a PTT rigctld can switch cannot key: said now, in words
+            fo.rig.power()
         fo._board()        # so is a port that is not a board
     except LinkError:
         fo.close()
         raise
-    if a.tune_carrier is not None:
-        say(f"--tune-carrier: this program will KEY THE RADIO at {a.tune_carrier:g} W for at most "
-            f"{fo.max_key_s:g} s where nothing is stored; you stay responsible for the station")
+    if policy is not None:
+        say(f"--tune-carrier: this program will KEY THE RADIO at {a.tune_carrier:g} W {policy.mode} for at most "
+            f"{fo.max_key_s:g} s where nothing is stored, only inside "
+            f"{', '.join(f'{lo / 1e6:g}-{hi / 1e6:g}' for lo, hi in policy.segments)} MHz (ITU Region "
+            f"{policy.region}); you stay responsible for the station")
+        for n in notes:
+            say("note: " + n)
+        held = lock.acquire() if lock is not None else None
+        say(f"not the keyer: {held}; following without keying" if held else
+            "this follower is the keyer for this radio and board")
 
     def _term(_sig, _frame):
         raise KeyboardInterrupt
@@ -383,6 +449,8 @@ def cmd_follow(a) -> int:
         pass
     finally:
         fo.close()
+        if lock is not None:
+            lock.release()
     say(f"stopped: {fo.presets} presets, {fo.keyed_tunes} keyed tunes"
         + (f", {fo.unkey_failures} FAILED UNKEYS" if fo.unkey_failures else ""))
     return 0
@@ -459,7 +527,16 @@ def add_commands(sub) -> None:
     s.add_argument("--tune-carrier", type=float, metavar="WATTS",
                    help="KEYS THE RADIO: where nothing is stored, key this power in --carrier-mode for a tune "
                         "(at most 5 s), then unkey and restore power and mode. Off by default")
-    s.add_argument("--carrier-mode", default="FM", help="the radio mode that sends a steady carrier (default FM)")
+    s.add_argument("--carrier-mode", default="CW",
+                   help="the Hamlib mode of the tune carrier (default CW: a key-down carrier); AM or FM only "
+                        "where the band plan allows them")
+    s.add_argument("--segments", metavar="LIST|FILE",
+                   help="with --tune-carrier: the segments you may transmit in, MHz, e.g. 7.0-7.2,14.0-14.35 "
+                        "(or a file of them); nothing is keyed outside them")
+    s.add_argument("--region", type=int, choices=[1, 2, 3],
+                   help="your ITU Region (1 Europe/Africa, 2 Americas, 3 Asia-Pacific): the band edges")
+    s.add_argument("--station", help="station JSON: its segments, region, antenna, network and board limits")
+    s.add_argument("--antenna", help="antenna JSON or .s1p: key only where the box can match it")
     s.add_argument("--rig-full-power", type=float, default=100.0,
                    help="the radio's power in W at RF power level 1.0 (to set --tune-carrier)")
     s.set_defaults(fn=cmd_follow)

@@ -1,10 +1,13 @@
-"""The amateur HF band plan, 160 m to 10 m.
+"""The amateur bands: one table of allocations per ITU Region.
 
-Edges are the ITU Region 1/2/3 common allocations as listed in the ARRL
-Handbook band charts and the ITU Radio Regulations Article 5 (from memory; the
-160 m and 80 m edges are the widest, Region 2, allocations, 1.800-2.000 and
-3.500-4.000 MHz, and 40 m is the Region 2 7.000-7.300 MHz).  Check your own
-licence conditions: national plans are narrower in places.
+Edges are the amateur-service allocations of the ITU Radio Regulations,
+Article 5, Table of Frequency Allocations (edition 2020), per Region (from
+memory; check the current edition and, above all, your own licence: national
+allocations are narrower in places and some footnotes widen them).  The
+logbook's and the designer's HF bands (HF_BANDS, 160 m to 10 m) take the widest
+edges of the three Regions (160 m 1.800-2.000, 80 m 3.500-4.000, 40 m
+7.000-7.300 MHz: Region 2); `allocation(f, region)` answers for one Region, and
+is what decides whether a carrier may be keyed at all (board/keying.py).
 """
 
 from __future__ import annotations
@@ -12,6 +15,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from feedmatch.errors import InputError
+
+ITU_SOURCE = "ITU Radio Regulations, Article 5, Table of Frequency Allocations (edition 2020)"
+REGIONS = (1, 2, 3)
 
 
 @dataclass(frozen=True)
@@ -23,6 +29,8 @@ class Band:
     # where national allocations are (60 m; see HF_BANDS).
     span_low_hz: float | None = None
     span_high_hz: float | None = None
+    # The amateur allocation in ITU Regions 1, 2 and 3: (low_hz, high_hz) or None.
+    regions: tuple[tuple[float, float] | None, ...] = ()
 
     def holds(self, f_hz: float) -> bool:
         return (self.span_low_hz or self.low_hz) <= f_hz <= (self.span_high_hz or self.high_hz)
@@ -31,24 +39,66 @@ class Band:
     def centre_hz(self) -> float:
         return 0.5 * (self.low_hz + self.high_hz)
 
+    def in_region(self, region: int) -> tuple[float, float] | None:
+        """This band's allocation edges (Hz) in an ITU Region, or None where it has none."""
+        return self.regions[region - 1] if self.regions else None
 
-HF_BANDS = (
-    Band("160m", 1.800e6, 2.000e6),
-    Band("80m", 3.500e6, 4.000e6),
-    # 60 m: the common edges are the WRC-15 secondary allocation 5351.5-5366.5 kHz
-    # (ITU RR Article 5, footnote 5.133B).  National channels and allocations lie
-    # from about 5250 to 5450 kHz (for example the US channels up to 5406.4 kHz and
-    # the UK's from 5258.5 kHz; from memory), so the logbook counts that span as
-    # 60 m rather than "out".
-    Band("60m", 5.3515e6, 5.3665e6, 5.250e6, 5.450e6),
-    Band("40m", 7.000e6, 7.300e6),
-    Band("30m", 10.100e6, 10.150e6),
-    Band("20m", 14.000e6, 14.350e6),
-    Band("17m", 18.068e6, 18.168e6),
-    Band("15m", 21.000e6, 21.450e6),
-    Band("12m", 24.890e6, 24.990e6),
-    Band("10m", 28.000e6, 29.700e6),
+
+def _band(name: str, r1, r2, r3, span: tuple[float, float] | None = None) -> Band:
+    """A band from its Region 1/2/3 edges in kHz; its own edges are the widest of them."""
+    regs = tuple(None if r is None else (r[0] * 1e3, r[1] * 1e3) for r in (r1, r2, r3))
+    have = [r for r in regs if r is not None]
+    return Band(name, min(r[0] for r in have), max(r[1] for r in have),
+                span[0] if span else None, span[1] if span else None, regs)
+
+
+def _same(lo: float, hi: float):
+    return (lo, hi), (lo, hi), (lo, hi)
+
+
+# The one table (kHz), ITU RR Article 5 (edition 2020), from memory.  160 m: Region 1
+# has 1810-1850 kHz (1850-2000 only by national footnotes).  80 m: Region 1 3500-3800,
+# Region 3 3500-3900.  40 m: Regions 1 and 3 7000-7200 since WRC-03.  60 m: the WRC-15
+# secondary allocation 5351.5-5366.5 kHz (footnote 5.133B); national channels and
+# allocations lie from about 5250 to 5450 kHz (the US channels up to 5406.4 kHz, the
+# UK's from 5258.5 kHz; from memory), so the logbook counts that span as 60 m rather
+# than "out" -- keying still needs the Article 5 edges.  6 m: Region 1 50-52 MHz since
+# WRC-19 (secondary), Regions 2 and 3 50-54 MHz.
+ALL_BANDS = (
+    _band("2200m", *_same(135.7, 137.8)),
+    _band("630m", *_same(472.0, 479.0)),
+    _band("160m", (1810.0, 1850.0), (1800.0, 2000.0), (1800.0, 2000.0)),
+    _band("80m", (3500.0, 3800.0), (3500.0, 4000.0), (3500.0, 3900.0)),
+    _band("60m", *_same(5351.5, 5366.5), span=(5.250e6, 5.450e6)),
+    _band("40m", (7000.0, 7200.0), (7000.0, 7300.0), (7000.0, 7200.0)),
+    _band("30m", *_same(10100.0, 10150.0)),
+    _band("20m", *_same(14000.0, 14350.0)),
+    _band("17m", *_same(18068.0, 18168.0)),
+    _band("15m", *_same(21000.0, 21450.0)),
+    _band("12m", *_same(24890.0, 24990.0)),
+    _band("10m", *_same(28000.0, 29700.0)),
+    _band("6m", (50000.0, 52000.0), (50000.0, 54000.0), (50000.0, 54000.0)),
+    _band("2m", (144000.0, 146000.0), (144000.0, 148000.0), (144000.0, 148000.0)),
+    _band("70cm", (430000.0, 440000.0), (420000.0, 450000.0), (420000.0, 450000.0)),
 )
+# The HF bands the logbook, the designer and the scorer work over: 160 m to 10 m.
+HF_BANDS = tuple(b for b in ALL_BANDS if 1.8e6 <= b.low_hz < 30e6)
+
+
+def check_region(region) -> int:
+    if region not in REGIONS:
+        raise InputError(f"the ITU Region must be 1, 2 or 3 (1: Europe, Africa, Middle East, northern Asia; "
+                         f"2: the Americas; 3: the rest of Asia and Oceania), got {region!r}")
+    return int(region)
+
+
+def allocation(f_hz: float, region: int) -> tuple[Band, float, float] | None:
+    """The amateur band holding f_hz in an ITU Region with its edges (Hz), or None."""
+    for b in ALL_BANDS:
+        edges = b.in_region(region)
+        if edges is not None and edges[0] <= f_hz <= edges[1]:
+            return b, edges[0], edges[1]
+    return None
 
 
 def by_name(name: str) -> Band:

@@ -142,6 +142,9 @@ class Station:
     script: list[Step]
     board_config: dict
     seed: int = 1
+    # What the operator may transmit in (follow --tune-carrier): [(low_hz, high_hz)] and ITU Region.
+    segments: list[tuple[float, float]] | None = None
+    region: int | None = None
 
     faults: Faults = NO_FAULTS
 
@@ -150,7 +153,8 @@ class Station:
         return StationModel(self.network, self.antenna, self.detector, hot, self.seed, clock, self.faults)
 
 
-_KEYS = {"name", "site", "antenna", "network", "detector", "script", "board", "seed", "comment"}
+_KEYS = {"name", "site", "antenna", "network", "detector", "script", "board", "seed", "comment", "segments",
+         "region"}
 
 
 def station_from_dict(d: dict, where: str, base: Path) -> Station:
@@ -223,7 +227,19 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
         raise InputError(f"{where}: field 'seed' must be an integer")
     name = d.get("name", "station")
     site = d.get("site", "")
-    return Station(str(name), str(site), net, antenna, det, script, cfg, seed)
+    segs = region = None
+    if "segments" in d:
+        from feedmatch.board.keying import segments_from_list
+
+        if not isinstance(d["segments"], list):
+            raise InputError(f"{where}: field 'segments' must be a list such as [\"7.0-7.2\", \"14.0-14.35\"] (MHz)")
+        segs = segments_from_list(d["segments"], f"{where}: segments")
+    if "region" in d:
+        try:
+            region = bands.check_region(d["region"])
+        except InputError as e:
+            raise InputError(f"{where}: field 'region': {e}") from None
+    return Station(str(name), str(site), net, antenna, det, script, cfg, seed, segs, region)
 
 
 def load_station(path: str | Path | None = None) -> Station:
