@@ -27,6 +27,15 @@ DEFAULTS = {
         # `feedmatch calibrate` measures it (0.056 = 25 dB directivity, a
         # typical home-built tandem coupler until calibrated; common practice).
         "leak": 0.056,
+        # The forward port's leakage |d_f| from the reversed calibration pass;
+        # null: taken equal to leak.
+        "leak_fwd": None,
+        # How far the forward/reflected gain ratio may be from 1 (dB).
+        "gain_tol_db": 0.6,
+        # The coupler's complex error from the multi-state calibration
+        # (feedmatch calibrate --coupler): [d_r re, d_r im, d_f re, d_f im,
+        # gain ratio k, error bound]; null until learned (fmlogic.coupler).
+        "coupler": None,
     },
     "power": {
         "min_tune_w": 2.0,
@@ -73,6 +82,7 @@ _RANGES = {
     ("detector", "floor_counts"): ("n", 0.0, 100000.0),
     ("detector", "burst"): ("i", 1, 1024),
     ("detector", "leak"): ("n", 0.0, 0.5),
+    ("detector", "gain_tol_db"): ("n", 0.0, 6.0),
     ("network", "z0_ohm"): ("n", 1.0, 1000.0),
     ("network", "inductor_q"): ("n", 1.0, 100000.0),
     ("network", "capacitor_q"): ("n", 1.0, 100000.0),
@@ -195,6 +205,16 @@ def validate(cfg):
     det = m["detector"]
     _check_table(errs, "detector.fwd", det.get("fwd"))
     _check_table(errs, "detector.ref", det.get("ref"))
+    lf = det.get("leak_fwd")
+    if lf is not None and not (_is_num(lf) and 0.0 <= lf <= 0.5):
+        errs.append("detector.leak_fwd must be null or a number in 0..0.5")
+    cp = det.get("coupler")
+    if cp is not None:
+        if (not isinstance(cp, list) or len(cp) != 6 or not all(_is_num(x) for x in cp)
+                or abs(complex(cp[0], cp[1])) >= 0.6 or abs(complex(cp[2], cp[3])) >= 0.6
+                or not 0.5 <= cp[4] <= 2.0 or not 0.0 <= cp[5] <= 0.2):
+            errs.append("detector.coupler must be null or [d_r re, d_r im, d_f re, d_f im, k, err] "
+                        "with |d| < 0.6, k in 0.5..2, err in 0..0.2")
     p = m["power"]
     if not errs:
         if p["min_tune_w"] >= p["max_tune_w"]:

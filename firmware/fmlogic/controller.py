@@ -17,7 +17,7 @@ import json
 import sys
 
 from fmlogic import config as fcfg
-from fmlogic import link, memory, search
+from fmlogic import coupler, link, memory, search
 from fmlogic.swr import gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
@@ -88,6 +88,7 @@ class Controller:
         m = self.cfg
         self.bank = fcfg.bank_from(m)
         self.meter = fcfg.meter_from(m)
+        self.cp = coupler.from_config(m["detector"], self.meter.ref)
         self.p = m["power"]
         self.t = m["tune"]
         if not hasattr(self, "mem"):
@@ -202,12 +203,14 @@ class Controller:
                 return
             self.preset_f = 0.0
             swr = self._swr()
-            ok = swr <= self.t["target_swr"]
+            bd = self._bound()
+            # Confirmed only where the reading proves the target (the coupler's bounds).
+            ok = bd is not None and bd[1] <= self.t["target_swr"]
             st = self._state_list()
             self._record(fp, st, st, swr, swr, 1, 0, LOCKED if ok else BEST,
-                         "preset confirmed" if ok else "preset above target: tune at lower power",
-                         ok, "preset", None, True)
-            self._set_state(LOCKED if ok else BEST, "preset confirmed" if ok else "preset above target")
+                         "preset confirmed" if ok else "preset not proven: tune at lower power",
+                         ok, "preset", None, True, bd)
+            self._set_state(LOCKED if ok else BEST, "preset confirmed" if ok else "preset not proven")
             return
         if not self.t["auto"] or not in_window or self.manual:
             return
@@ -226,7 +229,7 @@ class Controller:
         if name == "recall" and hint is None:
             name = "model"
         strat = search.make(name, self.bank, f if f > 0 else 14.0e6, self.t["target_swr"],
-                            self.t["budget"], hint[:4] if hint else None, self.cfg["detector"]["leak"])
+                            self.t["budget"], hint[:4] if hint else None, self.cp)
         before = self._state_list()
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
@@ -295,7 +298,8 @@ class Controller:
         memory.journal_take(self.d)
         hit = tn["hint"] and s.n == 1 and outcome == LOCKED
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
-                     outcome, why, hit, tn["name"], _trace(s), tn["preset"])
+                     outcome, why, hit, tn["name"], _trace(s), tn["preset"],
+                     bound(s) if switched and outcome != FAULT else None)
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
         elif outcome == FAULT:
@@ -310,13 +314,16 @@ class Controller:
         return [self.relays[0], self.relays[1], self.relays[2], 1 if self.bypass else 0]
 
     def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat, trace=None,
-                preset=False):
+                preset=False, swr_bound=None):
         rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
                "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
                "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
                "strategy": strat, "board_id": self.cfg["board_id"], "uid": self.uid}
         if trace:
             rec["trace"] = trace
+        if swr_bound is not None:
+            # The true SWR the final reading allows (fmlogic.coupler): [low, high].
+            rec["swr_bound"] = [swr_bound[0], swr_bound[1]]
         if preset:
             rec["preset"] = True
         if self.rig is not None:
@@ -425,11 +432,21 @@ class Controller:
     def _status(self):
         return {"state": self.state, "why": self.why, "relays": self._state_list(),
                 "fwd_w": _r3(self.fwd), "ref_w": _r3(self.ref),
-                "swr": _r3(self._swr()) if self.fwd > 0 else None, "freq_hz": self.freq,
+                "swr": _r3(self._swr()) if self.fwd > 0 else None, "swr_bound": self._bound(),
+                "freq_hz": self.freq,
                 "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
                 "uid": self.uid, "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
                 "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms(),
                 "manual": self.manual}
+
+    def _bound(self):
+        """[low, high] true SWR the present reading allows (the coupler's error
+        bounds), or None without a carrier."""
+        g = gamma_from_powers(self.fwd, self.ref)
+        if self.fwd <= 0.0 or g < 0.0:
+            return None
+        lo, hi = self.cp.bounds(self.cp.correct(g), self.cp.floor_g(self.fwd))
+        return [_r3(swr_from_gamma(lo)), _r3(swr_from_gamma(hi))]
 
     def _handle(self, word, a):
         if word == "status":
@@ -573,9 +590,10 @@ def conclude(s, abort=False):
     (outcome, final state or None to hold, through?, SWR after, keep in memory?,
     note for the record).
 
-    locked: the best reading is at or below the search's accept level, where the
-    coupler's leakage cannot hide a true SWR above target; a reading between
-    that and the target is best-effort, said so.  The search's result is bypass
+    locked: the reading of the final state proves the target with the coupler's
+    error bounds (fmlogic.coupler: noise, leakage, gain ratio); anything else is
+    best-effort (or through), its note the true SWR the reading allows (see
+    bound()).  The search's result is bypass
     when nothing beat the antenna alone with confidence: then the box goes
     through.  States above target are kept too (up to _KEEP_BEST_SWR): a return
     to the frequency starts from them."""
@@ -586,19 +604,29 @@ def conclude(s, abort=False):
         return ("aborted", None, False, -1.0, False, "")
     through = best == search.BYPASS
     final = (0, 0, 1) if through else best
-    g = s.seen.get(best, 2.0)
-    if g <= s.accept_g or (s.confirmed and best == s.order[0]):
+    b = bound(s)
+    if b is not None and b[1] <= s.target_swr:
         outcome, note = LOCKED, ("matched without the network" if through else "matched")
-    elif g <= s.target_g:
-        outcome = THROUGH if through else BEST
-        note = "SWR %.2f read: within the coupler's uncertainty of the target" % swr
     else:
         outcome = THROUGH if through else BEST
-        note = "antenna alone is best; relays through" if through else ""
+        note = "antenna alone is best; relays through; " if through else ""
+        if b is not None:
+            note += "true SWR %.2f-%.2f: the readings cannot prove %.2f" % (b[0], b[1], s.target_swr)
     if abort:
         return ("aborted", final, through, swr, False, note)
     keep = outcome == LOCKED or (outcome == BEST and swr <= _KEEP_BEST_SWR)
     return (outcome, final, through, swr, keep, note)
+
+
+def bound(s):
+    """(SWR low, SWR high): the true SWR the final state's reading allows with
+    the coupler's error bounds, or None when the search has no result."""
+    best, swr = s.result()
+    g = s.seen.get(best)
+    if swr < 0.0 or g is None:
+        return None
+    lo, hi = s.cp.bounds(g, s.floor_g)
+    return (_r3(swr_from_gamma(lo)), _r3(swr_from_gamma(hi)))
 
 
 def _trace(s):
@@ -608,7 +636,7 @@ def _trace(s):
         out.append(st[0])
         out.append(st[1])
         out.append(st[2])
-        out.append(int(s.seen[st] * 1000 + 0.5))
+        out.append(int(s.cp.raw(s.seen[st]) * 1000 + 0.5))
     return out
 
 

@@ -18,6 +18,7 @@
 # again, three in a row end the tune with a fault; a reflected detector that
 # reads nothing on two very different states is a dead detector, not a match.
 from fmlogic import hunt, lnet, qfit
+from fmlogic.coupler import Coupler
 from fmlogic.swr import BAD_READING, NO_RF, gamma_from_swr, reading_gamma, swr_from_gamma
 
 try:
@@ -85,13 +86,26 @@ class Strategy:
         self.w = lnet.TWO_PI * self.f_mhz   # rad/us: reactance in ohm from uH
         self.target_swr = target_swr
         self.target_g = gamma_from_swr(target_swr)
-        self.leak = LEAK_DEFAULT if leak is None else float(leak)
-        # Accept on one reading only where the coupler's leakage cannot hide a
-        # true SWR above target: the reading plus the largest leakage error,
-        # the gain mismatch and the noise.
+        # leak: the coupler (fmlogic.coupler), or its calibrated |d| alone.
+        if isinstance(leak, Coupler):
+            self.cp = leak
+        else:
+            self.cp = Coupler(LEAK_DEFAULT if leak is None else float(leak))
+        cp = self.cp
+        self.leak = cp.leak
+        # The leakage the model cannot see: all of it on a cold coupler, the
+        # calibration's residual once its complex error is learned (compose()).
+        self._sleak = cp.err if cp.learned else cp.leak
+        # lock_g: the highest reading that proves the target with the coupler's
+        # error bounds (-1: none can).  accept_g: where the search stops: the
+        # lock level when one exists and is not absurdly low, else a reading
+        # the leakage allows for (a leaky coupler cannot do better by searching
+        # on; the tune then ends best-effort with its bound).
         t = self.target_g
         acc = t - self.leak * (1.0 + t * t) - 0.035 * t - 0.005
-        self.accept_g = acc if acc > 0.5 * self.target_g else 0.5 * self.target_g
+        self._acc = acc if acc > 0.5 * t else 0.5 * t
+        self.floor_g = 0.0
+        self._levels(0.0)
         self.budget = budget
         self.hint = memory_hint
         self.seen = {}
@@ -126,8 +140,20 @@ class Strategy:
                 return self.best_state if self.best_state is not None else BYPASS
         return self._next
 
+    def _levels(self, fg):
+        self.floor_g = fg
+        self.lock_g = self.cp.lock_level(self.target_g, fg)
+        self.accept_g = self.lock_g if self.lock_g >= 0.5 * self.target_g else self._acc
+
     def observe(self, fwd_w, ref_w):
-        self.observe_gamma(reading_gamma(fwd_w, ref_w))
+        g = reading_gamma(fwd_w, ref_w)
+        # The detector's floor at the lowest tune power seen so far bounds what a
+        # reading can resolve; the lock level follows it (once per power change).
+        if fwd_w > 0.0 and self.cp.floor_w > 0.0:
+            fg = self.cp.floor_g(fwd_w)
+            if fg > self.floor_g:
+                self._levels(fg)
+        self.observe_gamma(self.cp.correct(g) if g > 0.0 else g)
 
     @micropython.native
     def observe_gamma(self, g):
@@ -421,6 +447,8 @@ class ModelFit(Strategy):
         if c is None:
             self.ops[0] += 1
             c = lnet.mobius(self.bank, self.f_mhz, st[0], st[1], st[2])
+            if self.cp.learned:
+                c = self.cp.compose(c[0], c[1], c[2])
             self.co[st] = c
         return c
 
@@ -438,7 +466,7 @@ class ModelFit(Strategy):
         # is |gamma + d| / |1 + d gamma|: off by up to |d| (1 + m^2), |d| at a
         # match and twice that near full reflection, where a complex d even
         # reads a passive load above 1.  Half of that is taken as one sigma.
-        return 0.015 + 0.5 * self.leak * (1.0 + m * m) + 0.035 * m
+        return 0.015 + 0.5 * self._sleak * (1.0 + m * m) + 0.035 * m
 
     @micropython.native
     def _reading(self, st, m):

@@ -72,6 +72,14 @@ def _swr_text(swr) -> str:
     return f"{swr}" if isinstance(swr, (int, float)) and swr >= 1.0 else "-"
 
 
+def _bound_text(b) -> str:
+    """The true SWR a reading allows with the coupler's error bounds (the board's
+    swr_bound), as ' (true 1.05-1.51)'; empty when the board gave none."""
+    if not isinstance(b, list) or len(b) != 2:
+        return ""
+    return f" (true {b[0]:.2f}-{b[1]:.2f})"
+
+
 def cmd_status(a) -> int:
     from feedmatch.cli.output import emit_json
 
@@ -85,7 +93,7 @@ def cmd_status(a) -> int:
     print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {st['state']}"
           f" - {st['why']}")
     print(f"  relays {_state_text(st['relays'], bank)}; forward {st['fwd_w']} W, "
-          f"SWR {swr if swr is not None else 'no RF'}; {_mhz(st['freq_hz'])}")
+          f"SWR {swr if swr is not None else 'no RF'}{_bound_text(st.get('swr_bound'))}; {_mhz(st['freq_hz'])}")
     print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
           f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
     return 0
@@ -125,7 +133,8 @@ def cmd_tune(a) -> int:
             print(f"refused: {rec['why']}; relays left at {_state_text(rec['after'], bank)}")
         else:
             print(f"{rec['outcome']}: {rec['why']}; SWR {_swr_text(rec['swr_before'])} -> "
-                  f"{_swr_text(rec['swr_after'])} at {_mhz(rec['freq_hz'])}, {_state_text(rec['after'], bank)}, "
+                  f"{_swr_text(rec['swr_after'])}{_bound_text(rec.get('swr_bound'))} at {_mhz(rec['freq_hz'])}, "
+                  f"{_state_text(rec['after'], bank)}, "
                   f"{rec['n']} measurements in {rec['ms']} ms")
         note = _freq_disagrees(a.freq, f, rec.get("freq_hz") or 0.0)
         if note:

@@ -44,6 +44,10 @@ class DetectorModel:
     offset_counts: float = 0.0
     ideal: bool = False
     directivity_flat_db: float | None = None
+    # The forward port's own leakage (directivity in dB and phase in degrees);
+    # None: the reflected port's vector is shared (the older, kinder model).
+    fwd_directivity_db: float | None = None
+    fwd_phase_deg: float | None = None
 
     def directivity_db(self, f_hz: float) -> float:
         """Directivity at f_hz: flat when directivity_flat_db is set, else the
@@ -58,8 +62,9 @@ class DetectorModel:
         box: the reading into a matched dummy load at f_hz, noise averaged out."""
         if self.ideal:
             return 0.0
-        pf, pr = self.meter().powers(*self.read(p_w, 0j, f_hz, None))
-        return math.sqrt(pr / pf) if pf > 0 and pr > 0 else 0.0
+        m = self.meter()
+        pf, pr = m.powers(*self.read(p_w, 0j, f_hz, None))
+        return _leak_reading(m, pf, pr)
 
     def full_scale(self) -> int:
         return (1 << self.adc_bits) - 1
@@ -72,11 +77,30 @@ class DetectorModel:
 
     def port_voltages(self, p_inc_w: float, gamma: complex, f_hz: float) -> tuple[float, float]:
         """Peak voltages at the forward and reflected detector inputs."""
+        leak, leak_f = self.leakage(f_hz)
+        v_line = math.sqrt(2.0 * 50.0 * max(p_inc_w, 0.0)) / self.turns
+        return v_line * abs(1.0 + gamma * leak_f), v_line * abs(gamma + leak)
+
+    def leakage(self, f_hz: float) -> tuple[complex, complex]:
+        """The true leakage vectors (reflected port d_r, forward port d_f) at f_hz:
+        the plant's own, never told to a strategy."""
         d = 10 ** (-self.directivity_db(f_hz) / 20.0)
         leak = d * complex(math.cos(math.radians(self.directivity_phase_deg)),
                            math.sin(math.radians(self.directivity_phase_deg)))
-        v_line = math.sqrt(2.0 * 50.0 * max(p_inc_w, 0.0)) / self.turns
-        return v_line * abs(1.0 + gamma * leak), v_line * abs(gamma + leak)
+        if self.fwd_directivity_db is None and self.fwd_phase_deg is None:
+            return leak, leak
+        df = d if self.fwd_directivity_db is None else 10 ** (-self.fwd_directivity_db / 20.0)
+        ph = math.radians(self.fwd_phase_deg if self.fwd_phase_deg is not None else self.directivity_phase_deg)
+        return leak, df * complex(math.cos(ph), math.sin(ph))
+
+    def calibrated_leak_fwd(self, f_hz: float = 14.2e6, p_w: float = 25.0) -> float:
+        """|d_f| as the reversed calibration pass reports it: power into the antenna
+        port, the forward detector's leakage over the reflected detector's wave."""
+        if self.ideal:
+            return 0.0
+        m = self.meter()
+        pf, pr = m.powers(*self.read_reverse(p_w, f_hz, None)[::-1])
+        return _leak_reading(m, pf, pr)
 
     def read(self, p_inc_w: float, gamma: complex, f_hz: float,
              rng: random.Random | None) -> tuple[float, float]:
@@ -101,8 +125,11 @@ class DetectorModel:
         only the coupler's leakage."""
         if self.ideal:
             return (0.0, p_w)
-        v_main, v_leak = self.port_voltages(p_w, 0j, f_hz)
-        return self._adc(self._counts(v_leak, self.fwd_gain_db), self._counts(v_main, self.ref_gain_db), rng)
+        # Reversed, the wave into the antenna port is the reflected port's main
+        # signal and the forward port's leakage.
+        v_line = math.sqrt(2.0 * 50.0 * max(p_w, 0.0)) / self.turns
+        v_leak = v_line * abs(self.leakage(f_hz)[1])
+        return self._adc(self._counts(v_leak, self.fwd_gain_db), self._counts(v_line, self.ref_gain_db), rng)
 
     def nominal_counts(self, p_w: float, side: str = "") -> float:
         """Noise-free counts for p_w of a wave at a detector: the nominal one, or with the
@@ -135,6 +162,23 @@ class DetectorModel:
         return asdict(self)
 
 
+def _leak_reading(meter, pf: float, pr: float) -> float:
+    """A leakage reading as calibrate reports it: never below what the reflected
+    detector resolves at that power (its floor plus two counts), since a
+    reading at the floor only says the leakage is no larger."""
+    if pf <= 0:
+        return 0.0
+    floor = math.sqrt(meter.ref.watts(meter.ref.floor + 2.0) / pf)
+    return max(math.sqrt(pr / pf) if pr > 0 else 0.0, floor)
+
+
+def floor_watts(meter) -> float:
+    """The reflected power the firmware's coupler bounds take as the detector's
+    floor (fmlogic.coupler.from_config does the same from a config)."""
+    ref = getattr(meter, "ref", None)
+    return ref.watts(ref.floor + 2.0) if ref is not None else 0.0
+
+
 class _IdealMeter:
     """Readings already in watts (--ideal-detector)."""
 
@@ -149,13 +193,13 @@ class _IdealMeter:
 
 _KEYS = {"turns", "directivity_db_28mhz", "directivity_max_db", "directivity_phase_deg",
          "diode_vt", "front_gain", "adc_bits", "adc_vref", "noise_counts", "fwd_gain_db",
-         "ref_gain_db", "offset_counts", "ideal", "directivity_flat_db"}
+         "ref_gain_db", "offset_counts", "ideal", "directivity_flat_db", "fwd_directivity_db", "fwd_phase_deg"}
 
 
 def detector_from_dict(d: dict[str, Any], where: str = "detector") -> DetectorModel:
     check_keys(d, _KEYS, set(), where)
     m = DetectorModel()
-    for k in _KEYS - {"ideal", "adc_bits", "directivity_flat_db"}:
+    for k in _KEYS - {"ideal", "adc_bits", "directivity_flat_db", "fwd_directivity_db", "fwd_phase_deg"}:
         if k in d:
             pos = k in {"turns", "diode_vt", "front_gain", "adc_vref"}
             setattr(m, k, number(d, k, where, positive=pos))
@@ -166,6 +210,10 @@ def detector_from_dict(d: dict[str, Any], where: str = "detector") -> DetectorMo
         m.adc_bits = b
     if d.get("directivity_flat_db") is not None:
         m.directivity_flat_db = number(d, "directivity_flat_db", where, minimum=6.0, maximum=60.0)
+    if d.get("fwd_directivity_db") is not None:
+        m.fwd_directivity_db = number(d, "fwd_directivity_db", where, minimum=6.0, maximum=60.0)
+    if d.get("fwd_phase_deg") is not None:
+        m.fwd_phase_deg = number(d, "fwd_phase_deg", where)
     if "ideal" in d:
         if not isinstance(d["ideal"], bool):
             raise InputError(f"{where}: field 'ideal' must be true or false")

@@ -7,8 +7,10 @@ coupler errors.  Default strays, typical figures from memory (not a
 particular datasheet): 1 pF across an open relay contact (small signal and
 power relays list 0.5-2 pF), 8 pF from each switched node to the chassis,
 15 nH of series lead inductance per element (about 1 nH per mm of lead).
-Detector: forward/reflected gain mismatch of 0.3 dB (1 sigma), an offset of
-1 count, the coupler's leakage phase uniform over the circle.
+Detector: each detector's gain off by 0.3 dB (1 sigma, held within 0.3 dB: what
+the two calibration passes leave, so the ratio stays within the firmware's
+detector.gain_tol_db of 0.6 dB), an offset of 1 count, the coupler's leakage
+phase uniform over the circle.
 """
 
 from __future__ import annotations
@@ -48,6 +50,10 @@ def _spread(rng: random.Random, sigma: float) -> float:
     return 1.0 + max(-3 * sigma, min(3 * sigma, x))
 
 
+def _clip(x: float, lim: float) -> float:
+    return max(-lim, min(lim, x))
+
+
 def draw_box(nominal: Network, seed: int, tolerance: float, strays: str = "default",
              ideal: bool = False) -> Box:
     rng = random.Random(seed)
@@ -62,7 +68,7 @@ def draw_box(nominal: Network, seed: int, tolerance: float, strays: str = "defau
                       stray_in_pf=STRAY_DEFAULTS["node_pf"], stray_out_pf=STRAY_DEFAULTS["node_pf"])
     det = DetectorModel(ideal=ideal)
     if not ideal and (tolerance > 0 or strays == "default"):
-        det = replace(det, fwd_gain_db=rng.gauss(0, 0.3), ref_gain_db=rng.gauss(0, 0.3),
+        det = replace(det, fwd_gain_db=_clip(rng.gauss(0, 0.3), 0.3), ref_gain_db=_clip(rng.gauss(0, 0.3), 0.3),
                       offset_counts=rng.gauss(0, 1.0), directivity_phase_deg=rng.uniform(0, 360))
     return Box(net, det, seed, tolerance, strays)
 

@@ -58,6 +58,9 @@ class ScoreConfig:
     memory: bool = False
     # Faults of the true box (sim.faults): stuck relays and drifted elements.
     faults: Faults = NO_FAULTS
+    # The coupler's complex error as the calibration learned it (config
+    # detector.coupler), or None: magnitudes only (the dummy-load passes).
+    learned: tuple | None = None
 
 
 def _popcount(x: int) -> int:
@@ -103,7 +106,15 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
     bypass_g = abs(g_through)
     bank = nominal.firmware_bank()
     meter = det.meter()
-    leak = cfg.leak if cfg.leak is not None else det.calibrated_leak()
+    from fmlogic.coupler import Coupler
+
+    # What calibrate tells the box: the leakage magnitudes of both passes, and
+    # the learned complex error when given; never the plant's own vectors.
+    from feedmatch.rf.detector import floor_watts
+
+    leak = Coupler(cfg.leak if cfg.leak is not None else det.calibrated_leak(),
+                   cfg.leak if cfg.leak is not None else det.calibrated_leak_fwd(), learned=cfg.learned,
+                   floor_w=floor_watts(meter))
     hint = mem.lookup(load.freq_hz) if (mem is not None and cfg.strategy == "recall") else None
     s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget,
                     hint[:4] if hint else None, leak)
@@ -144,6 +155,7 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
     return {"freq_hz": load.freq_hz, "r_ohm": load.r_ohm, "x_ohm": load.x_ohm,
             "l_code": l, "c_code": c, "shunt": SHUNTS[sh], "through": bool(through),
             "outcome": outcome, "swr": _swr(true_g), "estimated_swr": est_swr,
+            "swr_bound": controller.bound(s),
             "oracle_swr": _swr(oracle_g), "bypass_swr": _swr(bypass_g),
             "oracle_state": [int(o_l), int(o_c), SHUNTS[int(o_sh)]],
             "hint": bool(hint), "measurements": n, "relay_ops": ops, "hot_switches": hot,
