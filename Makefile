@@ -25,11 +25,13 @@ demo: $(STAMP)
 # from Debian's packages where this machine may install them; the tests that
 # need them skip, saying why, where it cannot.
 sysdeps:
-	@command -v rigctld >/dev/null 2>&1 && command -v chromium >/dev/null 2>&1 || \
+	@# libhamlib-utils: rigctld, ampctld and ampctl (tests/test_follow.py, tests/test_hamlib_amp.py)
+	@command -v rigctld >/dev/null 2>&1 && command -v ampctld >/dev/null 2>&1 && \
+	  command -v chromium >/dev/null 2>&1 || \
 	  { if command -v apt-get >/dev/null 2>&1 && [ "$$(id -u)" = 0 ]; then \
 	      (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq libhamlib-utils chromium) \
 	        >/dev/null 2>&1 || echo "note: apt-get could not install libhamlib-utils/chromium; those tests skip"; \
-	    else echo "note: rigctld or chromium missing and apt-get not usable here; those tests skip"; fi; }
+	    else echo "note: rigctld, ampctld or chromium missing and apt-get not usable here; those tests skip"; fi; }
 
 test: $(STAMP) sysdeps
 	$(BIN)/python -m pytest -q

@@ -482,6 +482,10 @@ def cmd_serve(a) -> int:
         raise InputError(f"--http-port must be 1 to 65535, got {a.http_port}")
     if a.allow_control is not None and len(a.allow_control) < 8:
         raise InputError("--allow-control needs a token of at least 8 characters")
+    if a.hamlib_amp_port is not None and (a.port is None or not 1 <= a.hamlib_amp_port <= 65535):
+        raise InputError("--hamlib-amp-port needs --port (the board) and a TCP port of 1 to 65535")
+    if a.no_page and a.hamlib_amp_port is None:
+        raise InputError("--no-page serves nothing without --hamlib-amp-port")
 
     def _term(_sig, _frame):
         raise KeyboardInterrupt
@@ -498,10 +502,24 @@ def cmd_serve(a) -> int:
         mode = "tune and bypass buttons need the token" if a.allow_control else "read-only"
         print(f"serving {what} at {url} ({mode}; Ctrl-C stops)", flush=True)
 
+    amp = None
+    if a.hamlib_amp_port is not None:
+        from feedmatch.web.hamlib_amp import serve_board
+
+        amp = serve_board(a.port, a.baud, a.hamlib_amp_listen, a.hamlib_amp_port)
+        print(f"serving the board's SWR, forward and reflected power and frequency to Hamlib amplifier "
+              f"clients on {a.hamlib_amp_listen}:{amp[0].port} (ampctld protocol, read-only)", flush=True)
     try:
+        if a.no_page:
+            while True:
+                time.sleep(3600)
         serve(a.db, a.port, a.listen, a.http_port, a.allow_control, a.baud, ready=ready)
     except KeyboardInterrupt:
         pass
+    finally:
+        if amp is not None:
+            amp[0].close()
+            amp[1].close()
     return 0
 
 
@@ -583,6 +601,13 @@ def add_commands(sub) -> None:
     s.add_argument("--http-port", type=int, default=8765)
     s.add_argument("--allow-control", metavar="TOKEN",
                    help="add tune and bypass buttons; each request must carry this token")
+    s.add_argument("--hamlib-amp-port", type=int, metavar="PORT",
+                   help="also serve the box's SWR, forward and reflected power and frequency, read-only, on "
+                        "Hamlib's network amplifier protocol (what ampctld serves) at this TCP port")
+    s.add_argument("--hamlib-amp-listen", default="127.0.0.1", metavar="ADDR",
+                   help="address for --hamlib-amp-port (default 127.0.0.1: this machine only)")
+    s.add_argument("--no-page", action="store_true", help="with --hamlib-amp-port: no web page, the amplifier "
+                   "protocol alone")
     s.set_defaults(fn=cmd_serve)
 
     s = sub.add_parser("report", help="per-band table and antenna-health flags from the logbook")
