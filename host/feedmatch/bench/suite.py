@@ -234,7 +234,7 @@ def bench_design() -> dict[str, Any]:
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design",
-              "presets")
+              "presets", "antenna_curve")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -278,6 +278,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         from feedmatch.bench.presets import bench_presets
 
         res.update({"presets_" + k: v for k, v in bench_presets().items()})
+    if want("antenna_curve"):
+        from feedmatch.bench.curve import bench_antenna_curve
+
+        res.update(bench_antenna_curve(quick))
     if want("rp2040"):
         from feedmatch.bench.chip import bench_rp2040
         from feedmatch.sim.emulator import EmulatorMissing

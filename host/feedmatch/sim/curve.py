@@ -98,10 +98,72 @@ def _bank_scaled(bank: lnet.Bank, k: int, h: float) -> lnet.Bank:
     return b
 
 
-def _coefs(bank: lnet.Bank, f_hz: float, states: np.ndarray) -> np.ndarray:
-    """(n, 3) complex: the Moebius coefficients a, b, c of each state (the firmware's model)."""
+def _net_coefs(bank: lnet.Bank, f_hz: float, states: np.ndarray) -> np.ndarray:
+    """(n, 3) complex: the Moebius coefficients a, b, c of each state, the firmware's own
+    model of the network (lnet.mobius); the search's BYPASS state is the bypass relay, the
+    antenna alone (the identity)."""
     f = f_hz / 1e6
-    return np.array([lnet.mobius(bank, f, int(s[0]), int(s[1]), int(s[2])) for s in states], dtype=complex)
+    out = np.empty((len(states), 3), dtype=complex)
+    for i, st in enumerate(states):
+        l, c, sh = int(st[0]), int(st[1]), int(st[2])
+        out[i] = (1.0, 0.0, 0.0) if (l, c, sh) == (0, 0, 1) else lnet.mobius(bank, f, l, c, sh)
+    return out
+
+
+def _bypass(states: np.ndarray) -> np.ndarray:
+    st = np.asarray(states)
+    return (st[:, 0] == 0) & (st[:, 1] == 0) & (st[:, 2] == 1)
+
+
+def _through_shunt(g, y):
+    """gamma seen through a shunt admittance y (normalised to z0) across the line."""
+    return ((2 - y) * g - y) / (y * g + 2 + y)
+
+
+# The box's learned extras, in the order of BoxExtras.p: the stray capacitance at the
+# transmitter and antenna nodes (pF / 10), the reflected/forward gain (log), the coupler's
+# leakage at 28 MHz (re, im; growing in proportion to frequency, as fit-box models it) and
+# a reflected-detector offset (|gamma| x 10).
+N_EXTRAS = 6
+STRAY_SIGMA_PF = 5.0  # node strays when nothing was learned: the bench's boxes carry 8 pF (boxes.py, from memory)
+
+
+@dataclass
+class BoxExtras:
+    """What besides its element values shapes a box's readings, with its covariance."""
+
+    p: np.ndarray
+    cov: np.ndarray
+    reading_sigma: float = READING_SIGMA
+    learned: bool = False
+
+    @staticmethod
+    def unknown(leak_cal: float = LEAK_DEFAULT) -> BoxExtras:
+        """Nothing learned: no strays, no leakage, equal gains, each with its spread (the
+        leakage's phase unknown, its magnitude the calibrated one scaled to 28 MHz)."""
+        leak28 = max(leak_cal * 28e6 / LEAK_CAL_HZ, LEAK_FLOOR)
+        sd = [STRAY_SIGMA_PF / 10, STRAY_SIGMA_PF / 10, GAIN_SIGMA, leak28 / math.sqrt(2), leak28 / math.sqrt(2), 0.1]
+        return BoxExtras(np.zeros(N_EXTRAS), np.diag(np.square(sd)))
+
+    @property
+    def strays_pf(self) -> tuple[float, float]:
+        return float(self.p[0] * 10), float(self.p[1] * 10)
+
+
+def _predict(co: np.ndarray, byp: np.ndarray, f_hz, g, p: np.ndarray, z0: float, grid: bool = False) -> np.ndarray:
+    """Readings |gamma| of states (net coefficients co) on loads g, with the extras p:
+    node strays around the network (not on the bypass relay), then the coupler as
+    fit-box models it (leakage spoiling both ports, gain ratio, offset)."""
+    a, b, c = co[:, 0], co[:, 1], co[:, 2]
+    if grid:  # every reading on each of many loads (the grid start): shape (readings, loads)
+        a, b, c, byp = a[:, None], b[:, None], c[:, None], np.asarray(byp)[:, None]
+    w = 2 * np.pi * np.asarray(f_hz) * z0 * 1e-12 * 10
+    g1 = _through_shunt(g, 1j * w * p[1])
+    gn = (a * g1 + b) / (c * g1 + 1.0)
+    gin = np.where(byp, g, _through_shunt(gn, 1j * w * p[0]))
+    d = (np.asarray(f_hz) / 28e6) * (p[3] + 1j * p[4])
+    ratio = np.abs(gin + d) / np.abs(1 + gin * d)
+    return np.sqrt(np.exp(2 * p[2]) * ratio ** 2 + (p[5] * 0.1) ** 2)
 
 
 def _g_of(q: np.ndarray) -> complex:
@@ -123,12 +185,6 @@ def _z_of(g: complex, z0: float) -> complex:
     return z0 * (1 + g) / (1 - g)
 
 
-def _reading(co: np.ndarray, g, d: complex = 0j, eps: float = 0.0) -> np.ndarray:
-    """Predicted readings: the coupler's leakage d spoils both ports (fit-box's model)."""
-    gin = (co[:, 0] * g + co[:, 1]) / (co[:, 2] * g + 1.0)
-    return (1.0 + eps) * np.abs(gin + d) / np.abs(1.0 + gin * d)
-
-
 def leak_at(leak_cal: float, f_hz: float) -> float:
     """The coupler's leakage magnitude at f_hz from the calibrated one (capacitive: grows with f)."""
     return max(LEAK_FLOOR, leak_cal * f_hz / LEAK_CAL_HZ)
@@ -137,8 +193,10 @@ def leak_at(leak_cal: float, f_hz: float) -> float:
 class LoadSolver:
     """Solves tunes' traces for their loads on one bank (the board's element values)."""
 
-    def __init__(self, bank: lnet.Bank, element_sigma: float, leak_cal: float = LEAK_DEFAULT):
+    def __init__(self, bank: lnet.Bank, element_sigma: float, leak_cal: float = LEAK_DEFAULT,
+                 extras: BoxExtras | None = None):
         self.bank = bank
+        self.extras = extras or BoxExtras.unknown(leak_cal)
         self.element_sigma = element_sigma
         self.leak_cal = leak_cal
         n = bank.nl + bank.nc
@@ -159,16 +217,19 @@ class LoadSolver:
     # -- three or more readings: weighted least squares ---------------------------
     def _solve_circles(self, tr: Trace) -> LoadEstimate | None:
         z0 = self.bank.z0
-        co = _coefs(self.bank, tr.freq_hz, tr.states)
+        co = _net_coefs(self.bank, tr.freq_hz, tr.states)
+        byp = _bypass(tr.states)
         m = np.asarray(tr.gamma, dtype=float)
-        sig = READING_SIGMA
+        sig = self.extras.reading_sigma
+        p0 = self.extras.p
+        f = tr.freq_hz
         # Start: the best point of a dense grid over the reflection disc (no basin missed).
-        pred = np.abs((co[:, 0:1] * self._grid + co[:, 1:2]) / (co[:, 2:3] * self._grid + 1.0))
+        pred = _predict(co, byp, f, self._grid, p0, z0, grid=True)
         j = int(np.argmin(((pred - m[:, None]) ** 2).sum(axis=0)))
         q0 = _q_of(complex(self._grid[j]))
 
-        def resid(q, co=co, d=0j, eps=0.0):
-            return (_reading(co, _g_of(q), d, eps) - m) / sig
+        def resid(q, co=co, p=p0):
+            return (_predict(co, byp, f, _g_of(q), p, z0) - m) / sig
 
         sol = least_squares(resid, q0, method="lm", xtol=1e-10, ftol=1e-10)
         q = sol.x
@@ -185,20 +246,17 @@ class LoadSolver:
         dof = len(m) - 2
         birge = max(1.0, float(r0 @ r0) / dof) if dof >= 3 else 1.0
         cov_q_rand = hinv * birge
-        # Systematic errors through the solution: dq = -H^-1 J^T dr/dnuisance.
-        leak = leak_at(self.leak_cal, tr.freq_hz)
-        cols, sds = [], []
-        for d, s in ((1e-4 + 0j, leak / math.sqrt(2)), (1e-4j, leak / math.sqrt(2))):
-            cols.append((resid(q, d=d) - resid(q, d=-d)) / (2 * abs(d)))
-            sds.append(s)
-        cols.append((resid(q, eps=1e-4) - resid(q, eps=-1e-4)) / 2e-4)
-        sds.append(GAIN_SIGMA)
-        for pb in self.perturbed:
-            cols.append((resid(q, co=_coefs(pb, tr.freq_hz, tr.states)) - r0) / _H)
-            sds.append(self.element_sigma)
-        jn = np.array(cols).T * np.array(sds)[None, :]
-        k = -hinv @ jac.T @ jn
-        cov_q_sys = k @ k.T
+        # Systematic errors through the solution: dq = -H^-1 J^T dr/dnuisance, the
+        # nuisances being the box's extras (with their covariance) and each element value.
+        jp = np.empty((len(m), N_EXTRAS))
+        for i in range(N_EXTRAS):
+            dp = np.zeros(N_EXTRAS)
+            dp[i] = 1e-5
+            jp[:, i] = (resid(q, p=p0 + dp) - resid(q, p=p0 - dp)) / 2e-5
+        je = np.array([(resid(q, co=_net_coefs(pb, f, tr.states)) - r0) / _H for pb in self.perturbed]).T
+        kp = -hinv @ jac.T @ jp
+        ke = -hinv @ jac.T @ je * self.element_sigma
+        cov_q_sys = kp @ self.extras.cov @ kp.T + ke @ ke.T
         jz = self._jz(q, z0)
         g = _g_of(q)
         return LoadEstimate(tr.freq_hz, _z_of(g, z0), jz @ cov_q_rand @ jz.T, jz @ cov_q_sys @ jz.T, len(m))
@@ -216,39 +274,122 @@ class LoadSolver:
 
     # -- one or two readings: the best state's circle --------------------------------
     def _solve_best(self, tr: Trace) -> LoadEstimate | None:
-        """The load the best-read state matches exactly, with the reading's circle
-        (|gamma_in| = m, phase unknown: m / sqrt(2) per axis) as its spread."""
+        """The load the best-read state matches, with the reading's circle (|gamma_in| = m,
+        its phase unknown: m / sqrt(2) per axis) as its spread: the load whose predicted
+        reading through that state is zero, found on the same model as above."""
         i = int(np.argmin(tr.gamma))
         st = tr.states[i:i + 1]
+        if _bypass(st)[0]:
+            return None  # the antenna alone read best: its phase is unknown
         m = float(tr.gamma[i])
         z0 = self.bank.z0
+        f = tr.freq_hz
+        p0 = self.extras.p.copy()
+        p0[5] = 0.0  # the offset only lifts a zero reading
 
-        def g0(bank):
-            a, b, _c = _coefs(bank, tr.freq_hz, st)[0]
-            return -b / a if a != 0 else None
+        def g_match(co, p):
+            # gamma_in(g) = 0 is linear in g for each Moebius stage: invert stage by stage.
+            w = 2 * np.pi * f * z0 * 1e-12 * 10
+            y_in, y_out = 1j * w * p[0], 1j * w * p[1]
+            d = (f / 28e6) * (p[3] + 1j * p[4])
+            gin = -d  # the reading is zero where gamma_in + d is
+            gn = (gin * (2 + y_in) + y_in) / (2 - y_in - y_in * gin)  # undo the input stray
+            a, b, c = co[0]
+            g1 = (b - gn) / (gn * c - a)
+            return (g1 * (2 + y_out) + y_out) / (2 - y_out - y_out * g1)
 
-        a, b, c = _coefs(self.bank, tr.freq_hz, st)[0]
-        if a == 0:
-            return None
-        g = -b / a
-        if abs(g) >= 1.0:
+        co = _net_coefs(self.bank, f, st)
+        g = g_match(co, p0)
+        if not abs(g) < 1.0:
             return None  # the reading cannot be of a passive load through this state
-        k = (a - b * c) / (a * a)  # d g / d gamma_in at gamma_in = 0
         dzdg = 2 * z0 / (1 - g) ** 2
-        leak = leak_at(self.leak_cal, tr.freq_hz)
-        # The reading's noise averages over repeated tunes; where on its circle the load
-        # lies, and the leakage, do not (the same state reads alike every time).
+        # d g / d gamma_in, numerically, for the circle's spread.
+        a, b, c = co[0]
+        k = (a - b * c) / (a * a)
         gain = abs(dzdg * k) ** 2 / 2
-        cov_rand = np.eye(2) * gain * READING_SIGMA ** 2
-        cov_sys = np.eye(2) * gain * (m * m + leak * leak)
+        # The reading's noise averages over repeated tunes; where on its circle the load
+        # lies does not (the same state reads alike every time).
+        cov_rand = np.eye(2) * gain * self.extras.reading_sigma ** 2
+        cov_sys = np.eye(2) * gain * m * m
+        cols = []
+        for i in range(N_EXTRAS):
+            dp = np.zeros(N_EXTRAS)
+            dp[i] = 1e-5
+            dz = dzdg * (g_match(co, p0 + dp) - g_match(co, p0 - dp)) / 2e-5
+            cols.append([dz.real, dz.imag])
+        jp = np.array(cols).T
+        cov_sys += jp @ self.extras.cov @ jp.T
         for pb in self.perturbed:
-            gp = g0(pb)
-            if gp is None:
-                continue
-            dz = dzdg * (gp - g) / _H * self.element_sigma
+            dz = dzdg * (g_match(_net_coefs(pb, f, st), p0) - g) / _H * self.element_sigma
             v = np.array([dz.real, dz.imag])
             cov_sys += np.outer(v, v)
-        return LoadEstimate(tr.freq_hz, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma))
+        return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma))
+
+
+def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DEFAULT,
+                 max_traces: int = 300) -> BoxExtras:
+    """The box's node strays and coupler, learned from its tunes as fit-box learns the
+    elements: non-linear least squares over every multi-reading trace at once (each with
+    its own load), the element values held.  The strays show through the bypass readings
+    (the antenna alone) against the network's; the coupler through the spread of states.
+    Their covariance is the fit's (Gauss-Newton, scaled by the residual), so the curve's
+    uncertainty carries how well they are known.  Too few traces: nothing is learned."""
+    from scipy.sparse import lil_matrix
+
+    trs = [t for t in traces if len(t.gamma) >= 3][:max_traces]
+    unknown = BoxExtras.unknown(leak_cal)
+    if len(trs) < 8:
+        return unknown
+    z0 = bank.z0
+    co = np.concatenate([_net_coefs(bank, t.freq_hz, t.states) for t in trs])
+    byp = np.concatenate([_bypass(t.states) for t in trs])
+    f = np.concatenate([np.full(len(t.gamma), t.freq_hz) for t in trs])
+    m = np.concatenate([t.gamma for t in trs])
+    owner = np.concatenate([np.full(len(t.gamma), i) for i, t in enumerate(trs)])
+    solver = LoadSolver(bank, ELEMENT_SIGMA_LEARNED, leak_cal, unknown)
+    q0 = []
+    for t in trs:
+        e = solver._solve_circles(t)
+        q0.append(_q_of((e.z - z0) / (e.z + z0)) if e is not None else np.zeros(2))
+    k = len(trs)
+    prior_sd = np.sqrt(np.diag(unknown.cov))
+
+    def resid(x):
+        p = x[:N_EXTRAS]
+        q = x[N_EXTRAS:].reshape(k, 2)
+        v = q[:, 0] + 1j * q[:, 1]
+        a = np.abs(v)
+        g = np.where(a > 1e-12, np.tanh(a) / np.maximum(a, 1e-12), 1.0) * v
+        pred = _predict(co, byp, f, g[owner], p, z0)
+        # A weak prior on the extras keeps the ones the traces cannot see where they were.
+        return np.concatenate([(pred - m) / READING_SIGMA, p / (3 * prior_sd)])
+
+    sp = lil_matrix((len(m) + N_EXTRAS, N_EXTRAS + 2 * k), dtype=int)
+    for r in range(len(m)):
+        sp[r, :N_EXTRAS] = 1
+        sp[r, N_EXTRAS + 2 * owner[r]] = 1
+        sp[r, N_EXTRAS + 2 * owner[r] + 1] = 1
+    for j in range(N_EXTRAS):
+        sp[len(m) + j, j] = 1
+    x0 = np.concatenate([np.zeros(N_EXTRAS), np.ravel(q0)])
+    sol = least_squares(resid, x0, jac_sparsity=sp, method="trf", loss="soft_l1", f_scale=3.0, max_nfev=100,
+                        x_scale="jac")
+    r = sol.fun[: len(m)]
+    sigma = max(READING_SIGMA * float(np.sqrt(np.median(r ** 2) / 0.455)), 0.005)  # robust rms (median chi2_1)
+    jac = sol.jac.toarray() if hasattr(sol.jac, "toarray") else np.asarray(sol.jac)
+    try:
+        cov_all = np.linalg.inv(jac.T @ jac) * (sigma / READING_SIGMA) ** 2
+    except np.linalg.LinAlgError:
+        return unknown
+    cov = cov_all[:N_EXTRAS, :N_EXTRAS].copy()
+    if not np.all(np.isfinite(cov)):
+        return unknown
+    # The strays' values also soak up what the model leaves out (lead inductance, open
+    # relay contacts, per-element Q): measured on the bench's drawn boxes they come out a
+    # few pF off however tight the fit says they are, so they keep their prior spread.
+    cov[0, 0] += (STRAY_SIGMA_PF / 10) ** 2
+    cov[1, 1] += (STRAY_SIGMA_PF / 10) ** 2
+    return BoxExtras(sol.x[:N_EXTRAS].copy(), cov, sigma, True)
 
 
 def combine(ests: list[LoadEstimate]) -> CurvePoint:
@@ -298,25 +439,31 @@ def resonances(points: list[CurvePoint]) -> list[dict[str, Any]]:
     return out
 
 
+def _trace_of(r: dict[str, Any]) -> Trace | None:
+    """A record's readings as a Trace, or None (a preset, no readings, a damaged trace)."""
+    t = r.get("trace")
+    f = r.get("freq_hz") or 0.0
+    if r.get("outcome") == "preset" or not isinstance(t, list) or len(t) < 4:
+        return None
+    try:
+        a = np.asarray(t[: len(t) // 4 * 4], dtype=float).reshape(-1, 4)
+    except (TypeError, ValueError):
+        return None
+    if not isinstance(f, (int, float)) or f <= 0 or not np.isfinite(a).all():
+        return None
+    return Trace(float(f), a[:, :3].astype(int), a[:, 3] / 1000.0)
+
+
 def solve_records(recs: list[dict[str, Any]], bank: lnet.Bank, learned: bool,
-                  leak_cal: float = LEAK_DEFAULT) -> list[LoadEstimate]:
+                  leak_cal: float = LEAK_DEFAULT, extras: BoxExtras | None = None) -> list[LoadEstimate]:
     """Every tune record with readings, solved for its load (in the records' order)."""
-    solver = LoadSolver(bank, ELEMENT_SIGMA_LEARNED if learned else ELEMENT_SIGMA_NOMINAL, leak_cal)
+    solver = LoadSolver(bank, ELEMENT_SIGMA_LEARNED if learned else ELEMENT_SIGMA_NOMINAL, leak_cal, extras)
     out = []
     for r in recs:
-        if r.get("outcome") == "preset":
+        tr = _trace_of(r)
+        if tr is None:
             continue
-        t = r.get("trace")
-        if not isinstance(t, list) or len(t) < 4:
-            continue
-        f = r.get("freq_hz") or 0.0
-        try:
-            a = np.asarray(t[: len(t) // 4 * 4], dtype=float).reshape(-1, 4)
-        except (TypeError, ValueError):
-            continue  # a damaged trace: that tune says nothing
-        if not isinstance(f, (int, float)) or f <= 0 or not np.isfinite(a).all():
-            continue
-        e = solver.solve(Trace(float(f), a[:, :3].astype(int), a[:, 3] / 1000.0))
+        e = solver.solve(tr)
         if e is not None:
             e.time = r.get("_time")
             out.append(e)
@@ -352,7 +499,7 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         if isinstance(rec, dict):
             by_board.setdefault(r["board_id"], []).append(rec | {"_time": r["time"]})
     ests: list[LoadEstimate] = []
-    learned_any = False
+    learned_any = learned_extras = False
     for key, recs in by_board.items():
         sec = sections.get(key) or {}
         bank = None
@@ -368,10 +515,13 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         if bank is None:
             continue
         leak = (sec.get("detector") or {}).get("leak", LEAK_DEFAULT)
-        ests += solve_records(recs, bank, learned, float(leak) if isinstance(leak, (int, float)) else LEAK_DEFAULT)
+        leak = float(leak) if isinstance(leak, (int, float)) else LEAK_DEFAULT
+        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak)
+        learned_extras = learned_extras or extras.learned
+        ests += solve_records(recs, bank, learned, leak, extras)
     pts = curve_points(ests, float(DEFAULTS["memory"]["bin_hz"]))
     times = [e.time for e in ests if e.time]
     return {"points": pts, "resonances": resonances(pts), "tunes": len(ests),
             "first": min(times) if times else None, "last": max(times) if times else None,
             "element_sigma": ELEMENT_SIGMA_LEARNED if learned_any else ELEMENT_SIGMA_NOMINAL,
-            "learned": learned_any, "boards": sorted(by_board)}
+            "learned": learned_any, "coupler_learned": learned_extras, "boards": sorted(by_board)}
