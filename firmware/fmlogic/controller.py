@@ -34,10 +34,12 @@ BEST = "best-effort"
 THROUGH = "through"
 FAULT = "fault"
 CONFIG = "config.json"
+ADVICE_CONFIG = ("re-deploy the board config (feedmatch deploy --port PORT --config YOUR.json); "
+                 "the relays stay through until then")
 
 
 class Controller:
-    def __init__(self, board, cfg, d=""):
+    def __init__(self, board, cfg, d="", boot=None, cfg_note=None):
         self.board = board
         self.d = d
         self.raw_cfg = cfg if isinstance(cfg, dict) else {}
@@ -61,17 +63,44 @@ class Controller:
         self.rig = None  # (freq_hz, mode) the host last said the radio is on
         self.frames_bad = 0
         self.hot_refusals = 0
-        self.boot = _bump_boot(d)
-        self.uid = _identity(d)
+        self.fault_file = None  # the file a fault concerns, and what to do about it
+        self.advice = None
+        self.warnings = []  # what the start found damaged and got past, in words
+        self.internal_at = None  # when an internal error stopped the box (it recovers)
+        self.err_at = None  # error answers to garbage on the link: at most one per 100 ms
+        memory.STAGE[0] = memory.BOOTS
+        self.boot = _bump_boot(d) if boot is None else boot
+        memory.STAGE[0] = "board.uid"
+        self.uid, had_uid, note = _identity(d)
+        if note:
+            self.warnings.append(note)
         errs = fcfg.validate(self.raw_cfg)
+        if cfg_note and not errs:
+            self.warnings.append(cfg_note)  # running on the previous copy
         self.cfg = fcfg.merged(self.raw_cfg if not errs else {})
         self._apply_cfg()
+        memory.STAGE[0] = memory.MEM
         self.mem.load()
+        if self.mem.load_error:
+            self.warnings.append("memory: " + self.mem.load_error)
+        memory.STAGE[0] = "rec/"
         self.rec.load()
+        if self.rec.note:
+            self.warnings.append(self.rec.note)
+        if self.rec.floor_lost and had_uid and self.boot > 1:
+            # The record store and its floor are gone but the board had a history:
+            # its numbers would start again at 1 under the same identity, so it takes
+            # a new one (a new epoch: the logbook keeps the two apart and says so).
+            old = self.uid
+            self.uid = _new_identity(d)
+            self.warnings.append("record store lost: new identity %s (was %s)" % (self.uid, old))
+        memory.STAGE[0] = memory.JOURNAL
         # Relays come up released (output enable held off at boot by the board).
         board.set_relays(0, 0, 1, True)
         if errs:
-            self._set_state(FAULT, "config: " + errs[0])
+            self._set_state(FAULT, cfg_note or ("config.json: " + errs[0]))
+            self.fault_file = CONFIG
+            self.advice = ADVICE_CONFIG
         jn = memory.journal_take(d)
         if jn is not None:
             self._record(jn.get("freq_hz", 0.0), jn.get("before"), jn.get("before"),
@@ -80,8 +109,14 @@ class Controller:
         last = self.mem.last_state()
         if last is not None and not errs:
             self.pending_restore = last
-        self._event("boot", {"boot": self.boot, "version": VERSION, "board_id": self.cfg["board_id"],
-                             "uid": self.uid, "seq": self.rec.seq, "mem": self.mem.load_error or "ok"})
+        memory.STAGE[0] = ""
+        ev = {"boot": self.boot, "version": VERSION, "board_id": self.cfg["board_id"],
+              "uid": self.uid, "seq": self.rec.seq, "mem": self.mem.load_error or "ok"}
+        if self.warnings:
+            ev["warnings"] = self.warnings
+        if self.rec.lost is not None:
+            ev["lost"] = [self.rec.lost[0], self.rec.lost[1]]
+        self._event("boot", ev)
 
     # -- configuration --------------------------------------------------------------
     def _apply_cfg(self):
@@ -117,9 +152,19 @@ class Controller:
                 return True
             self._watch()
         except Exception as e:  # keep the loop alive; the watchdog covers hangs
-            self._fault("internal: " + repr(e)[:60])
+            self._internal(e)
         b.led(self.state == LOCKED)
         return self.tune is not None
+
+    def _internal(self, e):
+        """An error no guard foresaw (out of memory, a bug): the tune ends, the
+        relays go through when cold, and after a pause the box serves again,
+        so one bad moment never needs a visit to the mast."""
+        self._fault("internal: " + repr(e)[:60])
+        self.advice = "the box recovers by itself in 10 s; if this repeats, send its log to the developers"
+        self.internal_at = self.board.ticks_ms()
+        if _COLLECT:
+            gc.collect()
 
     def _read(self):
         c = self.board.read_detectors()
@@ -178,6 +223,10 @@ class Controller:
             f = req.get("freq_hz", 0.0)
         self.freq = f
         if self.state == FAULT:
+            if self.internal_at is not None and self.board.ticks_diff(now, self.internal_at) > 10000:
+                self.internal_at = None
+                self.advice = None
+                self._set_state(WAIT_RF, "recovered after an internal error")
             return
         if self.board.tune_button():
             req = self.tune_req = {"t": now, "freq_hz": f, "why": "button"}
@@ -358,20 +407,37 @@ class Controller:
 
     # -- the link ---------------------------------------------------------------
     def _poll_link(self):
-        data = self.board.link_read()
-        if not data:
-            return
+        # Drain what waits, up to 64 reads or 10 ms a pass: a flood of garbage
+        # passes at the link's speed while tunes and the watchdog keep their time.
+        b = self.board
+        t0 = b.ticks_ms()
+        for _ in range(64):
+            data = b.link_read()
+            if not data:
+                return
+            self._lines(data)
+            if b.ticks_diff(b.ticks_ms(), t0) > 10:
+                return
+
+    def _bad_frame(self, why):
+        """Count a bad frame; answer at most one per 100 ms, so garbage never
+        fills the link with answers the host has to wait behind."""
+        self.frames_bad += 1
+        now = self.board.ticks_ms()
+        if self.err_at is None or self.board.ticks_diff(now, self.err_at) >= 100:
+            self.err_at = now
+            self._send(link.encode("A", 0, "err", {"why": why}))
+
+    def _lines(self, data):
         for line in self.reader.feed(data):
             if not line:
-                self.frames_bad += 1
-                self._send(link.encode("A", 0, "err", {"why": "oversize"}))
+                self._bad_frame("oversize")
                 continue
             if line.strip() == b"":
                 continue
             d = link.decode(line)
             if d[0] is None:
-                self.frames_bad += 1
-                self._send(link.encode("A", 0, "err", {"why": d[1]}))
+                self._bad_frame(d[1])
                 continue
             kind, seq, word, obj = d
             if kind != "Q":
@@ -437,7 +503,8 @@ class Controller:
                 "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
                 "uid": self.uid, "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
                 "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms(),
-                "manual": self.manual}
+                "manual": self.manual, "file": self.fault_file, "advice": self.advice,
+                "warnings": self.warnings, "rec_error": self.rec.err}
 
     def _bound(self):
         """[low, high] true SWR the present reading allows (the coupler's error
@@ -578,6 +645,8 @@ class Controller:
         self.cfg = fcfg.merged(new)
         self._apply_cfg()
         if self.state == FAULT:
+            self.fault_file = None
+            self.advice = None
             self._set_state(WAIT_RF, "config fixed")
         return True, {"path": path, "value": self.cfg[sec][key]}
 
@@ -647,19 +716,30 @@ def _r3(x):
 
 
 def _identity(d):
-    """This board's identity: made once, on the first boot with an empty flash,
-    and kept in its own file, which a firmware update never touches.  Two boards
-    that share a config (and so a board_id), or a board whose flash was wiped
-    (its record numbers start again at 1), never look like one board to the
-    logbook."""
+    """(uid, read from flash?, note): this board's identity, made once, on the
+    first boot with an empty flash, and kept in its own file, which a firmware
+    update never touches.  Two boards that share a config (and so a board_id),
+    or a board whose flash was wiped (its record numbers start again at 1),
+    never look like one board to the logbook.  A damaged file (random bytes,
+    cut short) gets a new identity, said in the note."""
     p = (d + "/board.uid") if d else "board.uid"
+    note = None
     try:
-        with open(p) as f:
-            uid = f.read().strip()
-        if len(uid) == 12 and all(c in "0123456789abcdef" for c in uid):
-            return uid
+        with open(p, "rb") as f:
+            raw = f.read(64)
+        uid = raw.strip()
+        if len(uid) == 12 and all(c in b"0123456789abcdef" for c in uid):
+            return (uid.decode(), True, None)
+        note = "board.uid damaged"
     except OSError:
         pass
+    uid = _new_identity(d)
+    if note:
+        note = note + ": new identity " + uid
+    return (uid, False, note)
+
+
+def _new_identity(d):
     try:
         import os
 
@@ -678,30 +758,55 @@ def _identity(d):
 
 
 def _bump_boot(d):
-    p = (d + "/boot.cnt") if d else "boot.cnt"
-    n = 0
-    try:
-        with open(p) as f:
-            n = int(f.read().strip() or "0")
-    except (OSError, ValueError):
-        n = 0
-    n += 1
-    try:
-        memory.atomic_write(d, "boot.cnt", str(n).encode())
-    except OSError:
-        pass
+    n = memory.read_boots(d) + 1
+    memory.write_boots(d, n)
     return n
+
+
+_CONFIG_MAX = 32768  # bytes: a board config is a few KB; a bigger file is not one
+
+
+def read_config(d=""):
+    """(config, note): the board's config file; a damaged or missing one falls back
+    to its previous copy (said in the note), else to {} with format -1 (defaults and
+    a fault).  The note names the file and what is wrong with it."""
+    import os
+
+    p = (d + "/" + CONFIG) if d else CONFIG
+    problem = None
+    for name in (p, p + ".bak"):
+        short = CONFIG if name == p else CONFIG + ".bak"
+        why = None
+        try:
+            size = os.stat(name)[6]
+            if size == 0:
+                why = "empty (a deploy cut short?)"
+            elif size > _CONFIG_MAX:
+                why = "too large (%d bytes): not a board config" % size
+            else:
+                with open(name, "rb") as f:
+                    raw = f.read()
+                try:
+                    cfg = json.loads(raw.decode())
+                except UnicodeError:
+                    cfg = None
+                    why = "damaged: not text"
+                except ValueError:
+                    cfg = None
+                    why = "damaged: not valid JSON (cut short or garbled)"
+                if why is None:
+                    if isinstance(cfg, dict):
+                        if problem is not None:
+                            return (cfg, problem + "; running on " + short)
+                        return (cfg, None)
+                    why = "not a JSON object"
+        except OSError:
+            why = "missing"
+        if problem is None:
+            problem = CONFIG + " " + why
+    return ({"board_id": "unconfigured", "tune": {"auto": False}, "format": -1}, problem)
 
 
 def load_config(d=""):
     """The board's config file, or {} when missing or damaged (then defaults + fault)."""
-    p = (d + "/" + CONFIG) if d else CONFIG
-    for name in (p, p + ".bak"):
-        try:
-            with open(name) as f:
-                cfg = json.loads(f.read())
-            if isinstance(cfg, dict):
-                return cfg
-        except (OSError, ValueError):
-            continue
-    return {"board_id": "unconfigured", "tune": {"auto": False}, "format": -1}
+    return read_config(d)[0]

@@ -7,11 +7,11 @@
 # Written atomically: the new copy goes to mem.new, the previous good copy is
 # kept as mem.bak, then mem.new is renamed into mem.dat.  At load the valid
 # copy with the highest generation wins, so power loss at any point leaves a
-# good memory (at worst the previous one).  Writes happen only on change.
+# good memory (at worst the previous one).  Writes happen only on change, and a
+# copy that fails its check is never moved into the backup slot.  Copies are
+# read a line at a time (no buffer the size of the file).
 #
-# Records file: one record per line, "<json>*<crc>", appended; a torn last
-# line fails its CRC and is ignored.  Compacted to the newest `keep` records
-# (atomically, same scheme) when it grows to twice that.
+# Records: see Records below (segment files on flash, nothing kept in RAM).
 import json
 import os
 
@@ -22,6 +22,8 @@ NEW = "mem.new"
 BAK = "mem.bak"
 REC = "rec.log"
 JOURNAL = "tune.jnl"
+# What the start-up is reading now (a file name), so a failure there names it.
+STAGE = [""]
 
 
 def _join(d, name):
@@ -104,11 +106,10 @@ class Memory:
         best = None
         errors = []
         for name in (MEM, NEW, BAK):
-            raw = _read(_join(self.d, name))
-            if raw is None:
-                continue
-            parsed = _parse_mem(raw)
+            parsed = _parse_mem(_join(self.d, name), True)
             if parsed is None:
+                continue
+            if parsed is False:
                 errors.append(name)
                 continue
             if best is None or parsed[0] > best[0]:
@@ -182,7 +183,18 @@ class Memory:
             lines.append("last %d %d %d %d %d" % self.last)
         body = ("\n".join(lines) + "\n").encode() if lines else b""
         head = "FMMEM 1 %d %d %04X\n" % (self.gen, len(keys), crc16(body))
-        atomic_write(self.d, MEM, head.encode() + body, BAK, NEW)
+        cur = _join(self.d, MEM)
+        if _parse_mem(cur, False) is False:
+            # The copy in place fails its check: it never becomes the backup (the
+            # good backup stays), so a second fault loses at most this change.
+            _remove(cur)
+        try:
+            atomic_write(self.d, MEM, head.encode() + body, BAK, NEW)
+        except OSError as e:
+            # A full or failing flash: the memory stays right in RAM and is written
+            # at the next change; the tune it belongs to goes on.
+            self.load_error = "not saved: " + _oserr(e)
+            return False
         self.dirty = False
         return True
 
@@ -194,109 +206,336 @@ class Memory:
         return out
 
 
-def _parse_mem(raw):
+def _parse_mem(p, keep):
+    """A memory copy read a line at a time: (generation, entries, last) when keep,
+    True when it passes its check and not keep; None when missing, False when
+    it fails its check (CRC, format, count)."""
     try:
-        nl = raw.find(b"\n")
-        if nl < 0:
-            return None
-        head = raw[:nl].decode().split()
-        body = raw[nl + 1:]
-        if len(head) != 5 or head[0] != "FMMEM" or head[1] != "1":
-            return None
-        if int(head[4], 16) != crc16(body):
-            return None
-        gen = int(head[2])
-        count = int(head[3])
-        entries = {}
-        last = None
-        for line in body.decode().split("\n"):
-            if not line:
-                continue
-            p = line.split()
-            if p[0] == "last":
-                last = (int(p[1]), int(p[2]), int(p[3]), int(p[4]), int(p[5]))
-                continue
-            entries[int(p[0])] = (int(p[1]), int(p[2]), int(p[3]), int(p[4]) / 1000.0, int(p[5]))
-        if len(entries) != count:
-            return None
-        return (gen, entries, last)
-    except (ValueError, IndexError, UnicodeError):
+        f = open(p, "rb")
+    except OSError:
         return None
+    with f:
+        try:
+            head = f.readline().decode().split()
+            if len(head) != 5 or head[0] != "FMMEM" or head[1] != "1" or not head[4]:
+                return False
+            want = int(head[4], 16)
+            gen = int(head[2])
+            count = int(head[3])
+            crc = 0xFFFF
+            n = 0
+            entries = {}
+            last = None
+            while True:
+                line = f.readline()
+                if not line:
+                    break
+                crc = crc16(line, crc)
+                p_ = line.split()
+                if not p_:
+                    continue
+                if p_[0] == b"last":
+                    if keep:
+                        last = (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
+                    continue
+                n += 1
+                if keep:
+                    entries[int(p_[0])] = (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]) / 1000.0,
+                                           int(p_[5]))
+            if crc != want or n != count:
+                return False
+        except (ValueError, IndexError, UnicodeError):
+            return False
+    return (gen, entries, last) if keep else True
+
+
+# Records on flash: segment files rec/<n>.log, segment n holding the records
+# numbered n*SEG .. n*SEG+SEG-1, one per line "<seq> <json>*<crc>" (CRC-16 of
+# everything before "*"), appended.  RAM holds a few integers whatever the
+# history: a record is read back from its segment when the host asks, the
+# oldest segment is removed whole when the store holds more than `keep`
+# (compaction copies nothing), and a boot reads the newest segment only.
+# rec.top holds the highest number a segment was ever opened for, written
+# before the segment's first record: a number is never given twice, even when
+# a segment is damaged or lost (the count then jumps to a fresh segment and
+# the gap is said on the link).
+SEG = 50
+RDIR = "rec"
+TOP = "rec.top"
 
 
 class Records:
-    """Tune records: a bounded ring in RAM backed by an append-only file."""
+    """Tune records on flash; see above.  d is the board's directory."""
 
     def __init__(self, d, keep):
         self.d = d
         self.keep = int(keep)
-        self.ring = []
         self.seq = 0
-        self.lines = 0
+        self.first = 0      # the lowest segment that may still exist
+        self.cur = -1       # the segment being appended to (-1: the next record opens one)
+        self.lost = None    # (first, last) numbers that may be lost, found at load
+        self.note = None    # what load found damaged, in words
+        self.floor_lost = False  # neither segments nor rec.top: a wiped store (or a new board)
+        self.err = None     # the last write failure, in words
 
-    def load(self):
-        raw = _read(_join(self.d, REC))
-        if raw is None:
-            raw = _read(_join(self.d, REC + ".bak"))
-        if raw is None:
-            return
-        ring = []
-        n = 0
-        for line in raw.split(b"\n"):
-            n += 1
-            r = _parse_record(line)
-            if r is not None:
-                ring.append(r)
-        ring.sort(key=lambda r: r["seq"])
-        self.ring = ring[-self.keep:]
-        self.lines = n
-        if self.ring:
-            self.seq = self.ring[-1]["seq"]
+    def _seg(self, n):
+        return _join(_join(self.d, RDIR), "%d.log" % n)
+
+    def load(self, write=True):
+        """Find where the numbers stand (reads the newest segment only); write
+        False leaves the flash untouched (the host reading a copy)."""
+        lo, hi = _segments(_join(self.d, RDIR))
+        top = _read_int(_join(self.d, TOP))
+        seq = 0
+        clean = True
+        if hi >= 0:
+            last, clean = _scan(self._seg(hi))
+            if clean and last >= hi * SEG:
+                seq = last
+                self.cur = hi
+            else:
+                # A damaged or empty newest segment: which of its numbers went out
+                # is unknown, so none of them is given again.
+                seq = (hi + 1) * SEG - 1
+                self.note = "rec/%d.log damaged: its records after %d may be lost" % (hi, max(last, hi * SEG - 1))
+                self.lost = (max(last, hi * SEG - 1) + 1, seq)
+            self.first = lo
+        if top is not None and top > seq and top // SEG > hi:
+            # Numbers were reserved for a segment that is not there (lost, or a power
+            # cut before its first record): they are skipped too.
+            self.lost = (seq + 1, top) if self.lost is None else (self.lost[0], top)
+            if self.note is None:
+                self.note = "rec/%d.log missing: records %d-%d may be lost" % (top // SEG, seq + 1, top)
+            seq = top
+            self.cur = -1
+        if top is None and hi < 0:
+            legacy = _legacy_seq(_join(self.d, "rec.log"))
+            if legacy > 0:
+                seq = legacy  # records of an older firmware: their numbers stay used
+            else:
+                self.floor_lost = True
+        if hi < 0 and self.first == 0:
+            self.first = (seq + 1) // SEG
+        self.seq = seq
+        # rec.top always covers the segment being appended to (all of its numbers).
+        want = (self.cur + 1) * SEG - 1 if self.cur >= 0 else seq
+        if write and (top is None or top < want):
+            self._reserve(want)
+        return clean
+
+    def _reserve(self, top):
+        try:
+            _write_sync(_join(self.d, TOP), ("%d\n" % top).encode())
+        except OSError as e:
+            self.err = "rec.top not written: %s" % _oserr(e)
+
+    def _open_segment(self, n):
+        """Start segment n: reserve its numbers first, then drop what is over `keep`."""
+        self._reserve((n + 1) * SEG - 1)
+        try:
+            os.mkdir(_join(self.d, RDIR))
+        except OSError:
+            pass  # it exists
+        nkeep = (self.keep + SEG - 1) // SEG
+        while self.first <= n - nkeep - 1:
+            _remove(self._seg(self.first))
+            self.first += 1
+        self.cur = n
+
+    def _drop_oldest(self):
+        """Room on a full flash: the oldest segment goes (never the one being written)."""
+        while self.first < self.cur:
+            p = self._seg(self.first)
+            self.first += 1
+            if _exists(p):
+                _remove(p)
+                return True
+        return False
 
     def add(self, rec):
         self.seq += 1
         rec["seq"] = self.seq
-        self.ring.append(rec)
-        if len(self.ring) > self.keep:
-            self.ring.pop(0)
+        n = self.seq // SEG
+        if n != self.cur:
+            self._open_segment(n)
         line = _record_line(rec)
-        path = _join(self.d, REC)
-        with open(path, "ab") as f:
-            f.write(line)
-        self.lines += 1
-        if self.lines >= 2 * self.keep:
-            self._compact()
+        for _ in range(4):
+            try:
+                with open(self._seg(n), "ab") as f:
+                    f.write(line)
+                self.err = None
+                break
+            except OSError as e:
+                self.err = "record %d not stored: %s" % (self.seq, _oserr(e))
+                if not self._drop_oldest():
+                    break
         return rec
 
-    def _compact(self):
-        data = b"".join(_record_line(r) for r in self.ring)
-        atomic_write(self.d, REC, data)
-        self.lines = len(self.ring)
-
     def since(self, seq, limit):
+        """Up to limit records numbered above seq, oldest first, read from flash."""
         out = []
-        for r in self.ring:
-            if r["seq"] > seq:
-                out.append(r)
-                if len(out) >= limit:
-                    break
+        want = seq + 1
+        n = want // SEG
+        if n < self.first:
+            n = self.first
+        top = self.seq // SEG
+        while n <= top and len(out) < limit:
+            try:
+                f = open(self._seg(n), "rb")
+            except OSError:
+                n += 1
+                continue
+            with f:
+                while len(out) < limit:
+                    line = f.readline()
+                    if not line:
+                        break
+                    if _line_seq(line) < want:
+                        continue  # not parsed: only its number is read
+                    r = _parse_record(line)
+                    if r is not None and r["seq"] >= want:
+                        out.append(r)
+                        want = r["seq"] + 1
+            n += 1
         return out
+
+    def count(self):
+        """How many segments the store holds now (a directory listing, no reads)."""
+        lo, hi = _segments(_join(self.d, RDIR))
+        return 0 if hi < 0 else hi - lo + 1
+
+
+def highest_seq(d):
+    """The highest record number written whole in d's record store (read only;
+    the host's look at a board's flash)."""
+    lo, hi = _segments(_join(d, RDIR))
+    n = hi
+    while n >= lo and n >= 0:
+        last = _scan(_join(_join(d, RDIR), "%d.log" % n))[0]
+        if last >= 0:
+            return last
+        n -= 1
+    return _legacy_seq(_join(d, "rec.log"))
+
+
+def _oserr(e):
+    code = e.args[0] if e.args else 0
+    if code == 28:
+        return "flash full"
+    return "flash error %s" % code
+
+
+def _segments(dirp):
+    """(lowest, highest) segment number in the records directory, (-1, -1) if none."""
+    lo = -1
+    hi = -1
+    try:
+        names = os.listdir(dirp)
+    except OSError:
+        return (-1, -1)
+    for name in names:
+        if not name.endswith(".log"):
+            continue
+        try:
+            n = int(name[:-4])
+        except ValueError:
+            continue
+        if n < 0:
+            continue
+        if lo < 0 or n < lo:
+            lo = n
+        if n > hi:
+            hi = n
+    return (lo, hi)
+
+
+def _read_int(p):
+    """A small file holding one non-negative integer, or None when missing or damaged."""
+    try:
+        with open(p, "rb") as f:
+            raw = f.read(24)
+    except OSError:
+        return None
+    try:
+        v = int(raw.decode().strip())
+    except (ValueError, UnicodeError):
+        return None
+    return v if v >= 0 else None
+
+
+def _scan(p):
+    """(last good record number, clean?) of a segment, a line at a time; -1 if none."""
+    last = -1
+    clean = True
+    try:
+        f = open(p, "rb")
+    except OSError:
+        return (-1, False)
+    with f:
+        empty = True
+        while True:
+            line = f.readline()
+            if not line:
+                break
+            empty = False
+            r = _line_seq(line) if line.endswith(b"\n") else -1
+            if r < 0 or _parse_record(line) is None:
+                clean = False
+                continue
+            if r > last:
+                last = r
+    return (last, clean and not empty)
+
+
+def _legacy_seq(p):
+    """The highest record number in an older firmware's rec.log (read a line at a time)."""
+    last = 0
+    try:
+        f = open(p, "rb")
+    except OSError:
+        return 0
+    with f:
+        while True:
+            line = f.readline()
+            if not line:
+                break
+            r = _parse_record(line)
+            if r is not None and r["seq"] > last:
+                last = r["seq"]
+    return last
 
 
 def _record_line(rec):
-    b = json.dumps(rec).encode()
+    b = ("%d " % rec["seq"] + json.dumps(rec)).encode()
     return b + ("*%04X\n" % crc16(b)).encode()
 
 
+def _line_seq(line):
+    """The record number a line starts with, -1 when it does not start with one."""
+    sp = line.find(b" ", 0, 12)
+    if sp <= 0:
+        return -1
+    try:
+        return int(line[:sp])
+    except ValueError:
+        return -1
+
+
 def _parse_record(line):
+    if line.endswith(b"\n"):
+        line = line[:-1]
     star = line.rfind(b"*")
     if star < 0 or len(line) - star != 5:
         return None
     try:
         if int(line[star + 1:].decode(), 16) != crc16(line[:star]):
             return None
-        r = json.loads(line[:star].decode())
-    except (ValueError, UnicodeError):
+        body = line[:star]
+        if not body.startswith(b"{"):
+            sp = body.find(b" ")
+            body = body[sp + 1:]
+        r = json.loads(body.decode())
+    except (ValueError, UnicodeError, TypeError):
         return None
     if not isinstance(r, dict) or not isinstance(r.get("seq"), int):
         return None
@@ -304,13 +543,27 @@ def _parse_record(line):
 
 
 def journal_write(d, obj):
-    """Note that a tune is under way, so a reset mid-tune still ends in a record."""
-    atomic_write(d, JOURNAL, json.dumps(obj).encode())
+    """Note that a tune is under way, so a reset mid-tune still ends in a record.
+
+    One plain write, no copy and rename: littlefs commits a file whole when it
+    is closed, and a torn journal elsewhere only fails to parse (the tune
+    itself is not lost, only its reset record)."""
+    try:
+        _write_sync(_join(d, JOURNAL), json.dumps(obj).encode())
+    except OSError:
+        pass  # a full flash must not stop a tune
 
 
 def journal_take(d):
     p = _join(d, JOURNAL)
-    raw = _read(p)
+    raw = None
+    try:
+        with open(p, "rb") as f:
+            raw = f.read(1025)
+    except OSError:
+        pass
+    if raw is not None and len(raw) > 1024:
+        raw = b""  # a journal is a hundred bytes: anything this long is damage
     _remove(p)
     _remove(p + ".bak")
     if raw is None:
@@ -320,3 +573,52 @@ def journal_take(d):
     except (ValueError, UnicodeError):
         return None
     return obj if isinstance(obj, dict) else None
+
+
+# The boot counter (boot.cnt: boots so far) and the failed starts in a row
+# (boot.try, cleared once a start has run a while, and by a deploy).  Read as
+# bytes: random bytes are a damaged counter, never an exception.
+BOOTS = "boot.cnt"
+TRIES = "boot.try"
+
+
+def read_boots(d):
+    """Boots so far from boot.cnt (or its previous copy), 0 when both are damaged."""
+    for name in (BOOTS, BOOTS + ".bak"):
+        v = _read_int(_join(d, name))
+        if v is not None:
+            return v
+    return 0
+
+
+def write_boots(d, n):
+    try:
+        atomic_write(d, BOOTS, ("%d\n" % n).encode())
+        return True
+    except OSError:
+        return False  # a full flash: the count is lost, the boot goes on
+
+
+def read_tries(d):
+    v = _read_int(_join(d, TRIES))
+    return 0 if v is None else v
+
+
+def write_tries(d, n):
+    try:
+        if n:
+            _write_sync(_join(d, TRIES), ("%d\n" % n).encode())
+        else:
+            _remove(_join(d, TRIES))
+        return True
+    except OSError:
+        return False
+
+
+def note_fault(d, text):
+    """The last start-up fault, kept where the flash allows (fault.txt, overwritten)."""
+    try:
+        _write_sync(_join(d, "fault.txt"), text.encode()[:200])
+        return True
+    except OSError:
+        return False

@@ -103,7 +103,11 @@ class DirTarget:
         os.replace(self.root / src, self.root / dst)
 
     def remove_tree(self, path: str) -> None:
-        shutil.rmtree(self.root / path, ignore_errors=True)
+        p = self.root / path
+        if p.is_file():
+            p.unlink()
+        else:
+            shutil.rmtree(p, ignore_errors=True)
 
     def reset(self) -> None:
         self.resets += 1
@@ -271,5 +275,8 @@ def apply(p: dict, target) -> dict:
     old = {k.split("/")[1] for k in target.hashes("fm") if k.count("/") >= 2}
     for o in old - {v, p["current"]}:
         target.remove_tree(f"fm/{o}")
+    # A deploy is the operator's answer to a safe mode: the count of failed starts
+    # goes, so the board tries a normal start again.
+    target.remove_tree("boot.try")
     target.reset()
     return {"version": v, "sent": sum(1 for i in p["items"] if i.action == "send")}

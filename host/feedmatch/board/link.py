@@ -173,7 +173,9 @@ class BoardLink:
             seq = self.seq
             self._awaited, self._answer = seq, None
             try:
-                self._write(frames.encode("Q", seq, word, args or {}))
+                # A newline first ends whatever garbage came before on the line, so the
+                # board reads this request even after noise with no newline in it.
+                self._write(b"\n" + frames.encode("Q", seq, word, args or {}))
                 deadline = time.monotonic() + timeout
                 bad0 = self.bad_frames
                 while time.monotonic() < deadline:

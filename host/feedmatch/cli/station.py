@@ -96,6 +96,15 @@ def cmd_status(a) -> int:
           f"SWR {swr if swr is not None else 'no RF'}{_bound_text(st.get('swr_bound'))}; {_mhz(st['freq_hz'])}")
     print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
           f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
+    if st.get("file"):
+        print(f"  concerns {st['file']}" + ("; the board is in safe mode: relays through, no tunes"
+                                             if st.get("safe_mode") else ""))
+    if st.get("advice"):
+        print(f"  what to do: {st['advice']}")
+    for w in st.get("warnings") or []:
+        print(f"  note: {w}")
+    if st.get("rec_error"):
+        print(f"  records: {st['rec_error']}")
     return 0
 
 

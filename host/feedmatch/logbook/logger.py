@@ -94,6 +94,13 @@ class Logger:
             sections = self.link.element_sections()
             if sections:
                 self.book.set_bank(bid, sections)
+        for w in self.status.get("warnings") or []:
+            # The board lost part of its history (a damaged record segment, a new
+            # identity) or got past a damaged file: the logbook keeps it, said once.
+            if isinstance(w, str) and self.book.note(self.board_id, self.status.get("boot"), w[:200]):
+                self.notices.append(f"board {self.board_id}: {w}")
+                if self.out is not None:
+                    self.out.write("\n" + self.notices[-1] + "\n")
         have = self.book.seqs(self.board_id)
         board_last = int(self.status.get("seq", 0))
         if board_last < self._floor:

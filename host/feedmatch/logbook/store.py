@@ -19,7 +19,7 @@ from typing import Any
 from feedmatch.errors import InputError
 from feedmatch.rf import bands
 
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 # The oldest schema report and fit-box read as it is (what it lacks is left out).
 READABLE_FROM = 2
 
@@ -55,6 +55,12 @@ _MIGRATIONS = {
         "ALTER TABLE tunes ADD COLUMN rig_hz REAL",
         "ALTER TABLE tunes ADD COLUMN rig_mode TEXT",
         "ALTER TABLE tunes ADD COLUMN preset INTEGER NOT NULL DEFAULT 0",
+    ],
+    # What a board said it found damaged or lost at a start (part of its history
+    # gone, a new identity), once per board, boot and text.
+    5: [
+        "CREATE TABLE notes (id INTEGER PRIMARY KEY, board INTEGER NOT NULL REFERENCES boards(id),"
+        " time TEXT NOT NULL, boot INTEGER, text TEXT NOT NULL, UNIQUE (board, boot, text))",
     ],
 }
 
@@ -280,6 +286,19 @@ class Logbook:
                 "raw, rig_hz, rig_mode, preset) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
                 row)
         return cur.rowcount == 1
+
+    def note(self, board_id: str, boot: int | None, text: str) -> bool:
+        """Keep what a board said it lost or found damaged; False if already noted."""
+        b = self.board(board_id)
+        cur = self.db.execute("INSERT OR IGNORE INTO notes (board, time, boot, text) VALUES (?, ?, ?, ?)",
+                              (b, _now(), boot, text))
+        return cur.rowcount == 1
+
+    def notes(self) -> list[tuple[str, str, int | None, str]]:
+        """(board, time, boot, text) of every note, oldest first."""
+        rows = self.db.execute("SELECT boards.board_id, notes.time, notes.boot, notes.text FROM notes "
+                               "JOIN boards ON boards.id = notes.board ORDER BY notes.id").fetchall()
+        return [tuple(r) for r in rows]
 
     def tunes(self, since: str | None = None) -> list[sqlite3.Row]:
         self.db.row_factory = sqlite3.Row

@@ -174,13 +174,12 @@ class EmulatedStation(StationBase):
         return read_littlefs(self.pico.dump_fs())
 
     def records_on_flash(self) -> int:
-        from fmlogic.memory import Records
+        from fmlogic.memory import highest_seq
 
         files = self.flash_files()
         with tempfile.TemporaryDirectory() as d:
-            for name in ("rec.log", "rec.log.bak"):
-                if name in files:
-                    Path(d, name).write_bytes(files[name])
-            r = Records(d, 10000)
-            r.load()
-            return r.seq
+            for name, data in files.items():
+                if name.startswith("rec"):
+                    Path(d, name).parent.mkdir(parents=True, exist_ok=True)
+                    Path(d, name).write_bytes(data)
+            return highest_seq(d)

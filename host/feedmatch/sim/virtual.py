@@ -362,11 +362,9 @@ class VirtualStation(StationBase):
                 pass
 
     def records_on_flash(self) -> int:
-        from fmlogic.memory import Records
+        from fmlogic.memory import highest_seq
 
-        r = Records(str(self.dir), 10000)
-        r.load()
-        return r.seq
+        return highest_seq(str(self.dir))
 
 
 def _listen() -> socket.socket:
