@@ -43,12 +43,15 @@ class Board(BoardBase):
         self.uart = None
         tx = pins.get("uart_tx")
         if tx is not None:
+            # A receive buffer of 2 KB: a whole frame waits while a tune step runs;
+            # garbage beyond it is dropped by the UART, never waited behind.
             self.uart = machine.UART(0, baudrate=cfg["link"]["baud"], tx=machine.Pin(tx),
-                                     rx=machine.Pin(pins.get("uart_rx", tx + 1)), timeout=0)
+                                     rx=machine.Pin(pins.get("uart_rx", tx + 1)), timeout=0, rxbuf=2048)
         else:
             import select
             self.poll = select.poll()
             self.poll.register(sys.stdin, select.POLLIN)
+            self.rx = bytearray(64)
             self.stdin = sys.stdin.buffer
             self.stdout = sys.stdout.buffer
 
@@ -73,9 +76,14 @@ class Board(BoardBase):
     def link_read(self):
         if self.uart is not None:
             return self.uart.read()
-        if self.poll.poll(0):
-            return self.stdin.read(1)
-        return None
+        # USB stdin has no non-blocking bulk read: up to 64 bytes, one at a time
+        # while more is ready (the controller calls again while the link is busy).
+        n = 0
+        rx = self.rx
+        while n < 64 and self.poll.poll(0):
+            rx[n] = self.stdin.read(1)[0]
+            n += 1
+        return bytes(rx[:n]) if n else None
 
     def link_write(self, data):
         if self.uart is not None:

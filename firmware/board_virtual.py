@@ -76,7 +76,7 @@ class Board:
 
     def link_read(self):
         try:
-            data = self.ser.recv(512)
+            data = self.ser.recv(4096)
         except OSError:
             return None
         if data == b"":

@@ -24,6 +24,8 @@ CASES = [
     (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
     (["bench", "--only", "typo"], "--only: unknown typo"),
     (["virtual-board", "--carrier", "abc"], "--carrier must be W@Hz or W@band"),
+    (["virtual-board", "--heap", "8"], "--heap must be 64 to 1048576 KB"),
+    (["virtual-board", "--micropython", "/nonexistent/mp"], "neither 'default', 'float32' nor an executable"),
     (["virtual-board", "--carrier", "@20m"], "--carrier must be W@Hz or W@band"),
     (["virtual-board", "--carrier", "10@1e30"], "above 1 GHz"),
     (["virtual-board", "--carrier", "10@144e6"], "above the HF and 6 m range"),

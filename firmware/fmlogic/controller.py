@@ -68,6 +68,7 @@ class Controller:
         self.warnings = []  # what the start found damaged and got past, in words
         self.internal_at = None  # when an internal error stopped the box (it recovers)
         self.err_at = None  # error answers to garbage on the link: at most one per 100 ms
+        self.link_busy = False
         memory.STAGE[0] = memory.BOOTS
         self.boot = _bump_boot(d) if boot is None else boot
         memory.STAGE[0] = "board.uid"
@@ -142,7 +143,8 @@ class Controller:
                 self.board.sleep_ms(idle_ms)
 
     def step(self):
-        """One pass; returns True while a tune is under way (no idle wait)."""
+        """One pass; returns True while a tune is under way or the link has more
+        waiting (no idle wait then)."""
         b = self.board
         b.wdt_feed()
         try:
@@ -154,7 +156,7 @@ class Controller:
         except Exception as e:  # keep the loop alive; the watchdog covers hangs
             self._internal(e)
         b.led(self.state == LOCKED)
-        return self.tune is not None
+        return self.tune is not None or self.link_busy
 
     def _internal(self, e):
         """An error no guard foresaw (out of memory, a bug): the tune ends, the
@@ -411,13 +413,15 @@ class Controller:
         # passes at the link's speed while tunes and the watchdog keep their time.
         b = self.board
         t0 = b.ticks_ms()
+        self.link_busy = False
         for _ in range(64):
             data = b.link_read()
             if not data:
                 return
             self._lines(data)
             if b.ticks_diff(b.ticks_ms(), t0) > 10:
-                return
+                break
+        self.link_busy = True  # more may wait: the loop comes back without its idle pause
 
     def _bad_frame(self, why):
         """Count a bad frame; answer at most one per 100 ms, so garbage never

