@@ -474,41 +474,81 @@ def cmd_follow(a) -> int:
     return 0
 
 
+TOKEN_ENV = "FEEDMATCH_CONTROL_TOKEN"
+
+
+def _control_token(a) -> str | None:
+    """The control token from --allow-control-file, the environment or (visible to
+    every local user in `ps`) --allow-control; None: the page is read-only."""
+    import os
+    import stat
+    from pathlib import Path
+
+    env = os.environ.get(TOKEN_ENV) or None
+    given = [n for n, v in (("--allow-control", a.allow_control), ("--allow-control-file", a.allow_control_file),
+                            (TOKEN_ENV, env)) if v is not None]
+    if len(given) > 1:
+        raise InputError(f"give the control token one way only, not {' and '.join(given)}")
+    token = a.allow_control or env
+    if a.allow_control_file is not None:
+        p = Path(a.allow_control_file)
+        try:
+            st = p.stat()
+            if not stat.S_ISREG(st.st_mode):
+                raise InputError(f"--allow-control-file {p} is not a file")
+            if st.st_mode & 0o077:
+                raise InputError(f"--allow-control-file {p} can be read by other users (mode "
+                                 f"{stat.S_IMODE(st.st_mode):o}); chmod 600 it")
+            lines = p.read_text().splitlines()
+        except FileNotFoundError:
+            raise InputError(f"--allow-control-file {p} does not exist") from None
+        except (OSError, UnicodeDecodeError) as e:
+            raise InputError(f"--allow-control-file {p} cannot be read: {e}") from None
+        token = lines[0].strip() if lines else ""
+    if token is not None and (len(token) < 8 or any(ord(ch) < 33 or ord(ch) > 126 for ch in token)):
+        raise InputError(f"the control token ({given[0]}) needs at least 8 printable characters, no spaces")
+    if a.allow_control is not None:
+        sys.stderr.write(f"feedmatch: warning: a token on the command line is visible to every user of this "
+                         f"machine (ps); prefer --allow-control-file FILE or {TOKEN_ENV}\n")
+    return token
+
+
 def cmd_serve(a) -> int:
     import signal
-    from pathlib import Path
 
     from feedmatch.web.server import serve
 
-    if a.db is not None:
-        from feedmatch.logbook.store import open_existing
-
-        if Path(a.db).exists():
-            open_existing(a.db).close()  # a bad logbook is one line now, not a broken page later
     if a.port is None and a.db is None:
         raise InputError("give --port (the board), --db (a logbook) or both")
     if not 1 <= a.http_port <= 65535:
         raise InputError(f"--http-port must be 1 to 65535, got {a.http_port}")
-    if a.allow_control is not None and len(a.allow_control) < 8:
-        raise InputError("--allow-control needs a token of at least 8 characters")
+    token = _control_token(a)
+    if not 0.5 <= a.idle_timeout <= 3600:
+        raise InputError(f"--idle-timeout must be 0.5 to 3600 s, got {a.idle_timeout:g}")
     if a.hamlib_amp_port is not None and (a.port is None or not 1 <= a.hamlib_amp_port <= 65535):
         raise InputError("--hamlib-amp-port needs --port (the board) and a TCP port of 1 to 65535")
     if a.no_page and a.hamlib_amp_port is None:
         raise InputError("--no-page serves nothing without --hamlib-amp-port")
+    if a.db is not None:
+        from feedmatch.logbook.store import open_existing
+
+        # A bad or missing logbook is one line now, not a broken page later
+        # (start `feedmatch log` first: it makes the logbook).
+        open_existing(a.db).close()
 
     def _term(_sig, _frame):
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, _term)
 
-    if a.allow_control is not None and a.listen not in ("127.0.0.1", "localhost", "::1"):
+    if token is not None and a.listen not in ("127.0.0.1", "localhost", "::1"):
         sys.stderr.write("feedmatch: warning: --allow-control on a network address: the token and the "
                          "page travel unencrypted; anyone who can read the network can tune the box\n")
 
     def ready(url: str) -> None:
         what = " and ".join(x for x in ((f"the board on {a.port}" if a.port else ""),
                                          (f"the logbook {a.db}" if a.db else "")) if x)
-        mode = "tune and bypass buttons need the token" if a.allow_control else "read-only"
+        mode = "tune and bypass buttons need the token" if token else "read-only"
         print(f"serving {what} at {url} ({mode}; Ctrl-C stops)", flush=True)
 
     amp = None
@@ -522,7 +562,8 @@ def cmd_serve(a) -> int:
         if a.no_page:
             while True:
                 time.sleep(3600)
-        serve(a.db, a.port, a.listen, a.http_port, a.allow_control, a.baud, ready=ready)
+        serve(a.db, a.port, a.listen, a.http_port, token, a.baud, ready=ready,
+              allow_hosts=tuple(a.allow_host or ()), idle_timeout_s=a.idle_timeout)
     except KeyboardInterrupt:
         pass
     finally:
@@ -613,9 +654,17 @@ def add_commands(sub) -> None:
     s.add_argument("--baud", type=int, default=115200)
     s.add_argument("--db", help="the logbook to show")
     s.add_argument("--listen", default="127.0.0.1", help="address to bind (default 127.0.0.1: this machine only)")
-    s.add_argument("--http-port", type=int, default=8765)
+    s.add_argument("--http-port", type=int, default=8765, help="TCP port of the page (default 8765)")
+    s.add_argument("--allow-host", action="append", metavar="NAME",
+                   help="another host name the page may be reached by (repeatable; 127.0.0.1, localhost "
+                        "and the --listen address are always served)")
+    s.add_argument("--allow-control-file", metavar="FILE",
+                   help="add tune and bypass buttons; each request must carry the token on the first line "
+                        "of FILE (mode 600). The environment variable FEEDMATCH_CONTROL_TOKEN does the same")
     s.add_argument("--allow-control", metavar="TOKEN",
-                   help="add tune and bypass buttons; each request must carry this token")
+                   help="as --allow-control-file, with the token on the command line (visible in ps)")
+    s.add_argument("--idle-timeout", type=float, default=10.0, metavar="SECONDS",
+                   help="close a connection that sends no complete request for this long (default 10 s)")
     s.add_argument("--hamlib-amp-port", type=int, metavar="PORT",
                    help="also serve the box's SWR, forward and reflected power and frequency, read-only, on "
                         "Hamlib's network amplifier protocol (what ampctld serves) at this TCP port")

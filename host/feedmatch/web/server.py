@@ -25,6 +25,51 @@ from feedmatch.errors import BoardRefused, InputError, LinkError
 
 STATIC = Path(__file__).parent / "static"
 TOKEN_HEADER = "X-Feedmatch-Token"
+# A connection must send its request line and headers within this long, and an
+# idle keep-alive connection is closed after it: held connections cannot pile up.
+HEADER_TIMEOUT_S = 10.0
+BODY_TIMEOUT_S = 10.0
+MAX_BODY = 64 * 1024
+MAX_STREAMS = 64  # open event streams (pages) at once
+LOCAL_NAMES = ("127.0.0.1", "localhost", "::1")
+
+
+def _host_name(header: str) -> str:
+    """The name in a Host header, without its port ("[::1]:8765" -> "::1")."""
+    h = header.strip().lower()
+    if h.startswith("["):
+        return h[1:h.find("]")] if "]" in h else h
+    return h.rsplit(":", 1)[0] if h.count(":") == 1 else h
+
+
+def _is_ip(name: str) -> bool:
+    import ipaddress
+
+    try:
+        ipaddress.ip_address(name)
+        return True
+    except ValueError:
+        return False
+
+
+def host_guard(listen: str, extra: tuple[str, ...] = ()):
+    """aiohttp middleware: answer only requests whose Host header names this server
+    (127.0.0.1, localhost, the --listen address, names added with --allow-host).
+    A page from another site that rebinds its own name to this address carries its
+    name in Host and is refused (DNS rebinding).  Listening on every address
+    (0.0.0.0, ::), any IP address literal is also accepted: a rebinding attack
+    needs a name."""
+    names = {n.lower() for n in (*LOCAL_NAMES, listen, *extra)}
+    any_ip = listen in ("0.0.0.0", "::", "")
+
+    @web.middleware
+    async def guard(req: web.Request, handler):
+        name = _host_name(req.headers.get("Host", ""))
+        if name not in names and not (any_ip and _is_ip(name)):
+            return web.json_response({"error": f"this server does not answer for the host name '{name}'; "
+                                      "start serve with --allow-host NAME to add it"}, status=421)
+        return await handler(req)
+    return guard
 
 
 class BoardWatch:
@@ -99,8 +144,10 @@ class BoardWatch:
 
 
 class Station:
-    def __init__(self, db: str | None, port: str | None, baud: int = 115200, token: str | None = None):
+    def __init__(self, db: str | None, port: str | None, baud: int = 115200, token: str | None = None,
+                 listen: str = "127.0.0.1", allow_hosts: tuple[str, ...] = ()):
         self.db, self.port, self.baud, self.token = db, port, baud, token
+        self.listen, self.allow_hosts = listen, tuple(allow_hosts)
         self.queues: set[asyncio.Queue] = set()
         self.loop: asyncio.AbstractEventLoop | None = None
         self.watch: BoardWatch | None = None
@@ -160,6 +207,8 @@ class Station:
         return web.json_response({"status": w.status if w else None, "error": w.error if w else "no board"})
 
     async def events(self, req: web.Request) -> web.StreamResponse:
+        if len(self.queues) >= MAX_STREAMS:
+            return web.json_response({"error": f"too many open pages (at most {MAX_STREAMS})"}, status=503)
         resp = web.StreamResponse(headers={"Content-Type": "text/event-stream", "Cache-Control": "no-cache"})
         await resp.prepare(req)
         q: asyncio.Queue = asyncio.Queue()
@@ -185,13 +234,26 @@ class Station:
         got = req.headers.get(TOKEN_HEADER, "")
         if not hmac.compare_digest(got.encode(), self.token.encode()):
             return web.json_response({"error": "wrong or missing token"}, status=403)
-        if self.watch is None:
-            return web.json_response({"error": "no board"}, status=409)
         word = req.match_info["word"]
+        try:
+            body = await asyncio.wait_for(req.read(), BODY_TIMEOUT_S) if req.can_read_body else b""
+        except TimeoutError:
+            return web.json_response({"error": f"the request body did not arrive within {BODY_TIMEOUT_S:g} s"},
+                                     status=408)
+        try:
+            obj = json.loads(body) if body.strip() else {}
+        except ValueError:
+            return web.json_response({"error": "the body must be a JSON object, e.g. {\"on\": true}"}, status=400)
+        if not isinstance(obj, dict):
+            return web.json_response({"error": "the body must be a JSON object, e.g. {\"on\": true}"}, status=400)
         args: dict[str, Any] = {}
         if word == "bypass":
-            body = await req.json() if req.can_read_body else {}
-            args = {"on": bool(body.get("on", True))}
+            on = obj.get("on", True)
+            if not isinstance(on, bool):
+                return web.json_response({"error": "\"on\" must be true or false"}, status=400)
+            args = {"on": on}
+        if self.watch is None:
+            return web.json_response({"error": "no board"}, status=409)
         try:
             ans = await asyncio.get_running_loop().run_in_executor(None, self.watch.request, word, args)
         except BoardRefused as e:
@@ -201,7 +263,7 @@ class Station:
         return web.json_response(ans)
 
     def app(self) -> web.Application:
-        a = web.Application()
+        a = web.Application(middlewares=[host_guard(self.listen, self.allow_hosts)], client_max_size=MAX_BODY)
         a.router.add_get("/", self.index)
         a.router.add_get("/api/config", self.config)
         a.router.add_get("/api/view", self.view)
@@ -232,12 +294,16 @@ class Station:
 
 
 def serve(db: str | None, port: str | None, host: str, http_port: int, token: str | None,
-          baud: int = 115200, ready=None) -> None:
-    """Run until interrupted.  ready(url), when given, is called once listening."""
-    st = Station(db, port, baud, token)
+          baud: int = 115200, ready=None, allow_hosts: tuple[str, ...] = (),
+          idle_timeout_s: float = HEADER_TIMEOUT_S) -> None:
+    """Run until interrupted.  ready(url), when given, is called once listening.
+    idle_timeout_s: a connection that sends no complete request for this long is closed."""
+    st = Station(db, port, baud, token, listen=host, allow_hosts=allow_hosts)
 
     async def main() -> None:
-        runner = web.AppRunner(st.app(), shutdown_timeout=2.0)
+        # keepalive_timeout also closes a connection that sends no complete request
+        # within it (aiohttp arms it when the connection is made).
+        runner = web.AppRunner(st.app(), shutdown_timeout=2.0, keepalive_timeout=idle_timeout_s)
         await runner.setup()
         site = web.TCPSite(runner, host, http_port)
         await site.start()
