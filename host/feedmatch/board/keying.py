@@ -201,9 +201,11 @@ class KeyPolicy:
         seg = next(((lo, hi) for lo, hi in self.segments if lo <= f <= hi), None)
         if seg is None:
             a = bands.allocation(f, self.region)
-            where = (f"in {a[0].name} but outside your declared segments" if a else
-                     f"in no amateur band of ITU Region {self.region}")
-            return f"{_mhz(f)} is {where} ({', '.join(_span(lo, hi) for lo, hi in self.segments)})"
+            segs = ", ".join(_span(lo, hi) for lo, hi in self.segments)
+            if a:
+                return f"{_mhz(f)} is in {a[0].name} but outside your declared segments ({segs})"
+            return (f"{_mhz(f)} is outside your declared segments ({segs}) and in no amateur band of "
+                    f"ITU Region {self.region}")
         a = bands.allocation(f, self.region)
         if a is None:  # check_declared refuses such segments; checked again here all the same
             return f"{_mhz(f)} is in no amateur band of ITU Region {self.region} ({bands.ITU_SOURCE})"
