@@ -60,6 +60,7 @@ class Controller:
         self.pending_restore = None
         self.manual = False  # the operator set relays or bypass: no automatic tunes until asked
         self.preset_f = 0.0  # a preset waits for its confirming reading on the next carrier
+        self.preset_hint = None  # a preset the host computed (no memory here): the confirming recall starts there
         self.rig = None  # (freq_hz, mode) the host last said the radio is on
         self.frames_bad = 0
         self.hot_refusals = 0
@@ -276,6 +277,8 @@ class Controller:
     # -- tuning -----------------------------------------------------------------
     def _start_tune(self, f, why):
         hint = self.mem.lookup(f) if f > 0 else None
+        if hint is None and self.preset_f > 0.0:
+            hint = self.preset_hint
         name = self.t["strategy"]
         if name == "recall" and hint is None:
             name = "model"
@@ -475,6 +478,12 @@ class Controller:
             return False, {"why": "rf-present", "msg": "RF on the line: the box tunes on it instead"}
         hint = self.mem.lookup(f)
         b = self.mem.bin_of(f)
+        src = "memory"
+        if hint is None:
+            # Nothing stored: a state the host computed from the antenna it measured
+            # ("state": [l, c, shunt], "swr": its predicted SWR), switched as coldly.
+            hint = _given_state(a.get("state"), a.get("swr"), self.bank)
+            src = "antenna curve"
         if hint is None:
             return True, {"preset": False, "msg": "nothing stored near this frequency", "bin": b,
                           "relays": self._state_list()}
@@ -486,6 +495,7 @@ class Controller:
             return False, {"why": "hot", "msg": "power above hot-switch limit"}
         before = self._state_list()
         self.preset_f = float(f)
+        self.preset_hint = hint
         self.manual = False
         self.freq = float(f)
         self.lock_bin = self.mem.bin_of(f)
@@ -494,10 +504,10 @@ class Controller:
         # Each preset is a record too (no reading: there is no RF), so the
         # logbook holds every one, confirmed by a carrier or not.
         self._record(float(f), before, self._state_list(), -1.0, hint[3], 0, 0, "preset",
-                     "preset from memory", True, "preset")
-        self._set_state(WAIT_RF, "preset from memory for %.4f MHz" % (f / 1e6))
+                     "preset from " + src, src == "memory", "preset")
+        self._set_state(WAIT_RF, "preset from %s for %.4f MHz" % (src, f / 1e6))
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
-                      "bin_hz": self.mem.bin_hz, "bin": b}
+                      "bin_hz": self.mem.bin_hz, "bin": b, "source": src}
 
     def _status(self):
         return {"state": self.state, "why": self.why, "relays": self._state_list(),
@@ -656,6 +666,18 @@ class Controller:
 
 
 TRACE_MAX = 40
+
+
+def _given_state(st, swr, bank):
+    """A preset state the host sent, as a memory entry (l, c, shunt, swr, t), or None."""
+    if not isinstance(st, list) or len(st) != 3:
+        return None
+    for v, top in ((st[0], bank.l_max), (st[1], bank.c_max), (st[2], 1)):
+        if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
+            return None
+    if not isinstance(swr, (int, float)) or isinstance(swr, bool) or not 1.0 <= swr < 100.0:
+        swr = 0.0  # unknown: the first reading is a starting point, never a lock alone
+    return (st[0], st[1], st[2], float(swr), 0)
 
 
 def conclude(s, abort=False):

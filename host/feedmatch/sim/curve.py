@@ -372,8 +372,10 @@ def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DE
     for j in range(N_EXTRAS):
         sp[len(m) + j, j] = 1
     x0 = np.concatenate([np.zeros(N_EXTRAS), np.ravel(q0)])
+    lo = np.full(len(x0), -np.inf)
+    lo[:2] = 0.0  # a capacitance to the chassis is never negative
     sol = least_squares(resid, x0, jac_sparsity=sp, method="trf", loss="soft_l1", f_scale=3.0, max_nfev=100,
-                        x_scale="jac")
+                        x_scale="jac", bounds=(lo, np.inf))
     r = sol.fun[: len(m)]
     sigma = max(READING_SIGMA * float(np.sqrt(np.median(r ** 2) / 0.455)), 0.005)  # robust rms (median chi2_1)
     jac = sol.jac.toarray() if hasattr(sol.jac, "toarray") else np.asarray(sol.jac)
@@ -393,21 +395,19 @@ def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DE
 
 
 def combine(ests: list[LoadEstimate]) -> CurvePoint:
-    """Tunes of one bin as one point: inverse-covariance weighted; the random part
-    averages down, the systematic part (shared by every tune) does not, and a
-    scatter larger than the stated errors widens the result (Birge ratio)."""
+    """Tunes of one bin as one point: a weighted mean (weights 1 / the estimate's variance;
+    scalar, so errors the tunes share cannot pull R against X); the random part averages
+    down, the systematic part (shared by every tune) does not, and a scatter larger than
+    the stated errors widens the result (Birge ratio)."""
     zs = np.array([[e.z.real, e.z.imag] for e in ests])
-    ws = [np.linalg.inv(e.cov + np.eye(2) * 1e-12) for e in ests]
-    wsum = sum(ws)
-    winv = np.linalg.inv(wsum)
-    zbar = winv @ sum(w @ z for w, z in zip(ws, zs))
-    share = np.array([np.trace(w) for w in ws])
-    share = share / share.sum()
-    cov_rand = winv @ sum(w @ e.cov_rand @ w.T for w, e in zip(ws, ests)) @ winv.T
-    cov_sys = sum(s * e.cov_sys for s, e in zip(share, ests))
+    w = np.array([1.0 / max(float(np.trace(e.cov)), 1e-12) for e in ests])
+    w = w / w.sum()
+    zbar = w @ zs
+    cov_rand = sum(wi * wi * e.cov_rand for wi, e in zip(w, ests))
+    cov_sys = sum(wi * e.cov_sys for wi, e in zip(w, ests))
     cov = cov_rand + cov_sys
     if len(ests) > 1:
-        chi2 = sum(float((z - zbar) @ w @ (z - zbar)) for w, z in zip(ws, zs))
+        chi2 = sum(float(np.sum((z - zbar) ** 2 / np.maximum(np.diag(e.cov), 1e-12))) for z, e in zip(zs, ests))
         cov = cov * max(1.0, chi2 / (2 * (len(ests) - 1)))
     f = float(np.mean([e.freq_hz for e in ests]))
     return CurvePoint(f, complex(zbar[0], zbar[1]), cov, len(ests), sum(e.readings for e in ests), list(ests))
@@ -500,6 +500,7 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
             by_board.setdefault(r["board_id"], []).append(rec | {"_time": r["time"]})
     ests: list[LoadEstimate] = []
     learned_any = learned_extras = False
+    most, main_bank, main_extras = 0, None, None
     for key, recs in by_board.items():
         sec = sections.get(key) or {}
         bank = None
@@ -519,9 +520,12 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak)
         learned_extras = learned_extras or extras.learned
         ests += solve_records(recs, bank, learned, leak, extras)
+        if len(recs) > most:  # the board with the most tunes speaks for the box
+            most, main_bank, main_extras = len(recs), bank, extras
     pts = curve_points(ests, float(DEFAULTS["memory"]["bin_hz"]))
     times = [e.time for e in ests if e.time]
     return {"points": pts, "resonances": resonances(pts), "tunes": len(ests),
             "first": min(times) if times else None, "last": max(times) if times else None,
             "element_sigma": ELEMENT_SIGMA_LEARNED if learned_any else ELEMENT_SIGMA_NOMINAL,
-            "learned": learned_any, "coupler_learned": learned_extras, "boards": sorted(by_board)}
+            "learned": learned_any, "coupler_learned": learned_extras, "boards": sorted(by_board),
+            "bank": main_bank, "extras": main_extras}
