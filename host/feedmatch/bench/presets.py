@@ -98,3 +98,103 @@ def bench_presets(changes: int = 40, seed: int = 7) -> dict[str, Any]:
             "relay_changes_under_carrier_per_change_no_preset": round(a["switches_under_carrier"], 2),
             "relay_changes_under_carrier_per_change_preset": round(b["switches_under_carrier"], 2),
             "preset_hot_switches": b["hot_switches"] + a["hot_switches"]}
+
+
+def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
+    """Presets where nothing is stored, from the antenna the box measured.
+
+    The demo's first two sessions are played (its script twice) and logged; from
+    those records alone the antenna curve is measured (sim/curve.py: the demo
+    box's nominal values, the coupler and node strays learned from the traces)
+    and the preset computation built (sim/curvepreset.py).  Then, for n
+    frequencies drawn in the 40-10 m bands outside every tuned memory bin, with
+    the board's memory set aside (so each is a frequency with nothing stored),
+    the computed state is sent in a preset request with no carrier, and the
+    carrier comes: the true SWR it meets, the readings its tune takes, relay
+    changes under the carrier and switches above the hot-switch limit."""
+    from fmlogic import config as fcfg
+
+    from feedmatch.rf import bands
+    from feedmatch.sim.curve import curve_points, learn_extras, solve_records
+    from feedmatch.sim.curvepreset import CurvePresets, box_network
+
+    st = load_station()
+    model = st.model()
+    board = InProcessBoard(model)
+    recs: list[dict[str, Any]] = []
+    hot_sets = [0]
+    counting = [False]
+
+    def on_set(b: InProcessBoard) -> None:
+        if counting[0] and model.tx_w > 0:
+            hot_sets[0] += 1
+    board.on_set = on_set
+    with tempfile.TemporaryDirectory() as d:
+        ctl = Controller(board, st.board_config, d)
+        emit = ctl._event
+
+        def catch(word, obj):
+            if word == "record":
+                recs.append(dict(obj))
+            emit(word, obj)
+        ctl._event = catch
+        for _ in range(2):
+            for step in st.script:
+                k = ctl.rec.seq
+                model.key(step.tune_w, step.freq_hz)
+                _run(ctl, lambda c, k=k: c.rec.seq > k and c.tune is None)
+                model.key(0, 0)
+                _run(ctl, lambda c: False, 5)
+        bank = ctl.bank
+        leak = float(ctl.cfg["detector"]["leak"])
+        from feedmatch.sim.curve import _trace_of
+
+        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak)
+        bin_hz = float(fcfg.DEFAULTS["memory"]["bin_hz"])
+        pts = curve_points(solve_records(recs, bank, False, leak, extras), bin_hz)
+        planner = CurvePresets.from_points(pts, box_network(bank, extras))
+        tuned = {int(r["freq_hz"] // bin_hz) for r in recs if r.get("freq_hz")}
+        names = ("40m", "30m", "20m", "17m", "15m", "12m", "10m")
+        rng = random.Random(seed)
+        counting[0] = True
+        first, readings, offered, provable, carrier_sets = [], [], 0, [], []
+        kept = dict(ctl.mem.entries)
+        changes = 0
+        while changes < n:
+            b = bands.by_name(rng.choice(names))
+            f = round(rng.uniform(b.low_hz + 2e3, b.high_hz - 2e3), -2)
+            if int(f // bin_hz) in tuned:
+                continue
+            changes += 1
+            ctl.mem.entries = {}  # nothing stored here, as on a frequency far from any tuned one
+            plan = planner.plan(f)
+            if plan is not None:
+                offered += 1
+                board.inbox += link.encode("Q", changes, "preset", {"freq_hz": f, "state": plan["state"],
+                                                                    "swr": plan["swr"]})
+                _run(ctl, lambda c: False, 5)
+                board.outbox.clear()
+            k = ctl.rec.seq
+            before_sets = hot_sets[0]
+            model.key(TUNE_W, f)
+            first.append(model.swr())
+            _run(ctl, lambda c, k=k: c.rec.seq > k and c.tune is None)
+            got = ctl.rec.since(k, 10)
+            if got:
+                readings.append(got[-1]["n"])
+                # Where the box cannot prove the target at all (its best state reads above the
+                # accept level), the recall searches on whatever the preset: counted apart.
+                provable.append(got[-1]["outcome"] == "locked")
+            model.key(0, 0)
+            _run(ctl, lambda c: False, 5)
+            carrier_sets.append(hot_sets[0] - before_sets)
+            ctl.mem.entries = dict(kept)
+    return {"new_changes": n, "new_offered_rate": round(offered / n, 3),
+            "new_first_carrier_swr2_rate": round(sum(s <= 2.0 for s in first) / n, 3),
+            "new_first_carrier_swr_median": round(statistics.median(first), 2),
+            "new_median_readings": statistics.median(readings) if readings else None,
+            "new_relay_changes_under_carrier_per_change": round(hot_sets[0] / n, 3),
+            "new_locked_rate": round(sum(provable) / n, 3),
+            "new_relay_changes_under_carrier_per_locked_change": round(
+                sum(c for c, p in zip(carrier_sets, provable) if p) / max(sum(provable), 1), 3),
+            "new_hot_switches": len(model.violations), "new_curve_points": len(pts)}

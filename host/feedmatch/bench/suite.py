@@ -278,6 +278,9 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         from feedmatch.bench.presets import bench_presets
 
         res.update({"presets_" + k: v for k, v in bench_presets().items()})
+        from feedmatch.bench.presets import bench_presets_new
+
+        res.update({"presets_" + k: v for k, v in bench_presets_new(60 if quick else 200).items()})
     if want("antenna_curve"):
         from feedmatch.bench.curve import bench_antenna_curve
 

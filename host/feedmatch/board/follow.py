@@ -65,6 +65,9 @@ class Follower:
         self.last_bin: int | None = None
         self.last_rig: tuple[float, str] | None = None
         self.presets = 0
+        # freq_hz -> {"state": [l, c, shunt], "swr": predicted, ...} or None: a state computed
+        # from the measured antenna (feedmatch.sim.curvepreset), offered where nothing is stored.
+        self.curve_preset: Callable[[float], dict[str, Any] | None] | None = None
         self.keyed_tunes = 0
         self.unkey_failures = 0
         self.stop = threading.Event()
@@ -223,6 +226,8 @@ class Follower:
             self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'}{vals} from memory "
                      f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
             return
+        if self.curve_preset is not None and self._preset_from_curve(ln, f, mode):
+            return
         self.say(f"{_mhz(f)} {mode}: nothing stored here; the box is left as it is")
         if self.tune_carrier_w is not None:
             why = self.may_key(f, b)
@@ -248,6 +253,27 @@ class Follower:
             if held:
                 return f"{held}; following without keying"
         return ""
+
+    def _preset_from_curve(self, ln: BoardLink, f: float, mode: str) -> bool:
+        """Nothing stored: the state computed from the antenna the box measured, sent in a
+        preset request (the board switches it cold, the first carrier confirms it)."""
+        plan = self.curve_preset(f) if self.curve_preset is not None else None
+        if plan is None:
+            return False
+        try:
+            ans = ln.request("preset", {"freq_hz": f, "mode": mode, "state": plan["state"], "swr": plan["swr"]})
+        except BoardRefused as e:
+            self.say(f"{_mhz(f)} {mode}: preset from the antenna curve refused ({e.why})")
+            return True
+        if not ans.get("preset"):
+            return False  # older firmware: it knows no computed state
+        self.presets += 1
+        r = ans.get("relays") or plan["state"]
+        z = plan["z_ohm"]
+        self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'} from the antenna curve "
+                 f"(antenna {z[0]:.1f}{z[1]:+.1f}j +- {plan['z_err_ohm']:.1f} ohm, predicted SWR {plan['swr']:.2f}); "
+                 "the first carrier confirms it")
+        return True
 
     # -- keying the radio for a tune ---------------------------------------------------
     def keyed_tune(self, ln: BoardLink, f: float) -> dict[str, Any] | None:

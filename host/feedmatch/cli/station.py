@@ -445,6 +445,17 @@ def cmd_follow(a) -> int:
     except LinkError:
         fo.close()
         raise
+    if a.curve:
+        from feedmatch.rf.network import load_network
+        from feedmatch.sim.curvepreset import presets_from_logbook
+
+        cp = presets_from_logbook(a.curve, load_network(None).firmware_bank())
+        if cp is None:
+            say(f"--curve: {a.curve} holds no measured antenna yet; presets from the board's memory only")
+        else:
+            fo.curve_preset = cp.plan
+            say(f"--curve: where nothing is stored, presets computed from the antenna measured at {len(cp.f)} "
+                f"frequencies ({cp.f[0] / 1e6:.3f}-{cp.f[-1] / 1e6:.3f} MHz)")
     if policy is not None:
         say(f"--tune-carrier: this program will KEY THE RADIO at {a.tune_carrier:g} W {policy.mode} for at most "
             f"{fo.max_key_s:g} s where nothing is stored, only inside "
@@ -622,6 +633,8 @@ def add_commands(sub) -> None:
     s.add_argument("--antenna", help="antenna JSON or .s1p: key only where the box can match it")
     s.add_argument("--rig-full-power", type=float, default=100.0,
                    help="the radio's power in W at RF power level 1.0 (to set --tune-carrier)")
+    s.add_argument("--curve", metavar="DB", help="logbook whose measured antenna gives presets where nothing "
+                   "is stored (computed on the box's element values, switched cold, confirmed by the first carrier)")
     s.set_defaults(fn=cmd_follow)
 
     s = sub.add_parser("status", help="the board's state, relays, power and SWR")
