@@ -198,3 +198,36 @@ def test_antenna_logbook_bad_input_is_one_line(tmp_path, capsys):
     assert "--since goes with --logbook" in capsys.readouterr().err
     with pytest.raises(SystemExit):
         main(["antenna", "--logbook"])
+
+
+def test_health_in_ohms_flags_a_changed_antenna_and_not_a_steady_one(tmp_path):
+    """Four tunes on an antenna, then four after its R rose by half (radials lost: more ground
+    loss; invented figures): the change is said in ohms; the same logbook up to the change,
+    and an antenna that never changed, raise no flag."""
+    from feedmatch.logbook.report import make_report, report_lines
+    from feedmatch.logbook.store import Logbook
+    from feedmatch.sim.curve import add_antenna
+
+    def book(path, loads):
+        bk = Logbook(path)
+        bk.start_session("hollow-oak-1", "/dev/null")
+        bk.set_bank("hollow-oak-1", {"network": {"z0_ohm": Z0, "inductors_uh": IND, "capacitors_pf": CAP}})
+        for i, z in enumerate(loads):
+            trace = []
+            for st in STATES:
+                trace += [st[0], st[1], st[2], int(abs(_skrf_s11(st, z)) * 1000 + 0.5)]
+            bk.add({"board_id": "hollow-oak-1", "seq": i + 1, "freq_hz": F, "swr_before": 3.0, "swr_after": 1.2,
+                    "outcome": "locked", "n": len(STATES), "ms": 40, "trace": trace, "after": [12, 20, 0, 0]},
+                   when=f"2026-11-0{i + 1}T12:00:00.000+00:00")
+        bk.close()
+
+    changed = tmp_path / "changed.sqlite"
+    book(changed, [Z_TRUE] * 4 + [Z_TRUE + 10] * 4)
+    rep = add_antenna(make_report(str(changed)), str(changed))
+    (b,) = rep["bands"]
+    assert b["antenna_health"]["flag"] and "R at 14.20 MHz 20.0 -> 30.0 ohm (+50 %)" in b["antenna_health"]["note"]
+    assert any("CHECK antenna: R at 14.20 MHz" in line for line in report_lines(rep))
+    steady = tmp_path / "steady.sqlite"
+    book(steady, [Z_TRUE] * 8)
+    rep = add_antenna(make_report(str(steady)), str(steady))
+    assert rep["bands"][0]["antenna_health"] == {"flag": False, "note": "steady"}

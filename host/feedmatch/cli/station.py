@@ -261,11 +261,14 @@ def cmd_report(a) -> int:
     if a.plots:
         output_dir(a.plots, "--plots")
     rep = make_report(a.db, a.since)
+    from feedmatch.sim.curve import add_antenna
+
+    add_antenna(rep, a.db, a.since)  # health in ohms, from the antenna the tunes measured
     if a.csv:
         write_csv(a.csv, rep["rows"])
     files = report_plots(a.plots, rep["rows"]) if a.plots else []
     if a.json:
-        emit_json({"tunes": rep["tunes"], "bands": rep["bands"]})
+        emit_json({"tunes": rep["tunes"], "bands": rep["bands"], "antenna_notes": rep["antenna_notes"]})
     else:
         print("\n".join(report_lines(rep)))
         for f in files:

@@ -164,8 +164,13 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
         meas = f"{b['median_measurements']:5.0f}" if b["median_measurements"] is not None else "    -"
         h = b["health"]
         flag = ("CHECK: " + h["note"]) if h["flag"] else h["note"]
+        ah = b.get("antenna_health")  # the measured antenna's own change (sim.curve.add_antenna)
+        if ah and ah["flag"]:
+            flag = "CHECK antenna: " + ah["note"] + ("; " + flag if h["flag"] else "")
         out.append(f"{b['band']:>5} {b['tunes']:5d} {pct(b['success_rate'])} {swr} {ms} {meas} "
                    f"{pct(b['memory_hit_rate'])}  {sts:<26} {flag}")
+    for note in rep.get("antenna_notes") or []:
+        out.append(f"antenna: {note}")
     presets = sum(b["presets"] for b in rep["bands"])
     if presets:
         ok = sum(b["presets_confirmed"] for b in rep["bands"])

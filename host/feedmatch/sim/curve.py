@@ -56,10 +56,18 @@ class LoadEstimate:
     cov_sys: np.ndarray
     readings: int
     time: str | None = None
+    # The part of cov_sys this tune does not share with the others (where on its circle a
+    # one-reading tune's load lies): kept when two periods are compared, where the shared
+    # part (element values, coupler) cancels.
+    cov_own: np.ndarray | None = None
 
     @property
     def cov(self) -> np.ndarray:
         return self.cov_rand + self.cov_sys
+
+    @property
+    def cov_compare(self) -> np.ndarray:
+        return self.cov_rand + (self.cov_own if self.cov_own is not None else 0.0)
 
 
 @dataclass
@@ -310,7 +318,8 @@ class LoadSolver:
         # The reading's noise averages over repeated tunes; where on its circle the load
         # lies does not (the same state reads alike every time).
         cov_rand = np.eye(2) * gain * self.extras.reading_sigma ** 2
-        cov_sys = np.eye(2) * gain * m * m
+        cov_own = np.eye(2) * gain * m * m
+        cov_sys = cov_own.copy()
         cols = []
         for i in range(N_EXTRAS):
             dp = np.zeros(N_EXTRAS)
@@ -323,7 +332,7 @@ class LoadSolver:
             dz = dzdg * (g_match(_net_coefs(pb, f, st), p0) - g) / _H * self.element_sigma
             v = np.array([dz.real, dz.imag])
             cov_sys += np.outer(v, v)
-        return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma))
+        return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma), cov_own=cov_own)
 
 
 def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DEFAULT,
@@ -529,3 +538,106 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
             "element_sigma": ELEMENT_SIGMA_LEARNED if learned_any else ELEMENT_SIGMA_NOMINAL,
             "learned": learned_any, "coupler_learned": learned_extras, "boards": sorted(by_board),
             "bank": main_bank, "extras": main_extras}
+
+
+# -- health: what changed on the antenna, in its own terms ------------------------------
+HEALTH_SIGMAS = 3.0     # a change is flagged beyond this many standard deviations of the difference
+HEALTH_MIN_CHANGE = 0.10  # ... and beyond this fraction of the value (common practice for trend alarms)
+
+
+def _compare_point(ests: list[LoadEstimate]) -> tuple[complex, np.ndarray]:
+    """A period's tunes of one bin: the weighted mean and the variance of what is not
+    shared with the other period (random part and each tune's own circle)."""
+    w = np.array([1.0 / max(float(np.trace(e.cov)), 1e-12) for e in ests])
+    w = w / w.sum()
+    z = complex(sum(wi * e.z for wi, e in zip(w, ests)))
+    own = [e.cov_own if e.cov_own is not None else np.zeros((2, 2)) for e in ests]
+    cov = sum(wi * wi * e.cov_rand for wi, e in zip(w, ests)) + sum(wi * o for wi, o in zip(w, own))
+    return z, cov
+
+
+def antenna_health(points: list[CurvePoint]) -> dict[str, Any]:
+    """Each bin's earlier tunes against its later ones (the halves of its tunes in time):
+    R and X, and the resonances the two halves locate, each change judged against the
+    uncertainty of the difference (the errors both periods share cancel in it).
+    Returns {"bands": {band: {"flag", "notes"}}, "notes": [antenna-wide notes]}."""
+    from fmlogic.config import DEFAULTS
+
+    from feedmatch.rf import bands
+
+    out: dict[str, dict[str, Any]] = {}
+    splits = []
+    for p in points:
+        ms = sorted(p.members, key=lambda e: e.time or "")
+        band = bands.band_of(p.freq_hz)
+        row = out.setdefault(band, {"flag": False, "notes": [], "compared": 0})
+        if len(ms) < 2:
+            continue
+        row["compared"] += 1
+        # Where did it change, if it did: every split of the bin's tunes in time, the one
+        # whose difference is the most significant (a change-point scan).
+        best = None
+        for k in range(1, len(ms)):
+            (z1, c1), (z2, c2) = _compare_point(ms[:k]), _compare_point(ms[k:])
+            found = []
+            for name, a, b, var in (("R", z1.real, z2.real, c1[0, 0] + c2[0, 0]),
+                                    ("X", z1.imag, z2.imag, c1[1, 1] + c2[1, 1])):
+                d = b - a
+                t = abs(d) / math.sqrt(max(var, 1e-12))
+                if t > HEALTH_SIGMAS and abs(d) > HEALTH_MIN_CHANGE * abs(a):
+                    found.append((t, name, a, b))
+            score = max((f[0] for f in found), default=0.0)
+            if found and (best is None or score > best[0]):
+                best = (score, k, found)
+        if best is None:
+            continue
+        _score, k, found = best
+        splits.append(ms[k].time or "")
+        mhz = p.freq_hz / 1e6
+        for _t, name, a, b in found:
+            row["notes"].append(f"{name} at {mhz:.2f} MHz {a:.1f} -> {b:.1f} ohm ({100 * (b - a) / abs(a):+.0f} %)")
+        row["flag"] = True
+    notes = []
+    # The resonances before and after the change (the earliest split found), or the halves in time.
+    ests = sorted((e for p in points for e in p.members), key=lambda e: e.time or "")
+    cut = min(splits) if splits else (ests[len(ests) // 2].time or "" if ests else "")
+    early_all = [e for e in ests if (e.time or "") < cut]
+    late_all = [e for e in ests if (e.time or "") >= cut]
+    if early_all and late_all:
+        bin_hz = float(DEFAULTS["memory"]["bin_hz"])
+        r1, r2 = resonances(curve_points(early_all, bin_hz)), resonances(curve_points(late_all, bin_hz))
+        for a in r1:
+            same = [b for b in r2 if b["kind"] == a["kind"] and b["between_hz"] == a["between_hz"]]
+            if not same:
+                continue
+            b = same[0]
+            d = b["freq_hz"] - a["freq_hz"]
+            if abs(d) > HEALTH_SIGMAS * math.hypot(a["freq_err_hz"], b["freq_err_hz"]):
+                notes.append(f"{a['kind']} resonance {a['freq_hz'] / 1e6:.2f} -> {b['freq_hz'] / 1e6:.2f} MHz")
+    for row in out.values():
+        if not row["notes"]:
+            row["notes"] = ["steady"] if row["compared"] else ["too few tunes per frequency to compare"]
+    return {"bands": out, "notes": notes}
+
+
+def add_antenna(rep: dict[str, Any], db: str, since: str | None = None) -> dict[str, Any]:
+    """A report (or the page's station view) with the measured antenna beside it: each
+    band's antenna health ("antenna_health"), antenna-wide notes ("antenna_notes") and the
+    curve itself ("antenna_curve": points, resonances, Smith-chart gammas)."""
+    from feedmatch.rf.network import load_network
+
+    cur = measured_curve(db, since, None, nominal=load_network(None).firmware_bank())
+    h = antenna_health(cur["points"])
+    for b in rep.get("bands", []):
+        ah = h["bands"].get(b["band"])
+        if ah is not None:
+            b["antenna_health"] = {"flag": ah["flag"], "note": "; ".join(ah["notes"])}
+    rep["antenna_notes"] = h["notes"]
+    pts = []
+    for p in cur["points"]:
+        j = p.to_json()
+        g = (p.z - Z0_OHM) / (p.z + Z0_OHM)
+        j["gamma"] = [round(g.real, 4), round(g.imag, 4)]
+        pts.append(j)
+    rep["antenna_curve"] = {"points": pts, "resonances": cur["resonances"]}
+    return rep
