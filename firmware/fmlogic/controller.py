@@ -17,7 +17,7 @@ import json
 import sys
 
 from fmlogic import config as fcfg
-from fmlogic import coupler, link, memory, search
+from fmlogic import coupler, link, memory, search, selftest
 from fmlogic.swr import gamma_from_powers, swr_from_gamma
 
 VERSION = "0.1.0"
@@ -509,6 +509,39 @@ class Controller:
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
                       "bin_hz": self.mem.bin_hz, "bin": b, "source": src}
 
+    def _selftest(self, a):
+        """Step each relay from a reference state with the tune carrier on
+        (fmlogic.selftest: the plan, the gate, the readings); the host diagnoses.
+        Reference: l/c/sh when given, else the tuned state, else memory's state
+        for this frequency, else all relays released on the antenna side."""
+        if self.tune is not None:
+            return False, {"why": "busy"}
+        ref = None
+        if "l" in a or "c" in a or "sh" in a:
+            ref = (a.get("l"), a.get("c"), a.get("sh", 1))
+            for v, top in ((ref[0], self.bank.l_max), (ref[1], self.bank.c_max), (ref[2], 1)):
+                if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
+                    return False, {"why": "bad-args", "msg": "l/c/sh out of range"}
+        side = a.get("side", True)
+        if not isinstance(side, bool):
+            return False, {"why": "bad-args", "msg": "side must be true or false"}
+        fwd, _ = self._read()
+        if not self.p["min_tune_w"] <= fwd <= self.p["max_tune_w"]:
+            return False, {"why": "no-carrier", "msg": "key a carrier of %g to %g W" %
+                           (self.p["min_tune_w"], self.p["max_tune_w"])}
+        f = self.board.count_freq()
+        if ref is None:
+            if self.state in (LOCKED, BEST) and not self.bypass:
+                ref = self.relays
+            else:
+                hint = self.mem.lookup(f) if f > 0 else None
+                ref = (hint[0], hint[1], hint[2]) if hint else (0, 0, 1)
+        g, why = selftest.run(self, ref, side)
+        if _COLLECT:
+            gc.collect()
+        return True, {"ref": [ref[0], ref[1], ref[2]], "side": side, "g": g, "freq_hz": f,
+                      "fwd_w": _r3(self.fwd), "stopped": why, "relays": self._state_list()}
+
     def _status(self):
         return {"state": self.state, "why": self.why, "relays": self._state_list(),
                 "fwd_w": _r3(self.fwd), "ref_w": _r3(self.ref),
@@ -632,6 +665,8 @@ class Controller:
                 size += n
             more = len(cand) > len(recs) or (len(cand) == 6 and cand[-1]["seq"] < self.rec.seq)
             return True, {"records": recs, "more": more, "last": self.rec.seq}
+        if word == "selftest":
+            return self._selftest(a)
         if word == "ping":
             return True, {"pong": True}
         return False, {"why": "unknown-request", "msg": word[:16]}

@@ -14,10 +14,11 @@
 #   stuck-tx / stuck-ant   the side relay stays on one side
 # A spec is a comma-separated list: "L3:stuck-out,C5:stuck-in,L6:drift=-30%".
 #
-# The self-test steps every relay from a reference state and from the same
-# state with the capacitor on the other side (a single fault then shows in two
-# different circuits), plus the bypass reading: 2 * (1 + nL + nC) + 1 readings
-# for a 7 + 7 bank (31), within the 40 the request allows.
+# The self-test steps every relay from a reference state (the box's tuned
+# state), then from a second reference the host picks on the other side with
+# as many relays reversed as keeps the readings informative (so a stuck-in and
+# a stuck-out element read differently): 2 * (1 + nL + nC) + 1 readings for a
+# 7 + 7 bank (31), within the 40 the diagnosis may use.
 
 STUCK_OUT = "stuck-out"
 STUCK_IN = "stuck-in"
@@ -131,24 +132,25 @@ def reach(m, state):
     return ((state[0] & m[0]) | m[1], (state[1] & m[2]) | m[3], sh)
 
 
-def plan(ref, nl, nc):
-    """The self-test's commanded states, in order: ref, ref with each relay
-    toggled (L0.., C0..), then the same from ref on the other side (the
-    side relay's own step).  The bypass reading
-    comes last and is not in the list (the caller switches the bypass relay)."""
+def plan(ref, nl, nc, side=True):
+    """The commanded states of one self-test step, in order: ref, ref with each
+    inductor relay toggled (L0..), each capacitor relay toggled (C0..) and, with
+    side, the side relay toggled: 1 + nL + nC (+ 1) readings."""
     l0 = ref[0]
     c0 = ref[1]
-    out = []
-    for sh in (ref[2], 1 - ref[2]):
-        out.append((l0, c0, sh))
-        for i in range(nl):
-            out.append((l0 ^ (1 << i), c0, sh))
-        for i in range(nc):
-            out.append((l0, c0 ^ (1 << i), sh))
+    sh = ref[2]
+    out = [(l0, c0, sh)]
+    for i in range(nl):
+        out.append((l0 ^ (1 << i), c0, sh))
+    for i in range(nc):
+        out.append((l0, c0 ^ (1 << i), sh))
+    if side:
+        out.append((l0, c0, 1 - sh))
     return out
 
 
 def readings_needed(nl, nc):
+    """Two steps (the second without its side toggle): 2 * (1 + nL + nC) + 1."""
     return 2 * (1 + nl + nc) + 1
 
 
@@ -173,3 +175,45 @@ def check_failed(errs, where, v, nl, nc):
         elif f[0] in seen:
             errs.append("%s[%d]: element %s is listed twice" % (where, i, f[0]))
         seen.append(f[0])
+
+
+def run(ctl, ref, side):
+    """Step the relays through plan(ref) on the controller ctl with the carrier
+    on, every change through its hot-switch gate (ctl._switch), then put the
+    relays back as they were.  Returns (|gamma| x 1000 per state read, why the
+    steps stopped early or "").  A reading outside the tune window stops the
+    test: the carrier went away or rose, and nothing more is switched."""
+    from array import array
+
+    from fmlogic.swr import reading_gamma
+
+    bank = ctl.bank
+    states = plan(ref, bank.nl, bank.nc, side)
+    out = array("h", bytes(2 * len(states)))  # preallocated: nothing grows while relays move
+    n = 0
+    why = ""
+    before = ctl.relays
+    byp = ctl.bypass
+    lo = ctl.p["min_tune_w"]
+    hi = ctl.p["max_tune_w"]
+    settle = ctl.t["settle_ms"]
+    for st in states:
+        if not ctl._switch(st, False):
+            why = "power above hot-switch limit"
+            break
+        ctl.board.sleep_ms(settle)
+        fwd, rev = ctl._read()
+        ctl.board.wdt_feed()
+        if fwd < lo:
+            why = "carrier lost"
+            break
+        if fwd > hi:
+            why = "power rose above tune window"
+            break
+        g = reading_gamma(fwd, rev)
+        out[n] = int(g * 1000.0 + 0.5) if g >= 0.0 else -1
+        n += 1
+    # Back where the box was (the gate still applies: above the limit it holds).
+    if not ctl._switch(before, byp) and not why:
+        why = "relays held after the test (power above hot-switch limit)"
+    return [out[i] for i in range(n)], why

@@ -153,6 +153,64 @@ def cmd_tune(a) -> int:
     return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) else 1
 
 
+def cmd_selftest(a) -> int:
+    from feedmatch.board.selftest import run_selftest
+    from feedmatch.cli.output import emit_json
+
+    if not 1.0 <= a.wait <= 600.0:
+        raise InputError(f"--wait must be 1 to 600 s, got {a.wait:g}")
+    with _link(a) as ln:
+        res = run_selftest(ln, a.wait, say=(lambda t: None) if a.json else
+                           (lambda t: sys.stderr.write(f"feedmatch: {t}\n")))
+        if a.write:
+            res["written"] = _write_faults(ln, res)
+    if a.json:
+        emit_json({k: res[k] for k in ("faults", "readings", "untested", "freq_hz", "refs", "chi2_healthy",
+                                      "tuned_first") if k in res} | ({"written": res["written"]}
+                                                                     if "written" in res else {}))
+        return 0 if not res["faults"] else 1
+    vals = res["values"]
+    print(f"self-test at {_mhz(res['freq_hz'])}, {res['fwd_w']} W: {res['readings']} readings "
+          f"from L{res['refs'][0][0]} C{res['refs'][0][1]} and L{res['refs'][1][0]} C{res['refs'][1][1]}")
+    if not res["faults"]:
+        print("  every relay acts as the model says")
+    for f in res["faults"]:
+        what = f.get("value") and f"now about {f['value']} ({f['drift_percent']:+g} %)" or ""
+        print(f"  {f['element']}{' (' + f['nominal'] + ')' if 'nominal' in f else ''}: {f['kind']} {what}".rstrip())
+        for t in f["evidence"]["telling"]:
+            st = t["state"]
+            print(f"    L{st[0]} C{st[1]} {'tx' if st[2] == 0 else 'ant'}: read |gamma| {t['measured_gamma']:.3f}, "
+                  f"healthy box {t['healthy_gamma']:.3f}, with this fault {t['fault_gamma']:.3f}")
+        print(f"    fit chi-square: healthy {f['evidence']['chi2_healthy']}, this fault {f['evidence']['chi2_fault']}")
+    if res["untested"]:
+        names = []
+        for e in res["untested"]:
+            if e == "side":
+                names.append("side")
+            else:
+                v = vals["inductors_uh" if e[0] == "L" else "capacitors_pf"][int(e[1:])]
+                names.append(f"{e} ({v:g} {'uH' if e[0] == 'L' else 'pF'})")
+        print(f"  not tested at this carrier (their steps barely move the reading): {', '.join(names)}; "
+              "repeat on another band")
+    if "written" in res:
+        print(f"  {res['written']}")
+    return 0 if not res["faults"] else 1
+
+
+def _write_faults(ln, res) -> str:
+    """--write: a stuck element goes into the board's network.failed (the search then
+    keeps to states it can reach); a drift is for fit-box's correction, not written here."""
+    from fmlogic.selftest import FAILED_KINDS
+
+    stuck = [f"{f['element']}:{f['kind']}" for f in res["faults"] if f["kind"] in FAILED_KINDS]
+    if not stuck:
+        return "nothing written: no stuck element" + (" (a drift is learned by fit-box)" if res["faults"] else "")
+    have = ln.request("cfg-get", {"section": "network"})["value"].get("failed") or []
+    new = list(have) + [s for s in stuck if s.split(":")[0] not in [h.split(":")[0] for h in have]]
+    ln.request("cfg-set", {"path": "network.failed", "value": new})
+    return f"written to the board's config: network.failed = {new}"
+
+
 def cmd_bypass(a) -> int:
     from feedmatch.cli.output import emit_json
 
@@ -649,6 +707,13 @@ def add_commands(sub) -> None:
     s.add_argument("--freq", help="frequency hint in Hz or a band name")
     s.add_argument("--wait", type=float, default=15.0, help="seconds to wait for the result")
     s.set_defaults(fn=cmd_tune)
+
+    s = sub.add_parser("selftest", help="step each relay under a tune carrier and name any that misbehaves")
+    _add_port(s)
+    s.add_argument("--wait", type=float, default=20.0, help="seconds to wait for the tune that comes first")
+    s.add_argument("--write", action="store_true",
+                   help="mark a stuck element failed in the board's config (the search then works around it)")
+    s.set_defaults(fn=cmd_selftest)
 
     s = sub.add_parser("bypass", help="put the tuner through (or back in line with --off)")
     _add_port(s)

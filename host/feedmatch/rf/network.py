@@ -26,6 +26,12 @@ from feedmatch.resources import DATA
 MAX_BITS = 12
 SHUNTS = ("tx", "ant")
 DEFAULT_NETWORK = DATA / "network_default.json"
+# Typical strays of a relay-switched bank, from memory (not a particular
+# datasheet): 1 pF across an open relay contact (small signal and power relays
+# list 0.5-2 pF), 8 pF from each switched node to the chassis, 15 nH of series
+# lead per element (about 1 nH per mm).  The drawn boxes carry them
+# (sim.boxes), and the self-test's diagnosis assumes them for a real box.
+STRAY_DEFAULTS = {"relay_open_pf": 1.0, "node_pf": 8.0, "lead_nh": 15.0}
 
 
 @dataclass

@@ -20,9 +20,7 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 from feedmatch.rf.detector import DetectorModel
-from feedmatch.rf.network import Network
-
-STRAY_DEFAULTS = {"relay_open_pf": 1.0, "node_pf": 8.0, "lead_nh": 15.0}
+from feedmatch.rf.network import STRAY_DEFAULTS, Network
 
 
 @dataclass
