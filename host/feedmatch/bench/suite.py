@@ -285,6 +285,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         from feedmatch.bench.curve import bench_antenna_curve
 
         res.update(bench_antenna_curve(quick))
+    if want("selftest"):
+        from feedmatch.bench.selftest import bench_selftest
+
+        res.update(bench_selftest(quick))
     if want("rp2040"):
         from feedmatch.bench.chip import bench_rp2040
         from feedmatch.sim.emulator import EmulatorMissing

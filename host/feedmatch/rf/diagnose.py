@@ -154,32 +154,36 @@ def _meas(r: Readings) -> np.ndarray:
 
 def _refine(m: Model, r: Readings, hyp, scale0: float, g0: complex,
             phase0: float | None = None) -> tuple[float, dict[str, Any]]:
-    """Least squares on (load gamma, leak phase[, scale]) from a grid start."""
+    """Least squares on (load gamma, leak phase, detector gain ratio[, scale])
+    from a grid start.  The gain ratio stays within the calibration's tolerance
+    (fmlogic.coupler.GAIN_TOL_DB)."""
+    from fmlogic.coupler import GAIN_TOL_DB
     from scipy.optimize import least_squares
 
     meas = _meas(r)
     sig = _sigma(meas)
     drift = hyp[1] == "drift"
+    k_lo = 10 ** (-GAIN_TOL_DB / 20)
     best = (np.inf, {})
     starts = (0.0,) if m.leak <= 0 else ((phase0,) if phase0 is not None else (0.0, 0.5 * np.pi, np.pi, 1.5 * np.pi))
     for ph0 in starts:
-        x0 = [g0.real, g0.imag, ph0] + ([scale0] if drift else [])
+        x0 = [g0.real, g0.imag, ph0, 1.0] + ([scale0] if drift else [])
 
         def res(x):
             gl = complex(x[0], x[1])
             if abs(gl) >= 0.995:
                 gl = gl / abs(gl) * 0.995
-            p = _predict(m, r, hyp, x[3] if drift else 1.0, gl, x[2])[:, 0]
+            p = x[3] * _predict(m, r, hyp, x[4] if drift else 1.0, gl, x[2])[:, 0]
             return (p - meas) / sig
 
-        lo = [-0.995, -0.995, -10.0] + ([0.0] if drift else [])
-        hi = [0.995, 0.995, 10.0] + ([5.0] if drift else [])
+        lo = [-0.995, -0.995, -10.0, k_lo] + ([0.0] if drift else [])
+        hi = [0.995, 0.995, 10.0, 1 / k_lo] + ([5.0] if drift else [])
         x0 = np.clip(x0, np.array(lo) + 1e-6, np.array(hi) - 1e-6)
-        sol = least_squares(res, x0, bounds=(lo, hi), x_scale=[0.05, 0.05, 0.3] + ([0.1] if drift else []))
+        sol = least_squares(res, x0, bounds=(lo, hi), x_scale=[0.05, 0.05, 0.3, 0.02] + ([0.1] if drift else []))
         chi2 = float(np.sum(sol.fun ** 2))
         if chi2 < best[0]:
             best = (chi2, {"load_gamma": complex(sol.x[0], sol.x[1]), "phase": float(sol.x[2]),
-                           "scale": float(sol.x[3]) if drift else 1.0, "resid": sol.fun})
+                           "k": float(sol.x[3]), "scale": float(sol.x[4]) if drift else 1.0, "resid": sol.fun})
     return best
 
 
@@ -221,7 +225,8 @@ def diagnose(m: Model, r: Readings) -> dict[str, Any]:
         named.append(_evidence(m, r, faults[0], h))
     untested = [e for e in _untested(m, r, (named and faults[0]) or h) if not named or e != named[0]["element"]]
     return {"faults": named, "untested": untested, "chi2_healthy": round(h[1], 1),
-            "chi2_best_fault": round(faults[0][1], 1) if faults else None, "readings_used": n}
+            "chi2_best_fault": round(faults[0][1], 1) if faults else None,
+            "best_fault": list(faults[0][2]) if faults else None, "readings_used": n}
 
 
 def _admissible(f) -> bool:
