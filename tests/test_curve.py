@@ -231,3 +231,30 @@ def test_health_in_ohms_flags_a_changed_antenna_and_not_a_steady_one(tmp_path):
     book(steady, [Z_TRUE] * 8)
     rep = add_antenna(make_report(str(steady)), str(steady))
     assert rep["bands"][0]["antenna_health"] == {"flag": False, "note": "steady"}
+
+
+def test_the_page_serves_the_measured_antenna(tmp_path):
+    import signal
+    import subprocess
+    import urllib.request
+
+    from .conftest import BIN, free_port
+
+    db = tmp_path / "station.sqlite"
+    _logbook(db, [(14.1e6, 30 - 30j), (14.3e6, 34 + 30j)])
+    http = free_port()
+    p = subprocess.Popen([str(BIN / "feedmatch"), "serve", "--db", str(db), "--http-port", str(http)],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        p.stdout.readline()
+        with urllib.request.urlopen(f"http://127.0.0.1:{http}/api/antenna", timeout=30) as r:
+            a = json.loads(r.read())
+        assert [pt["tunes"] for pt in a["points"]] == [2, 2]
+        assert abs(a["points"][0]["r_ohm"] - 30) < 3 and a["resonances"][0]["kind"] == "series"
+        g = a["points"][0]["gamma"]
+        assert g[0] ** 2 + g[1] ** 2 < 1.0  # a passive load, inside the Smith chart
+        with urllib.request.urlopen(f"http://127.0.0.1:{http}/", timeout=30) as r:
+            assert b'id="antrx"' in r.read()
+    finally:
+        p.send_signal(signal.SIGTERM)
+        p.wait(15)

@@ -633,6 +633,7 @@ def add_antenna(rep: dict[str, Any], db: str, since: str | None = None) -> dict[
         if ah is not None:
             b["antenna_health"] = {"flag": ah["flag"], "note": "; ".join(ah["notes"])}
     rep["antenna_notes"] = h["notes"]
+    rep["antenna_health_bands"] = {k: {"flag": v["flag"], "note": "; ".join(v["notes"])} for k, v in h["bands"].items()}
     pts = []
     for p in cur["points"]:
         j = p.to_json()

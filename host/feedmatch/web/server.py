@@ -202,6 +202,26 @@ class Station:
                                       "lines": []})
         return web.json_response(v, dumps=lambda o: json.dumps(o, default=str))
 
+    async def antenna(self, _req: web.Request) -> web.Response:
+        """The antenna as the box measured it (sim.curve): points with their errors, the
+        loads' reflection coefficients for the Smith chart, resonances and health notes."""
+        empty = {"points": [], "resonances": [], "health": {}, "notes": []}
+        if not self.db:
+            return web.json_response(empty)
+
+        def build() -> dict:
+            from feedmatch.sim.curve import add_antenna
+
+            rep = add_antenna({"bands": []}, self.db)
+            h = rep.get("antenna_health_bands", {})
+            return rep["antenna_curve"] | {"health": h, "notes": rep["antenna_notes"]}
+
+        try:
+            v = await asyncio.get_running_loop().run_in_executor(None, build)
+        except InputError as e:
+            return web.json_response(empty | {"error": str(e)})
+        return web.json_response(v)
+
     async def status(self, _req: web.Request) -> web.Response:
         w = self.watch
         return web.json_response({"status": w.status if w else None, "error": w.error if w else "no board"})
@@ -267,6 +287,7 @@ class Station:
         a.router.add_get("/", self.index)
         a.router.add_get("/api/config", self.config)
         a.router.add_get("/api/view", self.view)
+        a.router.add_get("/api/antenna", self.antenna)
         a.router.add_get("/api/status", self.status)
         a.router.add_get("/api/events", self.events)
         a.router.add_post(r"/api/{word:tune|bypass}", self.control)

@@ -93,6 +93,67 @@ function drawSmith(smith) {
   });
 }
 
+// The measured antenna: R and X against frequency with one-sigma bars, the loads on a Smith chart.
+function drawAntenna(a) {
+  const pts = a.points || [];
+  const res = (a.resonances || []).map((r) => `${r.kind} resonance ${(r.freq_hz / 1e6).toFixed(3)} MHz`);
+  $("antenna-summary").textContent = a.error ? a.error : pts.length ?
+    `${pts.length} frequencies, ${pts.reduce((n, p) => n + p.tunes, 0)} tunes` + (res.length ? "; " + res.join(", ") : "") :
+    "no tune with readings logged yet";
+  const ul = $("antenna-notes");
+  ul.innerHTML = "";
+  const notes = (a.notes || []).slice();
+  Object.keys(a.health || {}).forEach((band) => { if (a.health[band].flag) notes.push(band + ": " + a.health[band].note); });
+  notes.forEach((n) => { const li = document.createElement("li"); li.textContent = "CHECK: " + n; li.className = "flag"; ul.appendChild(li); });
+  const c = $("antrx"), g = c.getContext("2d");
+  g.clearRect(0, 0, c.width, c.height);
+  const L = 50, R = c.width - 60, T = 10, B = c.height - 25;
+  g.strokeStyle = "#999"; g.strokeRect(L, T, R - L, B - T);
+  if (!pts.length) { drawSmithPoints($("antsmith"), []); return; }
+  const f = pts.map((p) => p.freq_hz / 1e6);
+  const f0 = Math.min(...f) * 0.97, f1 = Math.max(...f) * 1.03;
+  const vals = [];
+  pts.forEach((p) => { vals.push(p.r_ohm + p.r_err_ohm, p.x_ohm - p.x_err_ohm, p.x_ohm + p.x_err_ohm, 0); });
+  const lo = Math.max(Math.min(...vals), -2000), hi = Math.min(Math.max(...vals), 2000);
+  const x = (v) => L + (v - f0) / (f1 - f0) * (R - L);
+  const y = (v) => B - (Math.min(Math.max(v, lo), hi) - lo) / ((hi - lo) || 1) * (B - T);
+  g.fillStyle = "#555"; g.font = "11px sans-serif";
+  g.strokeStyle = "#ccc"; g.beginPath(); g.moveTo(L, y(0)); g.lineTo(R, y(0)); g.stroke();
+  g.fillText(Math.round(hi) + " ohm", 4, T + 10); g.fillText(Math.round(lo) + " ohm", 4, B);
+  g.fillText(f0.toFixed(1) + " MHz", L, B + 16); g.fillText(f1.toFixed(1) + " MHz", R - 50, B + 16);
+  [["r_ohm", "r_err_ohm", COLORS[0], "R"], ["x_ohm", "x_err_ohm", COLORS[1], "X"]].forEach(([k, e, col, name], i) => {
+    g.strokeStyle = col; g.fillStyle = col;
+    pts.forEach((p) => {
+      const px = x(p.freq_hz / 1e6);
+      g.beginPath(); g.moveTo(px, y(p[k] - p[e])); g.lineTo(px, y(p[k] + p[e])); g.stroke();
+      g.beginPath(); g.arc(px, y(p[k]), 3, 0, 2 * Math.PI); g.fill();
+    });
+    g.fillText(name, R + 8, T + 12 + 14 * i);
+  });
+  drawSmithPoints($("antsmith"), pts.map((p) => p.gamma));
+}
+
+function drawSmithPoints(c, gs) {
+  const g = c.getContext("2d");
+  g.clearRect(0, 0, c.width, c.height);
+  const cx = c.width / 2, cy = c.height / 2, rad = c.width / 2 - 12;
+  g.strokeStyle = "#bbb";
+  g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.stroke();
+  g.beginPath(); g.moveTo(cx - rad, cy); g.lineTo(cx + rad, cy); g.stroke();
+  [0.2, 1, 3].forEach((r) => { const rr = rad / (1 + r); g.beginPath(); g.arc(cx + rad - rr, cy, rr, 0, 2 * Math.PI); g.stroke(); });
+  g.strokeStyle = COLORS[2]; g.fillStyle = COLORS[2];
+  gs.forEach((p, i) => {
+    const px = cx + p[0] * rad, py = cy - p[1] * rad;
+    if (i) { const q = gs[i - 1]; g.beginPath(); g.moveTo(cx + q[0] * rad, cy - q[1] * rad); g.lineTo(px, py); g.stroke(); }
+    g.beginPath(); g.arc(px, py, 3, 0, 2 * Math.PI); g.fill();
+  });
+}
+
+async function loadAntenna() {
+  try { const r = await fetch("/api/antenna"); drawAntenna(await r.json()); }
+  catch (e) { $("antenna-summary").textContent = "antenna view failed: " + e; }
+}
+
 async function loadView() {
   try { const r = await fetch("/api/view"); showView(await r.json()); }
   catch (e) { $("summary").textContent = "logbook view failed: " + e; }
@@ -115,10 +176,13 @@ async function start() {
     $("inline").onclick = () => control("bypass", { on: false });
   }
   loadView();
+  loadAntenna();
   const es = new EventSource("/api/events");
   es.addEventListener("status", (e) => { setLink("board", "ok"); showStatus(JSON.parse(e.data)); });
   es.addEventListener("record", () => loadView());
   es.addEventListener("logbook", () => loadView());
+  es.addEventListener("record", () => loadAntenna());
+  es.addEventListener("logbook", () => loadAntenna());
   es.addEventListener("board-lost", (e) => setLink("board lost: " + JSON.parse(e.data).error, "bad"));
   es.onerror = () => setLink("server unreachable", "bad");
 }
