@@ -119,7 +119,7 @@ def tuning_board(tmp_path):
         vs.key(10.0, 21.2e6)   # a steady carrier: the board tunes on its own
         yield vs, pty, amp
     finally:
-        p.send_signal(signal.SIGINT)
+        p.send_signal(signal.SIGTERM)
         try:
             _out, err = p.communicate(timeout=10)
         except subprocess.TimeoutExpired:
@@ -140,13 +140,18 @@ def test_the_readings_agree_with_feedmatch_status_while_the_box_tunes(tuning_boa
     vs, pty, amp = tuning_board
     seen = set()
     t_end = time.monotonic() + 20
-    while time.monotonic() < t_end:
-        swr, fwd, ref, f = _ask(amp, ["l SWR", "l PWRFORWARD", "l PWRREFLECTED", "f"])
+    while time.monotonic() < t_end:   # while it tunes: the amplifier port answers throughout
+        answers = _ask(amp, ["l SWR", "l PWRFORWARD", "l PWRREFLECTED", "f"])
+        assert all(a.endswith("\n") for a in answers)
         st = _status(pty)
         seen.add(st["state"])
-        if st["state"] == "locked" and not swr.startswith("RPRT"):
+        if st["state"] == "locked":
             break
     assert "locked" in seen, seen
+    time.sleep(1.0)   # the server's watch polls the board every 0.5 s: let it see the locked box
+    swr, fwd, ref, f = _ask(amp, ["l SWR", "l PWRFORWARD", "l PWRREFLECTED", "f"])
+    st = _status(pty)
+    assert st["state"] == "locked"
     # Read at nearly the same moment, on a carrier that stands still: the same readings up
     # to the detector's noise between two measurements (a few per cent).
     assert float(swr) == pytest.approx(st["swr"], rel=0.05)

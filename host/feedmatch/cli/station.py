@@ -624,13 +624,13 @@ def cmd_serve(a) -> int:
         print(f"serving {what} at {url} ({mode}; Ctrl-C stops)", flush=True)
 
     amp = None
-    if a.hamlib_amp_port is not None:
-        from feedmatch.web.hamlib_amp import serve_board
+    try:  # a Ctrl-C at any moment from here on still closes the amplifier server and its board watch
+        if a.hamlib_amp_port is not None:
+            from feedmatch.web.hamlib_amp import serve_board
 
-        amp = serve_board(a.port, a.baud, a.hamlib_amp_listen, a.hamlib_amp_port)
-        print(f"serving the board's SWR, forward and reflected power and frequency to Hamlib amplifier "
-              f"clients on {a.hamlib_amp_listen}:{amp[0].port} (ampctld protocol, read-only)", flush=True)
-    try:
+            amp = serve_board(a.port, a.baud, a.hamlib_amp_listen, a.hamlib_amp_port)
+            print(f"serving the board's SWR, forward and reflected power and frequency to Hamlib amplifier "
+                  f"clients on {a.hamlib_amp_listen}:{amp[0].port} (ampctld protocol, read-only)", flush=True)
         if a.no_page:
             while True:
                 time.sleep(3600)
