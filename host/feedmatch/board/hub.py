@@ -1,8 +1,9 @@
 """One owner of the board's serial port; every other feedmatch process attaches.
 
 The owner (`log`, `follow` or `serve`, whichever starts first) opens the port
-and listens on a Unix socket named after it (mode 0600: the user's own
-processes only).  Requests from each attached process are forwarded to the
+and listens on a Unix socket named after it (mode 0600, in $XDG_RUNTIME_DIR or
+a 0700 directory of the user's own; both ends check the other's user id with
+SO_PEERCRED: the user's own processes only).  Requests from each attached process are forwarded to the
 board under the hub's own sequence numbers, and each answer goes back to the
 process that asked, with its own number restored; events (records, state
 changes) go to everyone.  The board sees one host; records are still
@@ -16,6 +17,8 @@ from __future__ import annotations
 import hashlib
 import os
 import socket
+import stat
+import struct
 import tempfile
 import threading
 import time
@@ -26,25 +29,91 @@ from fmlogic import link as frames
 
 from feedmatch.errors import LinkError
 
+BACKLOG = 128  # connections waiting to be accepted: many tools started at once all get in
+_CRED = struct.Struct("3i")  # struct ucred: pid, uid, gid (Linux, socket(7) SO_PEERCRED)
+
+
+def private_dir() -> Path:
+    """Where the hub sockets live: $XDG_RUNTIME_DIR (the user's own, made by the
+    login manager), else a directory of the user's own under the temporary
+    directory, 0700.  One that exists with another owner, other rights or as a
+    symbolic link is refused: another user could otherwise put a socket where the
+    tools look for the hub and read their requests."""
+    xdg = os.environ.get("XDG_RUNTIME_DIR")
+    if xdg:
+        return Path(xdg)
+    d = Path(tempfile.gettempdir()) / f"feedmatch-{os.getuid()}"
+    try:
+        os.mkdir(d, 0o700)
+    except FileExistsError:
+        pass
+    except OSError as e:
+        raise LinkError(f"cannot make the hub directory {d}: {e.strerror or e}") from None
+    st = os.lstat(d)
+    if not stat.S_ISDIR(st.st_mode) or st.st_uid != os.getuid() or st.st_mode & 0o077:
+        raise LinkError(f"the hub directory {d} is not private to you (owner uid {st.st_uid}, mode "
+                        f"{stat.S_IMODE(st.st_mode):o}{', a symbolic link' if stat.S_ISLNK(st.st_mode) else ''}): "
+                        "remove it, or set XDG_RUNTIME_DIR")
+    return d
+
 
 def hub_path(device: str) -> Path:
     """The hub socket for a serial device (the same for every name of it)."""
     real = os.path.realpath(device)
-    d = os.environ.get("XDG_RUNTIME_DIR") or tempfile.gettempdir()
     h = hashlib.sha1(real.encode()).hexdigest()[:16]
-    return Path(d) / f"feedmatch-hub-{os.getuid()}-{h}.sock"
+    return private_dir() / f"feedmatch-hub-{os.getuid()}-{h}.sock"
+
+
+def peer_uid(s: socket.socket) -> int | None:
+    """The user id of the process at the other end of a Unix socket (None where
+    the system does not say)."""
+    opt = getattr(socket, "SO_PEERCRED", None)
+    if opt is None:
+        return None
+    try:
+        return _CRED.unpack(s.getsockopt(socket.SOL_SOCKET, opt, _CRED.size))[1]
+    except OSError:
+        return None
+
+
+def check_peer(s: socket.socket, path: str | Path) -> None:
+    """Refuse a hub socket run by another user (LinkError)."""
+    uid = peer_uid(s)
+    if uid is not None and uid != os.getuid():
+        raise LinkError(f"the hub socket {path} is run by user id {uid}, not by you: not talking to it "
+                        "(remove it if it is not yours)")
+
+
+def connect_unix(path: str | Path, timeout_s: float = 5.0) -> socket.socket:
+    """A connected Unix socket to path.  A hub whose queue of new connections is
+    full answers EAGAIN at once; that is a busy hub, so wait and try again."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        try:
+            s.settimeout(max(0.1, deadline - time.monotonic()))
+            s.connect(str(path))
+            return s
+        except BlockingIOError:
+            s.close()
+            if time.monotonic() > deadline:
+                raise
+            time.sleep(0.01)
+        except OSError:
+            s.close()
+            raise
 
 
 def hub_alive(path: Path) -> bool:
     if not path.exists():
         return False
-    s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
     try:
-        s.settimeout(1.0)
-        s.connect(str(path))
-        return True
+        s = connect_unix(path, 2.0)
     except OSError:
         return False
+    try:
+        check_peer(s, path)
+        return True
     finally:
         s.close()
 
@@ -79,6 +148,7 @@ class LinkHub:
         self.wlock = threading.Lock()
         self.stop = threading.Event()
         self.dropped = 0
+        self.refused = 0  # connections from another user, closed unheard
         self._threads: list[threading.Thread] = []
 
     # -- life --------------------------------------------------------------------------
@@ -104,7 +174,7 @@ class LinkHub:
             srv.bind(str(self.path))
         finally:
             os.umask(old)
-        srv.listen(8)
+        srv.listen(BACKLOG)
         srv.settimeout(0.5)
         self.srv = srv
         for fn in (self._serial_loop, self._accept_loop):
@@ -198,6 +268,11 @@ class LinkHub:
                 continue
             except OSError:
                 return
+            if peer_uid(conn) not in (None, os.getuid()):
+                # The socket is 0600 in a private directory; this is the second lock.
+                self.refused += 1
+                conn.close()
+                continue
             c = _Client(conn)
             with self.lock:
                 self.clients.append(c)

@@ -19,6 +19,10 @@ from fmlogic import link as frames
 
 from feedmatch.errors import BoardRefused, LinkError
 
+# Events kept for a reader that has no handler (wait_event, serve's watcher): the
+# oldest go first, so a tool that never reads them holds at most this many.
+EVENT_QUEUE = 1000
+
 # fmhub:// is feedmatch's own pyserial URL backend (board/protocol_fmhub.py).
 if "feedmatch.board" not in serial.protocol_handler_packages:
     serial.protocol_handler_packages.append("feedmatch.board")
@@ -52,7 +56,7 @@ class BoardLink:
         self.ser: serial.SerialBase | None = None
         self.reader = frames.LineReader()
         self.seq = 0
-        self.events: collections.deque = collections.deque(maxlen=10000)
+        self.events: collections.deque = collections.deque(maxlen=EVENT_QUEUE)
         self.bad_frames = 0
         self.reconnects = 0
         self.on_event: Callable[[str, dict], None] | None = None
@@ -156,9 +160,12 @@ class BoardLink:
                 else:
                     self.stale_answers += 1
             elif kind == "E":
-                self.events.append((word, obj))
+                # An owner with a handler gets each event there and nowhere else: a
+                # queue nobody reads would hold every record of a logger's lifetime.
                 if self.on_event:
                     self.on_event(word, obj)
+                else:
+                    self.events.append((word, obj))
         return n
 
     def request(self, word: str, args: dict[str, Any] | None = None, timeout: float | None = None,

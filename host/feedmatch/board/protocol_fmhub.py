@@ -8,8 +8,6 @@ Everything but opening is pyserial's own socket:// backend.
 
 from __future__ import annotations
 
-import socket
-
 from serial.serialutil import SerialException
 from serial.urlhandler.protocol_socket import Serial as _SocketSerial
 
@@ -23,14 +21,19 @@ class Serial(_SocketSerial):
             raise SerialException("Port must be configured before it can be used.")
         if self.is_open:
             raise SerialException("Port is already open.")
+        from feedmatch.board.hub import check_peer, connect_unix
+        from feedmatch.errors import LinkError
+
         path = str(self.portstr)[len(PREFIX):]
-        s = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
         try:
-            s.settimeout(2.0)
-            s.connect(path)
+            s = connect_unix(path)
         except OSError as e:
-            s.close()
             raise SerialException(f"cannot reach the station hub at {path}: {e}") from None
+        try:
+            check_peer(s, path)  # a socket another user put there is never written to
+        except LinkError as e:
+            s.close()
+            raise SerialException(str(e)) from None
         s.setblocking(False)
         self._socket = s
         self._reconfigure_port()

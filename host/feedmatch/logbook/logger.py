@@ -101,10 +101,11 @@ class Logger:
                 self.notices.append(f"board {self.board_id}: {w}")
                 if self.out is not None:
                     self.out.write("\n" + self.notices[-1] + "\n")
-        have = self.book.seqs(self.board_id)
         board_last = int(self.status.get("seq", 0))
         if board_last < self._floor:
             self._floor = 1  # a new board or a restarted sequence: everything may be asked again
+        # Only the numbers the board may still send: years of logbook stay on disk.
+        have = self.book.seqs(self.board_id, self._floor, board_last)
         missing = [s for s in range(self._floor, board_last + 1) if s not in have]
         if missing:
             got: list[int] = []

@@ -256,9 +256,11 @@ class Logbook:
                               "WHERE boards.board_id=?", (board_id,)).fetchone()
         return int(row[0] or 0)
 
-    def seqs(self, board_id: str) -> set[int]:
+    def seqs(self, board_id: str, lo: int = 0, hi: int | None = None) -> set[int]:
+        """The record numbers of a board in the logbook, from lo to hi (inclusive)."""
         rows = self.db.execute("SELECT seq FROM tunes JOIN boards ON boards.id = tunes.board "
-                               "WHERE boards.board_id=?", (board_id,))
+                               "WHERE boards.board_id=? AND seq BETWEEN ? AND ?",
+                               (board_id, lo, (1 << 62) if hi is None else hi))
         return {r[0] for r in rows}
 
     def add(self, rec: dict[str, Any], when: str | None = None) -> bool:
