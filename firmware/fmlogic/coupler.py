@@ -20,8 +20,10 @@
 #            gain_tol_db.
 #   learned  d_r, d_f (complex) and k from the multi-state calibration, each to
 #            within err (an absolute bound on the complex leakage error).
-# bounds(w) gives the true |gamma| a reading can hide either way; a lock is
-# claimed only where the upper bound is at or below the target.
+# bounds(w) gives the true |gamma| a reading can hide either way (from the
+# magnitudes, which hold whatever the model leaves out); a lock is claimed only
+# where the upper bound is at or below the target.  compose() puts the learned
+# terms into the search's model of each state.
 import math
 
 # The forward/reflected gain ratio a calibrated pair of detectors holds: each
@@ -119,21 +121,21 @@ class Coupler:
         w_lo = math.sqrt(w_lo) - nz if w_lo > 0.0 else 0.0
         if w_lo < 0.0:
             w_lo = 0.0
-        if not self.learned:
-            dr = self.leak / self.k_lo + 0.002
-            df = self.leak_fwd / self.k_lo + 0.002
-            u = w_hi / self.k_lo
-            hi = (u + dr) / (1.0 - u * df) if u * df < 1.0 else 1.0
-            v = w_lo / self.k_hi
-            lo = (v - dr) / (1.0 + v * df)
-        else:
-            e = self.err
-            w_hi = w_hi * (1.0 + e)
-            w_lo = w_lo * (1.0 - e)
-            hi = _far(self.dr, self.df, w_hi)
-            lo = _near(self.dr, self.df, w_lo, w_hi)
-            hi = hi + e * (1.0 + hi * hi)
-            lo = lo - e * (1.0 + lo * lo)
+        # The single-reading bound uses what the dummy-load passes measured
+        # (magnitudes) whatever else is known: the learned terms describe the
+        # coupler together with what the model of the network leaves out (the
+        # input strays compose into them), so they can sharpen the search's
+        # model but not prove a bound.  A learned gain ratio is divided out of
+        # w (correct()); the raw reading is what the magnitudes bound.
+        if self.learned:
+            w_hi = w_hi * self.k
+            w_lo = w_lo * self.k
+        dr = self.leak / self.k_lo + 0.002
+        df = self.leak_fwd / self.k_lo + 0.002
+        u = w_hi / self.k_lo
+        hi = (u + dr) / (1.0 - u * df) if u * df < 1.0 else 1.0
+        v = w_lo / self.k_hi
+        lo = (v - dr) / (1.0 + v * df)
         if hi > 1.0:
             hi = 1.0
         if lo < 0.0:
@@ -155,33 +157,6 @@ class Coupler:
             else:
                 hi = mid
         return lo
-
-
-def _circle(dr, df, r):
-    # The true gammas of corrected reading r: gamma = (w - d_r) / (1 - d_f w)
-    # over |w| = r is a circle (a Moebius image of one), centre and radius by
-    # the usual formula for (A w + B) / (C w + D) with A=1, B=-d_r, C=-d_f, D=1.
-    s = 1.0 - abs(df) ** 2 * r * r
-    if s <= 1e-6:
-        s = 1e-6
-    cen = (-dr + complex(df.real, -df.imag) * r * r) / s
-    rad = r * abs(1.0 - dr * df) / s
-    return cen, rad
-
-
-def _far(dr, df, r):
-    cen, rad = _circle(dr, df, r)
-    return abs(cen) + rad
-
-
-def _near(dr, df, r_lo, r_hi):
-    # The readings between r_lo and r_hi fill an annulus-like region; it holds
-    # gamma = 0 when the reading of a perfect match, |d_r|, lies between them.
-    m0 = abs(dr)
-    if r_lo <= m0 <= r_hi:
-        return 0.0
-    cen, rad = _circle(dr, df, r_lo if m0 < r_lo else r_hi)
-    return abs(abs(cen) - rad)
 
 
 def from_config(det, ref_cal=None):
