@@ -163,3 +163,66 @@ def test_plant_ports_independent():
     shared = replace(det, fwd_phase_deg=None)
     assert shared.leakage(14e6)[0] == shared.leakage(14e6)[1]
     assert det.calibrated_leak_fwd() == pytest.approx(0.1, rel=0.05)
+
+
+def test_multistate_calibration_recovers_the_error_box():
+    # Engen's least-squares multi-state solution (IEEE T-MTT 28(12), 1980): with
+    # exact parts, no strays and noise-free readings, the dummy load and the
+    # network's own states give back the plant's leakage vectors and gain ratio.
+    from feedmatch.rf.detector import DetectorModel
+    from feedmatch.rf.network import load_network
+    from feedmatch.sim.coupler_cal import solve, standards
+
+    net = load_network()
+    det = DetectorModel(directivity_flat_db=18.0, directivity_phase_deg=130.0, fwd_phase_deg=-40.0,
+                        fwd_gain_db=0.2, ref_gain_db=-0.1, ideal=False, noise_counts=0.0)
+    sts = standards(net)
+    from feedmatch.rf.network import StateTable
+
+    tab = StateTable(net).gamma(14.2e6, 50.0)
+    dr, df = det.leakage(14.2e6)
+    k = 10 ** (-0.3 / 20)
+    reads = [k * abs(g + dr) / abs(1 + df * g) for g in (complex(tab[sh, l, c]) for l, c, sh in sts)]
+    fit = solve(net, sts, reads)
+    assert abs(fit.dr - dr) < 0.003 and abs(fit.df - df) < 0.01 and fit.k == pytest.approx(k, rel=0.005)
+    assert fit.rms < 0.002
+
+
+def test_learned_box_tunes_without_faults_or_false_locks():
+    # A 16 dB coupler with a gain ratio below 1: readings near full reflection
+    # divided by it stay readings (not bad ones), and no lock is claimed falsely.
+    from feedmatch.bench.coupler import _boxes
+    from feedmatch.sim.coupler_cal import calibrate_box
+    from feedmatch.sim.loads import vertical_loads
+    from feedmatch.sim.scorer import ScoreConfig, score
+
+    net, box, det = _boxes(15, 18, 1, 77)[0]
+    fit = calibrate_box(net, box.network, det, seed=1)
+    loads = vertical_loads(12, seed=3)
+    res = score(loads, box.network, net, ScoreConfig(strategy="model", detector=det, learned=fit.learned()),
+                det=det, workers=1)
+    assert all(r["outcome"] != "fault" for r in res)
+    assert all(r["swr"] <= 1.5 for r in res if r["outcome"] == "locked")
+    # The firmware's SWR stops at 999 (fmlogic.swr.SWR_MAX).
+    assert all(r["swr_bound"][0] - 1e-3 <= min(r["swr"], 999.0) <= r["swr_bound"][1] + 1e-3
+               for r in res if r["swr_bound"])
+
+
+def test_fit_box_refuses_what_the_data_cannot_support():
+    # The wild fit (L6 +82 %, residual 0.038) and a value known only to +-8 %.
+    from feedmatch.sim.fitbox import write_refusal
+
+    names = [f"L{i}" for i in range(7)] + [f"C{i}" for i in range(7)]
+    good = {"rms_gamma_residual": 0.015, "inductor_sigma_pct": [1.0] * 7, "capacitor_sigma_pct": [1.0] * 7,
+            "inductor_offset_pct": [2.0] * 7, "capacitor_offset_pct": [-1.0] * 7,
+            "inductor_readings": [300] * 7, "capacitor_readings": [300] * 7}
+    assert write_refusal(good, names) is None
+    wild = dict(good, inductor_offset_pct=[-30.0, -24, -35, -28, -25, 3, 82])
+    assert "L2" in write_refusal(wild, names) and "wrong basin" in write_refusal(wild, names)
+    loose = dict(good, capacitor_sigma_pct=[1.0, 1, 1, 8.0, 1, 1, 1])
+    assert "C3" in write_refusal(loose, names) and "more tunes" in write_refusal(loose, names)
+    poor = dict(good, rms_gamma_residual=0.038)
+    assert "unexplained" in write_refusal(poor, names)
+    # An element the tunes hardly used stays near nominal through the prior: no refusal.
+    rare = dict(good, capacitor_sigma_pct=[1.0] * 6 + [9.0], capacitor_readings=[300] * 6 + [5])
+    assert write_refusal(rare, names) is None

@@ -43,9 +43,9 @@ def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
     from feedmatch.sim.loads import smith_loads, vertical_loads
     from feedmatch.sim.scorer import ScoreConfig, run_parallel, summarise
 
-    n_boxes = 3 if quick else 10
-    sm = smith_loads(60 if quick else 200, seed=41)
-    vl = [ld for ld in vertical_loads(80 if quick else 260, seed=42) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
+    n_boxes = 3 if quick else 8
+    sm = smith_loads(60 if quick else 150, seed=41)
+    vl = [ld for ld in vertical_loads(80 if quick else 200, seed=42) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
     out: dict[str, Any] = {"coupler_matchable_swr": MATCHABLE_SWR}
     for lo, hi in BANDS:
         boxes = _boxes(lo, hi, n_boxes, 6100 + 100 * lo)

@@ -234,7 +234,7 @@ def bench_design() -> dict[str, Any]:
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design",
-              "presets", "antenna_curve", "selftest")
+              "presets", "antenna_curve", "selftest", "coupler")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -274,6 +274,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         res.update(bench_cold(quick))
     if want("design"):
         res.update(bench_design())
+    if want("coupler"):
+        from feedmatch.bench.coupler import bench_coupler
+
+        res.update(bench_coupler(quick))
     if want("presets"):
         from feedmatch.bench.presets import bench_presets
 

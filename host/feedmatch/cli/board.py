@@ -15,14 +15,19 @@ FIT_TRACES_ADVISED = 400  # the most fit_elements uses
 
 def cmd_fit_box(a: argparse.Namespace) -> int:
     from feedmatch.rf.network import load_network
-    from feedmatch.sim.fitbox import fit_elements, traces_from_logbook
+    from feedmatch.sim.fitbox import fit_elements, traces_from_logbook, write_refusal
 
     net = load_network(a.network)
     traces = traces_from_logbook(a.db)
     if len(traces) < 10:
         raise InputError(f"logbook {a.db} holds {len(traces)} tunes with readings; at least 10 are needed")
     res = fit_elements(net, traces)
+    names = [f"L{i}" for i in range(net.n_l)] + [f"C{i}" for i in range(net.n_c)]
+    why = write_refusal(res, names)
+    res["writable"] = why is None
     if a.write:
+        if why is not None:
+            raise InputError(f"not written to {a.write}: {why}")
         write_correction(a.write, res)
     if a.json:
         emit_json(res)
@@ -37,13 +42,15 @@ def cmd_fit_box(a: argparse.Namespace) -> int:
     print(f"coupler: reflected/forward gain {res['coupler_gain_ratio_db']:+.2f} dB, "
           f"leakage at 28 MHz {res['coupler_leak_28mhz']:.3f} (directivity about "
           f"{-20 * __import__('math').log10(max(res['coupler_leak_28mhz'], 1e-4)):.0f} dB)")
-    print(f"{'element':>8} {'nominal':>9} {'fitted':>9} {'off %':>7} {'readings':>9}")
-    for i, (v, f, o, n) in enumerate(zip(net.inductors_uh, res["inductors_uh"], res["inductor_offset_pct"],
-                                         res["inductor_readings"])):
-        print(f"{'L' + str(i):>8} {v:8.3f}u {f:8.3f}u {o:+7.1f} {n:9d}")
-    for i, (v, f, o, n) in enumerate(zip(net.capacitors_pf, res["capacitors_pf"], res["capacitor_offset_pct"],
-                                         res["capacitor_readings"])):
-        print(f"{'C' + str(i):>8} {v:8.1f}p {f:8.1f}p {o:+7.1f} {n:9d}")
+    print(f"{'element':>8} {'nominal':>9} {'fitted':>9} {'off %':>7} {'+- %':>6} {'readings':>9}")
+    for i, (v, f, o, sg, n) in enumerate(zip(net.inductors_uh, res["inductors_uh"], res["inductor_offset_pct"],
+                                             res["inductor_sigma_pct"], res["inductor_readings"])):
+        print(f"{'L' + str(i):>8} {v:8.3f}u {f:8.3f}u {o:+7.1f} {sg:6.1f} {n:9d}")
+    for i, (v, f, o, sg, n) in enumerate(zip(net.capacitors_pf, res["capacitors_pf"], res["capacitor_offset_pct"],
+                                             res["capacitor_sigma_pct"], res["capacitor_readings"])):
+        print(f"{'C' + str(i):>8} {v:8.1f}p {f:8.1f}p {o:+7.1f} {sg:6.1f} {n:9d}")
+    if why is not None:
+        print(f"not fit to write into a board: {why}")
     if a.write:
         print(f"wrote the correction into {a.write} (previous copy: {a.write}.bak)")
     return 0
@@ -112,6 +119,10 @@ def cmd_calibrate(a: argparse.Namespace) -> int:
         raise InputError("give --port (the board's serial port), or --rehearse to practise on the virtual board")
     if not a.config:
         raise InputError("give --config: the board config JSON the calibration goes into")
+    if getattr(a, "coupler", False):
+        from feedmatch.cli.calibrate import run_coupler
+
+        return run_coupler(a, sys.stdout)
     return run_calibrate(a, sys.stdin, sys.stdout)
 
 
@@ -142,7 +153,12 @@ def _rehearse_calibration(a: argparse.Namespace) -> int:
           "for you at 14.2 MHz")
     try:
         time.sleep(1.0)  # the firmware boots
-        return run_calibrate(a, sys.stdin, sys.stdout, on_prompt=lambda p: (vs.key(p, 14.2e6), time.sleep(0.2)))
+        key = lambda p: (vs.key(p, 14.2e6), time.sleep(0.2))  # noqa: E731
+        if getattr(a, "coupler", False):
+            from feedmatch.cli.calibrate import run_coupler
+
+            return run_coupler(a, sys.stdout, on_prompt=key)
+        return run_calibrate(a, sys.stdin, sys.stdout, on_prompt=key)
     finally:
         vs.key(0)
         vs.stop()
@@ -180,4 +196,7 @@ def add_board_commands(sub) -> None:
     s.add_argument("--reflected", action="store_true",
                    help="second pass with the box reversed (transmitter on ANT, dummy load on TX): "
                         "calibrates the reflected detector on its own")
+    s.add_argument("--coupler", action="store_true",
+                   help="third pass, dummy load on ANT and a steady carrier at tune power: the box steps "
+                        "through its own states and the coupler's complex error is fitted (detector.coupler)")
     s.set_defaults(fn=cmd_calibrate)

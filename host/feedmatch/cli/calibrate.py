@@ -132,7 +132,8 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
     c_leak, w = leaks[-1]
     res = residual_directivity(w, other.watts(c_leak))
     if reflected:
-        cfg["detector"] = dict(det_cfg, ref=table, floor_counts=floor)
+        # Reversed, the forward detector reads the forward port's own leakage.
+        cfg["detector"] = dict(det_cfg, ref=table, floor_counts=floor, leak_fwd=leak_for_config(res["gamma"]))
     else:
         # The leakage into the dummy load is what the search allows for.
         cfg["detector"] = dict(det_cfg, fwd=table, ref=table, floor_counts=floor,
@@ -150,4 +151,72 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
     side = "reflected" if reflected else "forward (and, until --reflected is run, reflected)"
     print(f"wrote {len(table)} {side} points into {cfg_path} (previous copy {cfg_path}.bak); "
           "deploy it with feedmatch deploy", file=out)
+    return 0
+
+
+def run_coupler(a: argparse.Namespace, out: TextIO, on_prompt: Callable[[float], None] | None = None) -> int:
+    """The multi-state pass: with the dummy load on the antenna port and a steady
+    carrier at tune power, the box steps through its own states (known
+    standards on 50 ohm) and the coupler's error box is fitted to the readings
+    (feedmatch.sim.coupler_cal); the result goes into detector.coupler."""
+    from fmlogic import config as fcfg
+    from fmlogic.swr import Calibration
+
+    from feedmatch.board.link import BoardLink
+    from feedmatch.rf.network import Network
+    from feedmatch.sim.coupler_cal import solve, standards
+
+    cfg_path = Path(a.config)
+    cfg = load_json(cfg_path, "board config")
+    if fcfg.validate(cfg):
+        raise InputError(f"{cfg_path}: {fcfg.validate(cfg)[0]}")
+    m = fcfg.merged(cfg)
+    det_cfg = m["detector"]
+    fl = float(det_cfg["floor_counts"])
+    cf, cr = Calibration(det_cfg["fwd"], fl), Calibration(det_cfg["ref"], fl)
+    n = m["network"]
+    net = Network(float(n["z0_ohm"]), [float(v) for v in n["inductors_uh"]],
+                  [float(v) for v in n["capacitors_pf"]], n.get("inductor_q"), n.get("capacitor_q"))
+    p = min(10.0, float(m["power"]["max_tune_w"]))
+    print(f"Coupler calibration: 50 ohm dummy load on the antenna port; key a steady carrier of about "
+          f"{p:g} W and keep it keyed while the box steps through its states.", file=out)
+    sts = standards(net)
+    reads = []
+    with BoardLink(a.port, a.baud, timeout=a.timeout) as ln:
+        was_bypassed = bool((ln.request("status").get("relays") or [0, 0, 0, 0])[3])
+        if on_prompt:
+            on_prompt(p)
+        try:
+            f_hz = 0.0
+            for st in sts:
+                if st == (0, 0, 1):
+                    ln.request("bypass", {"on": True})
+                else:
+                    ln.request("set", {"l": st[0], "c": st[1], "sh": st[2]})
+                r = ln.request("cal-read", {"n": max(1, min(64, a.samples))})
+                pf, pr = cf.watts(r["fwd_counts"]), cr.watts(r["ref_counts"])
+                if pf <= 0:
+                    raise LinkError("no forward reading: is the carrier keyed?")
+                f_hz = float(r.get("freq_hz") or f_hz)
+                reads.append(math.sqrt(pr / pf) if pr > 0 else 0.0)
+        finally:
+            _restore(ln, was_bypassed, out, on_prompt)
+    f_hz = f_hz or 14.2e6
+    fit = solve(net, sts, reads, f_hz)
+    res = fit.to_json()
+    if fit.err >= 0.2:
+        raise InputError(f"the readings do not fit a coupler (residual {fit.rms:.3f}): check the dummy load "
+                         "and the carrier; the config is unchanged")
+    cfg.setdefault("detector", {})
+    cfg["detector"] = dict(cfg["detector"], coupler=list(fit.learned()))
+    errs = fcfg.validate(cfg)
+    if errs:
+        raise InputError(f"the coupler calibration does not validate: {errs[0]}")
+    write_json_with_backup(cfg_path, cfg)
+    print(f"{fit.readings} states at {f_hz / 1e6:.4f} MHz: reflected port leakage |d_r| {abs(fit.dr):.3f} "
+          f"({res['directivity_r_db']:.1f} dB), forward port |d_f| {abs(fit.df):.3f} "
+          f"({res['directivity_f_db']:.1f} dB), gain ratio {res['gain_ratio_db']:+.2f} dB; residual "
+          f"{fit.rms:.4f}, error bound {fit.err:.3f}", file=out)
+    print(f"wrote detector.coupler into {cfg_path} (previous copy {cfg_path}.bak); deploy it with "
+          "feedmatch deploy", file=out)
     return 0

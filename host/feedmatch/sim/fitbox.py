@@ -171,6 +171,7 @@ def fit_elements(nominal: Network, traces: list[Trace], max_traces: int = 400, m
         p0[ne:] = _grid_start(nominal, sl, sc, traces, f, bl, bc, sh, g, owner, keep=p0[ne:],
                               resid_now=resid(p0)[: len(g)])
     sl, sc, _ = unpack(sol.x)
+    sig = _sigmas(sol, len(g), ne)
     ind = (np.asarray(nominal.inductors_uh) * sl).tolist()
     cap = (np.asarray(nominal.capacitors_pf) * sc).tolist()
     rms = float(np.sqrt(np.mean(resid(sol.x)[: len(g)] ** 2)))
@@ -179,6 +180,54 @@ def fit_elements(nominal: Network, traces: list[Trace], max_traces: int = 400, m
     return {"inductors_uh": ind, "capacitors_pf": cap,
             "inductor_offset_pct": ((sl - 1) * 100).tolist(), "capacitor_offset_pct": ((sc - 1) * 100).tolist(),
             "inductor_readings": used_l.astype(int).tolist(), "capacitor_readings": used_c.astype(int).tolist(),
+            "inductor_sigma_pct": [round(100 * float(x), 2) for x in sig[:nl]],
+            "capacitor_sigma_pct": [round(100 * float(x), 2) for x in sig[nl:nl + nc]],
             "traces": k, "readings": int(len(g)), "rms_gamma_residual": rms, "converged": bool(sol.success),
             "coupler_gain_ratio_db": float(20 * np.log10(np.exp(sol.x[nl + nc]))),
             "coupler_leak_28mhz": float(abs(sol.x[nl + nc + 1] + 1j * sol.x[nl + nc + 2]))}
+
+
+def _sigmas(sol, n_read: int, ne: int) -> np.ndarray:
+    """One-sigma uncertainty of the shared parameters (log scales, so relative for
+    the elements): the Gauss-Newton covariance (J^T J)^-1 scaled by the residual
+    variance (e.g. Press et al., Numerical Recipes, 3rd ed., 15.5), the loads
+    marginalised out.  Robust weights are ignored: an approximation that errs
+    large where readings were discounted."""
+    J = sol.jac
+    J = J.toarray() if hasattr(J, "toarray") else np.asarray(J)
+    r = sol.fun[:n_read]
+    dof = max(n_read - J.shape[1], 1)
+    s2 = float(np.sum(r ** 2)) / dof
+    try:
+        cov = np.linalg.pinv(J.T @ J) * s2
+    except np.linalg.LinAlgError:
+        return np.full(ne, np.inf)
+    return np.sqrt(np.maximum(np.diag(cov)[:ne], 0.0))
+
+
+# What a fit must show before its values go into a board (fit-box --write).
+WRITE_MAX_SIGMA_PCT = 3.0   # one sigma, any element the tunes exercised
+WRITE_MAX_RMS = 0.03        # |gamma|: about twice what noise and strays leave on a good fit
+WRITE_MAX_OFFSET_PCT = 30.0  # beyond any part's tolerance plus its leads: a wrong basin
+WRITE_MIN_USES = 20
+
+
+def write_refusal(res: dict[str, Any], names: list[str]) -> str | None:
+    """Why these fitted values must not go into a board, with what more data would
+    help; None when they may.  names: element names, inductors then capacitors."""
+    if res["rms_gamma_residual"] > WRITE_MAX_RMS:
+        return (f"the fit leaves {res['rms_gamma_residual']:.3f} of |gamma| unexplained (a good fit leaves under "
+                f"{WRITE_MAX_RMS}): the values are unreliable; log more tunes across the bands and fit again, "
+                "and check the detector calibration")
+    sig = res["inductor_sigma_pct"] + res["capacitor_sigma_pct"]
+    off = res["inductor_offset_pct"] + res["capacitor_offset_pct"]
+    uses = res["inductor_readings"] + res["capacitor_readings"]
+    for nm, of, n in zip(names, off, uses):
+        if n >= WRITE_MIN_USES and abs(of) > WRITE_MAX_OFFSET_PCT:
+            return (f"{nm} fitted {of:+.0f} % off nominal, beyond any part's tolerance: the fit is likely in a "
+                    f"wrong basin; log more tunes that switch {nm} and fit again")
+    for nm, sg, n in zip(names, sig, uses):
+        if n >= WRITE_MIN_USES and not sg <= WRITE_MAX_SIGMA_PCT:
+            return (f"{nm} is known only to +-{sg:.1f} % (at most {WRITE_MAX_SIGMA_PCT:g} % to write); log more "
+                    f"tunes that switch {nm} (it was in {n} readings) and fit again")
+    return None

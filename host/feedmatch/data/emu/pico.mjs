@@ -27,6 +27,12 @@
 //   fs HEX               the flash file system (answer to dump)
 // UART0 bytes from the host are fed at the UART's own baud rate, 10 bits a byte,
 // so the chip's 32-byte receive FIFO sees them as a real line would.
+// PINS_JSON may carry "xip_penalty": cycles charged into the chip's clock for
+// each miss of a model of the RP2040's XIP flash cache (16 KB, 2-way set
+// associative, 8-byte lines, LRU; the model of ../shared/rp2040/run_rp2_xip.mjs,
+// whose README gives 56 cycles as a fair estimate for the Pico's default flash
+// clock).  rp2040js itself charges nothing for a fetch from flash.  Absent or
+// negative: no model.  "xip MISSES READS" answers the command "xip".
 import fs from 'fs';
 import net from 'net';
 import { decodeBlock } from 'uf2';
@@ -36,6 +42,39 @@ import { bootromB1 } from './bootrom_b1.mjs';
 const [uf2Path, fsPath, ctlPort, pinsArg] = process.argv.slice(2);
 const pins = Object.assign({ relay_latch: 17, relay_oe: 13, freq_in: 21, uart: 0 }, JSON.parse(pinsArg || '{}'));
 const FLASH_FS_START = 0xa0000; // 2 MB flash - MICROPY_HW_FLASH_STORAGE_BYTES (1408 KB)
+const XIP_PEN = typeof pins.xip_penalty === 'number' ? pins.xip_penalty : -1;
+
+// The XIP cache model: 1024 sets of 2 ways, 8-byte lines, LRU.
+const XIP_SETS = 1024;
+const xipTags = new Int32Array(XIP_SETS * 2).fill(-1);
+const xipLru = new Uint8Array(XIP_SETS);
+let xipReads = 0, xipMisses = 0, xipPend = 0;
+function xipTouch(addr) {
+  const line = (addr - 0x10000000) >>> 3;
+  const set = line & (XIP_SETS - 1);
+  const tag = line >>> 10;
+  const b = set * 2;
+  xipReads++;
+  if (xipTags[b] === tag) { xipLru[set] = 1; return; }
+  if (xipTags[b + 1] === tag) { xipLru[set] = 0; return; }
+  xipMisses++; xipPend++;
+  const way = xipLru[set];
+  xipTags[b + way] = tag;
+  xipLru[set] = 1 - way;
+}
+function attachXip(mcu) {
+  if (XIP_PEN < 0) return;
+  xipTags.fill(-1);
+  for (const fn of ['readUint8', 'readUint16', 'readUint32']) {
+    const orig = mcu[fn].bind(mcu);
+    mcu[fn] = (a) => { if (a >= 0x10000000 && a < 0x11000000) xipTouch(a); return orig(a); };
+  }
+  const core = mcu.core;
+  const exec = core.executeInstruction.bind(core);
+  // The miss's cycles go into the instruction's count, so the clock (and the
+  // target's ticks_us) sees them.
+  core.executeInstruction = () => { xipPend = 0; const c = exec(); return c + xipPend * XIP_PEN; };
+}
 
 const flash = new Uint8Array(2 * 1024 * 1024).fill(0xff);
 const uf2 = fs.readFileSync(uf2Path);
@@ -81,6 +120,7 @@ function boot() {
   mcu.logger = new ConsoleLogger(LogLevel.Error);
   mcu.flash.set(flash);   // the flash survives a watchdog reset
   attachFlash(mcu);
+  attachXip(mcu);
   mcu.adc.channelValues = adcValues;
   cdc = new USBCDC(mcu.usbCtrl);
   replReady = false;
