@@ -23,7 +23,7 @@ from fmlogic.controller import Controller
 from .conftest import FIRMWARE
 from .fakes import FakeBoard, board_config, make_model
 
-FILES = ["config.json", "board.uid", "boot.cnt", "boot.try", "mem.dat", "mem.bak", "rec/0.log", "rec.top",
+FILES = ["config.json", "board.uid", "boot.cnt", "boot.try", "mem.dat", "mem.bak", "mem.last", "rec/0.log", "rec.top",
          "tune.jnl", "fault.txt"]
 DAMAGES = ["missing", "empty", "cut", "random", "half", "huge"]
 HUGE = 1 << 20  # 1 MB: more than the heap the unix-port run gets (and most of a Pico's flash)

@@ -12,12 +12,25 @@
 # The parser never raises: bad frames come back as (None, reason) so the
 # caller can answer with an error and change nothing.
 import json
+from array import array
 
 try:
+    import micropython
     from micropython import const
-except ImportError:
+except ImportError:  # CPython: the same code, run as plain Python
 
     def const(x):
+        return x
+
+    class micropython:  # noqa: N801 - stands in for the module
+        @staticmethod
+        def viper(f):
+            return f
+
+    def ptr8(x):
+        return x
+
+    def ptr16(x):
         return x
 
 
@@ -34,15 +47,26 @@ def _make_table():
     return t
 
 
-_TABLE = _make_table()
+_TABLE = array("H", _make_table())
+
+
+@micropython.viper
+def _crc(data, n: int, crc: int, table) -> int:
+    # Machine code on the boards (viper): about a microsecond a byte on an RP2040,
+    # where a bytecode loop took tens, and flash files are checked whole.
+    p = ptr8(data)
+    t = ptr16(table)
+    i = 0
+    while i < n:
+        crc = ((crc << 8) & 0xFFFF) ^ t[((crc >> 8) ^ p[i]) & 0xFF]
+        i += 1
+    return crc
 
 
 def crc16(data, crc=0xFFFF):
-    """CRC-16/CCITT-FALSE (poly 0x1021, init 0xFFFF, no reflection, no xor-out)."""
-    t = _TABLE
-    for b in data:
-        crc = ((crc << 8) & 0xFFFF) ^ t[((crc >> 8) ^ b) & 0xFF]
-    return crc
+    """CRC-16/CCITT-FALSE (poly 0x1021, init 0xFFFF, no reflection, no xor-out) of
+    bytes, a bytearray or a memoryview."""
+    return _crc(data, len(data), crc, _TABLE)
 
 
 def encode(kind, seq, word, obj):

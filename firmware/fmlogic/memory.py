@@ -21,6 +21,7 @@ from array import array
 from fmlogic.link import crc16
 
 MEM = "mem.dat"
+LAST = "mem.last"
 NEW = "mem.new"
 BAK = "mem.bak"
 REC = "rec.log"
@@ -100,10 +101,13 @@ class Memory:
         self.bin_hz = float(bin_hz)
         self.gen = 0
         self.last = None
-        self.dirty = False
+        self.dirty = False       # entries changed since the last save
+        self.last_dirty = False  # the last state changed since it was saved
+        self.dat_ok = False      # mem.dat passed its check (at load, or we wrote it)
         self.load_error = None
         self.n = 0
         self.cap = 0
+        self.wbuf = bytearray(512)
         self.set_max(max_entries)
 
     def set_max(self, max_entries):
@@ -153,9 +157,12 @@ class Memory:
 
     def _put(self, b, l, c, sh, milli, t):
         """Insert or replace bin b; the oldest entry goes when over max_entries."""
-        i, found = self._find(b)
+        n = self.n
+        if n == 0 or b > self.bins[n - 1]:
+            i, found = n, False  # in order (a copy being read): no search, nothing to move
+        else:
+            i, found = self._find(b)
         if not found:
-            n = self.n
             for arr in (self.bins, self.codes, self.milli, self.t, self.ins):
                 j = n
                 while j > i:
@@ -188,29 +195,41 @@ class Memory:
     def load(self):
         if self.d is None:
             return False
-        best = None
+        # The copies in order of the generation their first line claims; the first
+        # that passes its check while being read is the one (one pass, normally).
+        cands = []
         errors = []
         for name in (MEM, NEW, BAK):
-            parsed = _parse_mem(_join(self.d, name), None)
-            if parsed is None:
-                continue
-            if parsed is False:
+            g = _mem_gen(_join(self.d, name))
+            if g is not None and g < 0:
+                errors.append(name)  # not even a head: damaged
+            elif g is not None:
+                cands.append((g, name))
+        cands.sort(key=lambda c: (-c[0], c[1]))
+        found = False
+        for g, name in cands:
+            self.n = 0
+            self.next_ins = 0
+            self.last = None
+            if _parse_mem(_join(self.d, name), self) is False:
                 errors.append(name)
                 continue
-            if best is None or parsed > best[0]:
-                best = (parsed, name)
+            self.gen = g
+            found = True
+            if name == MEM:
+                self.dat_ok = True
+            break
+        if not found:
+            self.n = 0
+            self.last = None
         if errors:
             self.load_error = "damaged copy ignored: " + ",".join(errors)
-        if best is None:
-            return False
-        self.n = 0
-        self.next_ins = 0
-        self.gen = best[0]
-        if _parse_mem(_join(self.d, best[1]), self) is False:
-            self.n = 0  # it changed under us: as if none
-            return False
+        last = _read_last(_join(self.d, LAST))
+        if last is not None:
+            self.last = last  # newer than any last line in a memory copy
         self.dirty = False
-        return True
+        self.last_dirty = False
+        return found
 
     def lookup(self, f_hz):
         """The stored (l, c, shunt, swr, t) nearest to f_hz within REACH, or None;
@@ -247,7 +266,7 @@ class Memory:
         last = (self.bin_of(f_hz) if f_hz else -1, state[0], state[1], state[2], 1 if bypass else 0)
         if last != self.last:
             self.last = last
-            self.dirty = True
+            self.last_dirty = True
 
     def last_state(self):
         if self.last is None:
@@ -260,43 +279,67 @@ class Memory:
         self.flush()
 
     def flush(self):
-        if not self.dirty or self.d is None:
-            self.dirty = False
+        """Save what changed: the entries to mem.dat (a new copy, the previous one kept
+        as mem.bak), the last state to its own small file (a note, not a copy of the
+        memory: a band change costs a few bytes of flash, not the whole memory)."""
+        if self.d is None:
+            self.dirty = self.last_dirty = False
             return False
+        wrote = False
+        if self.last_dirty and self.last is not None:
+            try:
+                body = "last %d %d %d %d %d" % self.last
+                _write_sync(_join(self.d, LAST), ("%s*%04X\n" % (body, crc16(body.encode()))).encode())
+                self.last_dirty = False
+                wrote = True
+            except OSError as e:
+                self.load_error = "not saved: " + _oserr(e)
+        if not self.dirty:
+            return wrote
         self.gen += 1
         cur = _join(self.d, MEM)
-        if _parse_mem(cur, None) is False:
-            # The copy in place fails its check: it never becomes the backup (the
-            # good backup stays), so a second fault loses at most this change.
+        if _mem_ok(cur, self.wbuf) is False:
+            # The copy in place fails its check (at load, or now: flash can go bad
+            # under a running board): it never becomes the backup (the good backup
+            # stays), so a second fault loses at most this change.
             _remove(cur)
         newp = _join(self.d, NEW)
+        buf = self.wbuf
+        mv = memoryview(buf)
         try:
-            # Written a line at a time, the CRC in the last line: no buffer the size
-            # of the memory (on a fragmented heap that buffer is what fails).
+            # Written in 512-byte blocks from one buffer, the CRC in the last line: no
+            # buffer the size of the memory (on a fragmented heap that is what fails).
             with open(newp, "wb") as f:
                 head = ("FMMEM 2 %d %d\n" % (self.gen, self.n)).encode()
                 crc = crc16(head)
-                f.write(head)
+                k = len(head)
+                buf[0:k] = head
                 for i in range(self.n):
                     c = self.codes[i]
                     line = ("%d %d %d %d %d %d\n" % (self.bins[i], c & 0xFFF, (c >> 12) & 0xFFF, (c >> 24) & 1,
                                                     self.milli[i], self.t[i])).encode()
                     crc = crc16(line, crc)
-                    f.write(line)
-                if self.last is not None:
-                    line = ("last %d %d %d %d %d\n" % self.last).encode()
-                    crc = crc16(line, crc)
-                    f.write(line)
-                f.write(("crc %04X\n" % crc).encode())
+                    if k + len(line) > len(buf):
+                        f.write(mv[:k])
+                        k = 0
+                    buf[k:k + len(line)] = line
+                    k += len(line)
+                tail = ("crc %04X\n" % crc).encode()
+                if k + len(tail) > len(buf):
+                    f.write(mv[:k])
+                    k = 0
+                buf[k:k + len(tail)] = tail
+                f.write(mv[:k + len(tail)])
             if _exists(cur):
                 _remove(_join(self.d, BAK))
                 os.rename(cur, _join(self.d, BAK))
             os.rename(newp, cur)
+            self.dat_ok = True
         except OSError as e:
             # A full or failing flash: the memory stays right in RAM and is written
             # at the next change; the tune it belongs to goes on.
             self.load_error = "not saved: " + _oserr(e)
-            return False
+            return wrote
         self.dirty = False
         return True
 
@@ -306,6 +349,72 @@ class Memory:
             e = self._entry(i)
             out.append([self.bins[i] * self.bin_hz, e[0], e[1], e[2], e[3], e[4]])
         return out
+
+
+def _mem_gen(p):
+    """The generation a memory copy's first line claims (-1 if it has none), None if missing."""
+    try:
+        with open(p, "rb") as f:
+            head = f.readline(80).split()
+    except OSError:
+        return None
+    try:
+        return int(head[2]) if len(head) >= 4 and head[0] == b"FMMEM" else -1
+    except ValueError:
+        return -1
+
+
+def _mem_ok(p, buf):
+    """The CRC of a memory copy checked in place, a buffer at a time (no parsing):
+    True when it passes, False when damaged, None when missing."""
+    try:
+        size = os.stat(p)[6]
+    except OSError:
+        return None
+    try:
+        with open(p, "rb") as f:
+            first = f.readline(80)
+            head = first.split()
+            if len(head) < 4 or head[0] != b"FMMEM" or head[1] not in (b"1", b"2"):
+                return False
+            v2 = head[1] == b"2"
+            crc = crc16(first) if v2 else 0xFFFF
+            left = size - len(first) - (9 if v2 else 0)
+            want = -1 if v2 else int(head[4], 16)
+            mv = memoryview(buf)
+            while left > 0:
+                k = f.readinto(mv[:left if left < len(buf) else len(buf)])
+                if not k:
+                    return False
+                crc = crc16(mv[:k], crc)
+                left -= k
+            if v2:
+                tail = f.read(10)
+                if len(tail) != 9 or tail[:4] != b"crc ":
+                    return False
+                want = int(tail[4:8], 16)
+            return crc == want
+    except (ValueError, IndexError, OSError):
+        return False
+
+
+def _read_last(p):
+    """The last state from its file ("last <bin> <l> <c> <shunt> <bypass>*<crc>"), or None."""
+    try:
+        with open(p, "rb") as f:
+            raw = f.read(64)
+    except OSError:
+        return None
+    star = raw.rfind(b"*")
+    try:
+        if star < 0 or int(raw[star + 1:star + 5], 16) != crc16(raw[:star]):
+            return None
+        p_ = raw[:star].split()
+        if len(p_) != 6 or p_[0] != b"last":
+            return None
+        return (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
+    except (ValueError, IndexError):
+        return None
 
 
 def _parse_mem(p, into):

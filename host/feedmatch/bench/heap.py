@@ -1,4 +1,4 @@
-"""Peak heap of a full tune under the MicroPython unix port (tune_heap_kib)."""
+"""The heap of a full tune under the MicroPython unix port: live peak, transient peak, retained."""
 
 from __future__ import annotations
 
@@ -47,7 +47,8 @@ class Board:
     def link_write(self, d): pass
 
 peak = 0
-worst = 0
+transient = 0
+retained = 0
 for zl, f in LOADS:
     b = Board(complex(zl[0], zl[1]), f, 10.0)
     ctl = Controller(b, CFG, DIR)
@@ -56,13 +57,42 @@ for zl, f in LOADS:
     base = gc.mem_alloc()
     n = 0
     while ctl.state != LOCKED and n < 400:
+        gc.collect()
+        gc.disable()  # everything one step allocates, as if no collection ran inside it
         ctl.step()
+        top = gc.mem_alloc() - base
+        gc.enable()
+        if top > transient:
+            transient = top
         gc.collect()
         used = gc.mem_alloc() - base
         if used > peak:
             peak = used
         n += 1
-print(json.dumps({"peak_bytes": peak}))
+
+# What a tune keeps: one controller through every load three times; the heap
+# after each tune (collected) against the heap after the first round.
+b = Board(complex(50.0, 0.0), 7.1e6, 10.0)
+ctl = Controller(b, CFG, DIR)
+ctl.mem.clear()
+after = []
+for rnd in range(3):
+    for zl, f in LOADS:
+        b.zl = complex(zl[0], zl[1])
+        b.f = f / 1e6
+        b.p = 10.0
+        seq = ctl.rec.seq
+        n = 0
+        while ctl.rec.seq == seq and n < 400:
+            ctl.step()
+            n += 1
+        b.p = 0.0
+        for _ in range(3):
+            ctl.step()
+    gc.collect()
+    after.append(gc.mem_alloc())
+retained = (after[-1] - after[0]) / (len(LOADS) * (len(after) - 1))
+print(json.dumps({"peak_bytes": peak, "transient_bytes": transient, "retained_bytes": retained}))
 """
 
 LOADS = [((10.8, -364.5), 7.15e6), ((7.92, -434.78), 7.15e6), ((2.1, -1913.0), 1.9e6),
@@ -70,7 +100,26 @@ LOADS = [((10.8, -364.5), 7.15e6), ((7.92, -434.78), 7.15e6), ((2.1, -1913.0), 1
          ((300.0, 200.0), 21.2e6), ((16.4, -200.9), 10.12e6)]
 
 
+def tune_heap(heap_k: int = 512) -> dict[str, float | None]:
+    """The heap of one tune under the unix port (64-bit: about twice the chip's sizes):
+    tune_heap_kib, the most live data between two steps of a tune (after a collection);
+    tune_heap_transient_peak_kib, the most a single step needs with no collection inside
+    it (live data plus all it allocates); tune_heap_retained_kib, what each tune keeps
+    once it is over (the heap's growth per tune over two rounds of the loads, after a
+    first round that fills the memory and the lazily built tables)."""
+    r = _run(heap_k)
+    if r is None:
+        return {"tune_heap_kib": None, "tune_heap_transient_peak_kib": None, "tune_heap_retained_kib": None}
+    return {"tune_heap_kib": round(r["peak_bytes"] / 1024, 2),
+            "tune_heap_transient_peak_kib": round(r["transient_bytes"] / 1024, 2),
+            "tune_heap_retained_kib": round(r["retained_bytes"] / 1024, 3)}
+
+
 def tune_heap_kib(heap_k: int = 512) -> float | None:
+    return tune_heap(heap_k)["tune_heap_kib"]
+
+
+def _run(heap_k: int) -> dict | None:
     mp = find_micropython()
     if mp is None:
         return None
@@ -89,4 +138,4 @@ def tune_heap_kib(heap_k: int = 512) -> float | None:
                            env=env, cwd=str(FIRMWARE), timeout=300)
     if r.returncode != 0:
         raise RuntimeError(f"heap benchmark failed under micropython: {r.stderr or r.stdout}")
-    return round(json.loads(r.stdout.strip().splitlines()[-1])["peak_bytes"] / 1024, 2)
+    return json.loads(r.stdout.strip().splitlines()[-1])

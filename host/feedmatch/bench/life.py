@@ -104,7 +104,8 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
         if not p:
             continue
         if p[0] == "BOOT":
-            boot = {"since_reset_ms": int(p[1]), "start_ms": int(p[2]), "seq": int(p[3])}
+            boot = {"since_reset_ms": int(p[1]), "start_ms": int(p[2]), "seq": int(p[3]),
+                    "imports_ms": int(p[4]), "controller_ms": int(p[5])}
         elif p[0] == "HEAP":
             pending_heap = (int(p[1]), int(p[2]))
         elif "max free sz:" in line and pending_heap is not None:
@@ -233,7 +234,8 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
         return out
     if c["boot"]:
         out["life_boot_full_ms"] = c["boot"]["since_reset_ms"]
-        out["life_boot_controller_ms"] = c["boot"]["start_ms"]
+        out["life_boot_imports_ms"] = c["boot"]["imports_ms"]
+        out["life_boot_controller_ms"] = c["boot"]["controller_ms"]
     tn = [t for t in c["tunes"] if "erases" in t]
     if tn:
         out["flash_erases_per_tune"] = round(statistics.mean(t["erases"] for t in tn), 2)

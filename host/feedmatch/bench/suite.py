@@ -234,7 +234,7 @@ def bench_design() -> dict[str, Any]:
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design",
-              "presets", "antenna_curve", "selftest", "coupler")
+              "presets", "antenna_curve", "selftest", "coupler", "life")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -260,9 +260,9 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
     if want("score_2000_s", "median_measurements"):
         res.update(bench_score(400 if quick else 2000))
     if want("tune_heap_kib"):
-        from feedmatch.bench.heap import tune_heap_kib
+        from feedmatch.bench.heap import tune_heap
 
-        res["tune_heap_kib"] = tune_heap_kib()
+        res.update(tune_heap())
     if want("nec_sweep_300_s"):
         from feedmatch.rf.nec import bench_nec_sweep
 
@@ -293,6 +293,14 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         from feedmatch.bench.selftest import bench_selftest
 
         res.update(bench_selftest(quick))
+    if want("life"):
+        from feedmatch.bench.life import bench_life
+        from feedmatch.sim.emulator import EmulatorMissing
+
+        try:
+            res.update(bench_life(quick))
+        except EmulatorMissing as e:
+            res["life_chip_skipped"] = str(e)
     if want("rp2040"):
         from feedmatch.bench.chip import bench_rp2040
         from feedmatch.sim.emulator import EmulatorMissing

@@ -3,7 +3,7 @@
 # then tunes in a row (fixed loads through the firmware's own network model, a
 # virtual clock for the controller) while the host's backfill asks for records
 # after every tune.  Input: life.json; output lines (parsed by bench/life.py):
-#   BOOT <ms since reset at the status answer> <ms to start the controller> <seq>
+#   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
 #   HEAP <tune> <bytes free>, then mem_info's lines (its "max free sz")
 #   TUNE <i> <state> <new records> <end-of-tune flash us> <journal us> MARK
 #   ERR <i> <what>
@@ -121,11 +121,27 @@ def run():
     from fmlogic import memory
     from fmlogic.controller import Controller
 
+    t1 = _us()
+    # Where the start's time goes (read-only look-alikes of what the controller does).
+    from fmlogic.config import merged
+
+    m = merged(cfg)
+    parts = []
+    for fn in (lambda: memory.read_boots(d), lambda: memory.Memory(d, 25000, m["memory"]["max_entries"]).load(),
+               lambda: memory.Records(d, 2000).load(False)):
+        t = _us()
+        fn()
+        parts.append(_diff(_us(), t) // 1000)
+    print("PARTS boots %d mem %d rec %d" % tuple(parts))
+    gc.collect()
+    t1 = _us()
     board = Board(cfg)
     ctl = Controller(board, cfg, d)
+    t2 = _us()
     st = _answer(board, ctl, 1, "status", {})
     t_ans = time.ticks_ms() if hasattr(time, "ticks_ms") else 0
-    print("BOOT %d %d %d" % (t_ans, _diff(_us(), t0) // 1000, st["seq"] if st else -1))
+    print("BOOT %d %d %d %d %d" % (t_ans, _diff(_us(), t0) // 1000, st["seq"] if st else -1,
+                                   _diff(t1, t0) // 1000, _diff(t2, t1) // 1000))
     loads = spec["loads"]
     flash = [0, 0]
 
