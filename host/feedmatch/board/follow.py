@@ -263,6 +263,9 @@ class Follower:
         try:
             ans = ln.request("preset", {"freq_hz": f, "mode": mode, "state": plan["state"], "swr": plan["swr"]})
         except BoardRefused as e:
+            if e.why == "busy":
+                self._asked = False  # a tune is under way: ask again on the next poll
+                return True
             self.say(f"{_mhz(f)} {mode}: preset from the antenna curve refused ({e.why})")
             return True
         if not ans.get("preset"):
