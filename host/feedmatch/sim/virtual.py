@@ -226,6 +226,9 @@ class VirtualStation(StationBase):
         self.proc: subprocess.Popen | None = None
         self.last_ask = time.monotonic()
         self._ser_conn: socket.socket | None = None
+        self._wd_thread: threading.Thread | None = None
+        self._respawn = threading.Event()
+        self._spawned = threading.Event()
 
     # -- life cycle -------------------------------------------------------------
     def start(self) -> str:
@@ -256,9 +259,13 @@ class VirtualStation(StationBase):
         log.close()
         self.last_ask = time.monotonic()
 
-    def reset(self) -> None:
-        """Kill the firmware at once (a power cut or watchdog) and boot it again."""
+    def reset(self, proc: subprocess.Popen | None = None) -> None:
+        """Kill the firmware at once (a power cut or watchdog) and boot it again.
+        proc: only if that is still the running firmware (the watchdog's view may
+        be a moment old: a board just reset by someone else is not reset twice)."""
         with self.lock:
+            if (proc is not None and proc is not self.proc) or self._stop.is_set():
+                return
             self.resets += 1
             p = self.proc
             if p and p.poll() is None:
@@ -272,7 +279,17 @@ class VirtualStation(StationBase):
                 self._ser_conn = None
             # Relays drop out when the board loses power.
             self.model.relays = (0, 0, 1, 1)
-            self._spawn()
+            if threading.current_thread() is self._wd_thread or self._wd_thread is None:
+                self._spawn()
+                return
+            # The kernel's parent-death signal follows the thread that started the
+            # child (prctl(2)): a firmware booted from a short-lived thread would
+            # get SIGTERM when that thread ends.  The watchdog thread lives as long
+            # as the station, so it boots the firmware again.
+            self.proc = None
+            self._spawned.clear()
+            self._respawn.set()
+        self._spawned.wait(10.0)
 
     def stop(self) -> None:
         self._stop.set()
@@ -350,11 +367,18 @@ class VirtualStation(StationBase):
             return "ok"
 
     def _watchdog(self) -> None:
-        while not self._stop.wait(0.2):
+        self._wd_thread = threading.current_thread()
+        while not self._stop.is_set():
+            if self._respawn.wait(0.2):
+                self._respawn.clear()
+                if not self._stop.is_set():
+                    self._spawn()
+                self._spawned.set()
+                continue
             p = self.proc
             stale = time.monotonic() - self.last_ask > self.wdt_s
             if p is not None and (p.poll() is not None or stale):
-                self.reset()
+                self.reset(p)
 
     # -- the serial link --------------------------------------------------------
     def _ser_loop(self) -> None:
