@@ -187,3 +187,26 @@ def test_presets_are_counted_apart_from_tunes():
     b = band_table([dict(pre, preset=0), conf, dict(pre, seq=5), searched, plain])[0]
     assert b["tunes"] == 3 and b["presets"] == 2 and b["presets_confirmed"] == 1
     assert b["median_measurements"] == 1
+
+
+def test_best_effort_tunes_carry_the_true_swr_they_allow(tmp_path):
+    # The record's swr_bound (fmlogic.coupler) reaches the band table, its text and the CSV.
+    import csv
+    import json
+
+    from feedmatch.logbook.report import report_lines, write_csv
+
+    rows = [dict(_row(i, 7.1e6, 100, 90), raw=json.dumps({"swr_bound": [1.0, 1.3]})) for i in range(3)]
+    rows += [dict(_row(9 + i, 7.1e6, 5, 5, 1.4), outcome="best-effort", time="2026-11-05T10:00:00",
+                  raw=json.dumps({"swr_bound": [1.1, hi]})) for i, hi in enumerate((1.7, 1.8, 1.9))]
+    b = band_table(rows)[0]
+    assert b["best_effort"] == 3 and b["best_effort_true_swr_max"] == 1.8
+    lines = report_lines({"tunes": 6, "bands": [b], "first": "2026-11-05T09:00:00", "last": "2026-11-05T10:00:00"})
+    assert any("40m 3 (true SWR up to 1.80" in ln for ln in lines)
+    for r in rows:
+        r.setdefault("time", "2026-11-05T09:00:00")
+        for k in ("board_id", "reason", "swr_before", "after_bypass", "preset", "rig_hz", "rig_mode"):
+            r.setdefault(k, None)
+    write_csv(str(tmp_path / "t.csv"), rows)
+    got = list(csv.DictReader(open(tmp_path / "t.csv")))
+    assert got[-1]["outcome"] == "best-effort" and got[-1]["true_swr_high"] == "1.9"

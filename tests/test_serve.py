@@ -181,6 +181,9 @@ async def _drive(dport: int, url: str, vs) -> bytes:
             await page.until(f"{_text('state')} === 'locked'", timeout=30)
             await page.until(f"Number({_text('seq')}) > {before}")
             swr = float(await page.js(_text("swr")))
+            # The true SWR the reading allows (the coupler's bounds) beside it.
+            lo, hi = (float(x) for x in (await page.js(_text("swr_bound"))).split("-"))
+            assert lo <= swr <= hi
             assert 1.0 <= swr <= 1.5
             assert (await page.js(_text("freq"))).startswith("14.2")
             assert " uH, " in await page.js(_text("relays"))  # the board's own values beside the codes

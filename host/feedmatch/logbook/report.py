@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import json
 import statistics
 from collections import Counter, defaultdict
 from pathlib import Path
@@ -30,6 +31,21 @@ def _get(row: Any, key: str) -> Any:
         return row[key]
     except (KeyError, IndexError):
         return None
+
+
+def swr_bound(row: Any) -> list[float] | None:
+    """The true SWR range the board said the final reading allows (record
+    swr_bound, fmlogic.coupler), from the stored record; None when absent."""
+    raw = _get(row, "raw")
+    if not raw:
+        return None
+    try:
+        b = json.loads(raw).get("swr_bound")
+    except (ValueError, AttributeError):
+        return None
+    if isinstance(b, list) and len(b) == 2 and all(isinstance(x, (int, float)) for x in b):
+        return [float(b[0]), float(b[1])]
+    return None
 
 
 def _median(xs: list[float]) -> float | None:
@@ -89,6 +105,11 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
             "presets_confirmed": sum(1 for r in rs if _get(r, "preset") and r["outcome"] == LOCKED
                                      and r["measurements"] == 1),
             "health": health(ok, bank=bank),
+            # Tunes the readings could not prove (the coupler's bounds): how many,
+            # and the median of the highest true SWR each one allows.
+            "best_effort": sum(1 for r in rs if r["outcome"] == "best-effort"),
+            "best_effort_true_swr_max": _median([b[1] for b in (swr_bound(r) for r in rs
+                                                                if r["outcome"] == "best-effort") if b]),
         })
     return out
 
@@ -172,6 +193,12 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
     for note in rep.get("antenna_notes") or []:
         out.append(f"antenna: {note}")
     presets = sum(b["presets"] for b in rep["bands"])
+    be = [b for b in rep["bands"] if b.get("best_effort")]
+    if be:
+        out.append("best-effort (the readings could not prove the target): " + ", ".join(
+            f"{b['band']} {b['best_effort']}" + (f" (true SWR up to {b['best_effort_true_swr_max']:.2f}, median)"
+                                                 if b["best_effort_true_swr_max"] is not None else "")
+            for b in be))
     if presets:
         ok = sum(b["presets_confirmed"] for b in rep["bands"])
         out.append(f"presets from the radio's frequency: {presets}, confirmed by the first reading: {ok}")
@@ -181,13 +208,15 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
 def write_csv(path: str, rows: list) -> None:
     cols = ["time", "board_id", "seq", "band", "freq_hz", "outcome", "reason", "swr_before", "swr_after",
             "measurements", "duration_ms", "after_l", "after_c", "after_shunt", "after_bypass",
-            "memory_hit", "preset", "rig_hz", "rig_mode"]
+            "memory_hit", "preset", "rig_hz", "rig_mode", "true_swr_low", "true_swr_high"]
     with open(path, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
         w.writerow(cols)
         for r in rows:
             # The capacitor side as the tables say it (tx/ant), not the relay's 0/1.
-            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None else _get(r, c)
+            b = swr_bound(r) or [None, None]
+            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None
+                        else b[0] if c == "true_swr_low" else b[1] if c == "true_swr_high" else _get(r, c)
                         for c in cols])
 
 

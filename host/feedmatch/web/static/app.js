@@ -15,6 +15,8 @@ function showStatus(s) {
   $("fwd").textContent = fmt(s.fwd_w, 1);
   $("ref").textContent = fmt(s.ref_w, 2);
   $("swr").textContent = s.swr === null ? "no RF" : fmt(s.swr, 2);
+  // The true SWR the reading allows with the coupler's error bounds.
+  $("swr_bound").textContent = s.swr_bound ? `${fmt(s.swr_bound[0], 2)}-${fmt(s.swr_bound[1], 2)}` : "-";
   $("freq").textContent = s.freq_hz ? (s.freq_hz / 1e6).toFixed(4) + " MHz" : "no carrier";
   $("seq").textContent = s.seq;
   document.body.dataset.updates = String(Number(document.body.dataset.updates || 0) + 1);
@@ -33,11 +35,14 @@ function showView(v) {
     const st = b.most_used_state ? `L${b.most_used_state[0]} C${b.most_used_state[1]} ${b.most_used_state[2]}` +
       (b.most_used_values ? ` (${b.most_used_values.l_uh.toFixed(2)} uH, ${Math.round(b.most_used_values.c_pf)} pF)` : "") : "-";
     const cells = [b.band, b.tunes, pct(b.success_rate), fmt(b.median_swr_after, 2), fmt(b.median_measurements, 0),
-                   pct(b.memory_hit_rate), st, (b.health.flag ? "CHECK: " : "") + b.health.note];
+                   pct(b.memory_hit_rate), st,
+                   b.best_effort ? `${b.best_effort}` + (b.best_effort_true_swr_max !== null && b.best_effort_true_swr_max !== undefined
+                     ? ` (true SWR up to ${fmt(b.best_effort_true_swr_max, 2)})` : "") : "-",
+                   (b.health.flag ? "CHECK: " : "") + b.health.note];
     cells.forEach((c, i) => {
       const td = document.createElement("td");
       td.textContent = c;
-      if (i === 7 && b.health.flag) td.className = "flag";
+      if (i === 8 && b.health.flag) td.className = "flag";
       tr.appendChild(td);
     });
     tb.appendChild(tr);
