@@ -21,7 +21,7 @@ def cmd_fit_box(a: argparse.Namespace) -> int:
     traces = traces_from_logbook(a.db)
     if len(traces) < 10:
         raise InputError(f"logbook {a.db} holds {len(traces)} tunes with readings; at least 10 are needed")
-    res = fit_elements(net, traces)
+    res = fit_elements(net, traces, split=True)
     names = [f"L{i}" for i in range(net.n_l)] + [f"C{i}" for i in range(net.n_c)]
     why = write_refusal(res, names)
     res["writable"] = why is None

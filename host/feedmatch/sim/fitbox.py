@@ -112,9 +112,24 @@ def _grid_start(net, sl, sc, traces, f, bl, bc, sh, g, owner, keep=None, resid_n
 
 
 def fit_elements(nominal: Network, traces: list[Trace], max_traces: int = 400, max_nfev: int = 200,
-                 rounds: int = 2) -> dict[str, Any]:
-    """Effective element values (uH, pF) and how far each is from nominal."""
+                 rounds: int = 2, split: bool = False) -> dict[str, Any]:
+    """Effective element values (uH, pF) and how far each is from nominal.
+
+    Each value carries a one-sigma uncertainty (inductor_sigma_pct,
+    capacitor_sigma_pct): the least-squares covariance, and with split the
+    larger of that and half the difference between fits of the even and the
+    odd tunes (a delete-half estimate, which also sees what the model leaves
+    out: strays, the wrong basin of a multi-modal fit)."""
     traces = [t for t in traces if len(t.gamma) >= MIN_READINGS][:max_traces]
+    if split and len(traces) >= 20:
+        full = fit_elements(nominal, traces, max_traces, max_nfev, rounds)
+        a = fit_elements(nominal, traces[0::2], max_traces, max_nfev, rounds)
+        b = fit_elements(nominal, traces[1::2], max_traces, max_nfev, rounds)
+        for key, vals in (("inductor", "inductors_uh"), ("capacitor", "capacitors_pf")):
+            d = 100 * np.abs(np.asarray(a[vals]) / np.asarray(b[vals]) - 1) / 2
+            full[f"{key}_sigma_pct"] = [round(float(max(x, y)), 2) for x, y in zip(full[f"{key}_sigma_pct"], d)]
+        full["sigma_method"] = "covariance and delete-half (even/odd tunes)"
+        return full
     if not traces:
         raise ValueError("no tune traces with enough readings to fit")
     nl, nc, k = nominal.n_l, nominal.n_c, len(traces)
