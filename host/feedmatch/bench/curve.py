@@ -34,7 +34,7 @@ def _box_points(seed: int, n_sessions: int, per: int) -> list[dict[str, Any]]:
 
     from feedmatch.rf.network import load_network
     from feedmatch.sim.boxes import draw_box
-    from feedmatch.sim.curve import ELEMENT_SIGMA_LEARNED, LoadSolver, curve_points, learn_extras
+    from feedmatch.sim.curve import ELEMENT_SIGMA_LEARNED, LoadSolver, curve_points, learn_extras, model_error_factor
     from feedmatch.sim.fitbox import Trace, fit_elements, traces_from_scoring
     from feedmatch.sim.loads import smith_loads, vertical_sessions
     from feedmatch.sim.scorer import ScoreConfig, score
@@ -59,6 +59,8 @@ def _box_points(seed: int, n_sessions: int, per: int) -> list[dict[str, Any]]:
                           leak)
     solver = LoadSolver(known.firmware_bank(), ELEMENT_SIGMA_LEARNED, leak, extras)
     out = []
+    bin_hz = float(DEFAULTS["memory"]["bin_hz"])
+    per_session = []
     for rows, trs in sessions:
         ests, truth = [], {}
         for r, tr in zip(rows, trs):
@@ -70,10 +72,17 @@ def _box_points(seed: int, n_sessions: int, per: int) -> list[dict[str, Any]]:
             e.time = str(len(ests))
             truth[e.time] = (complex(r["r_ohm"], r["x_ohm"]), r["oracle_swr"])
             ests.append(e)
-        for p in curve_points(ests, float(DEFAULTS["memory"]["bin_hz"])):
+        per_session.append((curve_points(ests, bin_hz), truth))
+    # The model-error factor from the whole logbook of the box, as `antenna --logbook` has it
+    # (each session is a different antenna: its bins are its own).
+    groups = [p.members for pts, _t in per_session for p in pts]
+    k = model_error_factor(groups)
+    for pts, truth in per_session:
+        for p in pts:
             zt = np.mean([truth[e.time][0] for e in p.members])
             if max(truth[e.time][1] for e in p.members) > MATCHABLE_SWR:
                 continue
+            p.cov = p.cov * (k / max(model_error_factor([p.members for p in pts]), 1.0))
             out.append({"z": p.z, "z_true": complex(zt), "r_err": p.r_err, "x_err": p.x_err, "tunes": p.tunes,
                         "readings": p.readings})
     return out

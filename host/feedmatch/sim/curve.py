@@ -422,11 +422,37 @@ def combine(ests: list[LoadEstimate]) -> CurvePoint:
     return CurvePoint(f, complex(zbar[0], zbar[1]), cov, len(ests), sum(e.readings for e in ests), list(ests))
 
 
+def model_error_factor(groups: list[list[LoadEstimate]]) -> float:
+    """How much more the tunes of one frequency disagree with each other than their stated
+    errors allow, over the whole logbook (a global Birge ratio, >= 1): tunes through
+    different states see the model's own errors differently, so their scatter shows what
+    the stated errors miss.  Each bin's tunes against their weighted mean, in R and X."""
+    chi2, dof = 0.0, 0
+    for ms in groups:
+        if len(ms) < 2:
+            continue
+        w = np.array([1.0 / max(float(np.trace(e.cov)), 1e-12) for e in ms])
+        w = w / w.sum()
+        zbar = sum(wi * e.z for wi, e in zip(w, ms))
+        for e in ms:
+            d = e.z - zbar
+            v = np.diag(e.cov)
+            chi2 += d.real ** 2 / max(v[0], 1e-12) + d.imag ** 2 / max(v[1], 1e-12)
+        dof += 2 * (len(ms) - 1)
+    return max(1.0, chi2 / dof) if dof >= 6 else 1.0
+
+
 def curve_points(ests: list[LoadEstimate], bin_hz: float) -> list[CurvePoint]:
+    """One point per memory bin, every error scaled by the logbook's model-error factor."""
     by: dict[int, list[LoadEstimate]] = {}
     for e in ests:
         by.setdefault(int(e.freq_hz // bin_hz), []).append(e)
-    return [combine(by[b]) for b in sorted(by)]
+    k = model_error_factor(list(by.values()))
+    pts = [combine(by[b]) for b in sorted(by)]
+    if k > 1.0:
+        for p in pts:
+            p.cov = p.cov * k
+    return pts
 
 
 def resonances(points: list[CurvePoint]) -> list[dict[str, Any]]:
