@@ -121,7 +121,25 @@ def _build():
     return pts, uu, ring, n
 
 
-GRID, UU, RING, N = _build()
+def _tables():
+    """The grid from its stored copy (hunt_grid.py, the same numbers), or built here."""
+    try:
+        from fmlogic import hunt_grid as g
+    except ImportError:
+        return _build()
+    t = (array("H", g.GRID), array("H", g.UU), bytearray(g.RING), g.N)
+    # The stored bytes are copied: drop the module so they can go.
+    import sys
+
+    import fmlogic
+
+    sys.modules.pop("fmlogic.hunt_grid", None)
+    if hasattr(fmlogic, "hunt_grid"):
+        del fmlogic.hunt_grid
+    return t
+
+
+GRID, UU, RING, N = _tables()
 
 
 @micropython.native

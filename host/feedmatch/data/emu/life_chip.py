@@ -118,6 +118,12 @@ def run():
     d = spec.get("dir", "")
     gc.collect()
     t0 = _us()
+    imp = []
+    for name in ("link", "memory", "config", "swr", "coupler", "lnet", "hunt", "qfit", "search", "controller"):
+        t = _us()
+        __import__("fmlogic." + name)
+        imp.append("%s %d" % (name, _diff(_us(), t) // 1000))
+    print("IMPORTS " + " ".join(imp))
     from fmlogic import memory
     from fmlogic.controller import Controller
 
