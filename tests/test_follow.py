@@ -178,7 +178,8 @@ def test_the_radio_is_unkeyed_when_the_tune_cannot_finish(fault, rig, station):
             vs.stop()
         assert _wait(lambda: not ctl.ptt(), 6), said  # unkeyed within the key limit
         if fault == "the board dies mid-tune":
-            assert _wait(lambda: any("lost the board" in s and "retrying" in s for s in said), 10), said
+            # the heartbeat's status is asked three times, 2 s each, before the board counts as lost
+            assert _wait(lambda: any("lost the board" in s and "retrying" in s for s in said), 20), said
     finally:
         fo.stop.set()
         th.join(10)
@@ -411,3 +412,22 @@ def test_while_it_cannot_follow_it_says_so_again_and_again(rig, station):
         th.join(10)
         fo.close()
     assert any(s.startswith("not following: ") and "rigctld" in s for s in said), said
+
+
+def test_a_refusal_is_a_json_object_with_json(rig, station):
+    host, port, _ = rig
+    vs, pty = station
+    ctl = RigClient(host, port).open()
+    ctl.set_freq(27.185e6)
+    p = _follow_cli(host, port, pty, "--json")
+    try:
+        lines = _wait_line(p, "not keying")
+        p.send_signal(signal.SIGTERM)
+        out, err = p.communicate(timeout=15)
+    finally:
+        if p.poll() is None:
+            p.kill()
+    msgs = [json.loads(x) for x in lines + out.splitlines() if x.strip()]
+    refusal = [m for m in msgs if "not keying" in m["message"]]
+    assert refusal and "27.1850 MHz" in refusal[0]["message"] and "no amateur band" in refusal[0]["message"]
+    assert not ctl.ptt() and p.returncode == 0 and "Traceback" not in err

@@ -75,14 +75,14 @@ def test_declared_segments_must_lie_in_an_amateur_band_of_the_region():
 
 
 def test_refusals_name_their_reason():
-    pol = KeyPolicy(parse_segments("7.0-7.2,10.1-10.15,29.51-29.7"), 1, "FM", 10)
+    pol = KeyPolicy(parse_segments("7.0-7.2,10.1-10.15,29.51-29.7"), 1, "FM", 10, network=load_network())
     assert "in no amateur band" in pol.refusal(27.185e6)
     assert "outside your declared segments" in pol.refusal(14.2e6)
     assert "not in the band plan" in pol.refusal(10.12e6)
     # FM's necessary bandwidth, 16 kHz (16K0F3E), is the margin: wider than the 2 kHz floor
     assert "within 16 kHz of the edge" in pol.refusal(29.69e6)
     assert pol.refusal(29.6e6) is None
-    cw = KeyPolicy(parse_segments("7.0-7.2"), 1, "CW", 10)
+    cw = KeyPolicy(parse_segments("7.0-7.2"), 1, "CW", 10, network=load_network())
     assert "within 2 kHz" in cw.refusal(7.1985e6) and cw.refusal(7.1975e6) is None
 
 
@@ -94,7 +94,15 @@ def test_the_box_range_comes_from_the_network_and_the_antenna():
                     antenna=Monopole(4.5, 0.012, 6.0))
     assert "cannot match the antenna" in pol.refusal(3.6e6)
     assert pol.refusal(21.2e6) is None
-    assert KeyPolicy(parse_segments("3.5-3.8"), 1, "CW", 10).refusal(3.6e6) is None  # no antenna known
+    # No antenna known: the network alone decides, and matches every load within SWR 3 on 80 m
+    assert KeyPolicy(parse_segments("3.5-3.8"), 1, "CW", 10, network=load_network()).refusal(3.6e6) is None
+    assert "network is not known" in KeyPolicy(parse_segments("3.5-3.8"), 1, "CW", 10).refusal(3.6e6)
+    # The network alone: every load within SWR 3 matched to the retune SWR, or no carrier.  On
+    # 2 m the bank's smallest step, 0.1 uH, is 91 ohm (X = 2 pi f L, common practice): too coarse.
+    wide = KeyPolicy(parse_segments("7.0-7.2,144-146"), 1, "CW", 10, network=load_network(),
+                     box_range_hz=(1e6, 200e6))
+    assert wide.refusal(7.1e6) is None
+    assert "network cannot match every load within SWR 3" in wide.refusal(145e6)
 
 
 def test_one_keyer_per_radio_and_board(tmp_path, monkeypatch):

@@ -17,8 +17,8 @@ from feedmatch.errors import InputError
 class _Radio:
     """A one-connection rigctld stand-in whose RF power level reads back as `reads`."""
 
-    def __init__(self, reads: float):
-        self.reads, self.ptt, self.log = reads, 0, []
+    def __init__(self, reads: float, refuse_tx: bool = False):
+        self.reads, self.ptt, self.log, self.refuse_tx = reads, 0, [], refuse_tx
         self.srv = socket.socket()
         self.srv.bind(("127.0.0.1", 0))
         self.srv.listen(1)
@@ -39,6 +39,8 @@ class _Radio:
                 out = f"{self.ptt}\n"
             elif cmd == "l RFPOWER":
                 out = f"{self.reads:.6f}\n"
+            elif cmd == "T 1" and self.refuse_tx:
+                out = "RPRT -9\n"   # Hamlib's RIG_ERJCTED: the radio would not transmit
             elif cmd.startswith("T "):
                 self.ptt = int(cmd[2:])
                 out = "RPRT 0\n"
@@ -72,6 +74,25 @@ def test_no_key_when_the_power_does_not_read_back():
     assert fo.keyed_tune(None, 7.1e6) is None
     assert any("reads back 0.900" in s for s in said) and "T 1" not in r.log
     assert r.log[-2:] == ["L RFPOWER 0.900000", "M USB 2400"]  # power and mode restored
+
+
+class _Board:
+    """Just enough of a BoardLink for keyed_tune to reach the key."""
+
+    def request(self, word, args=None):
+        return {"seq": 0}
+
+
+def test_a_radio_that_will_not_transmit_is_said_in_words_and_not_asked_again():
+    r = _Radio(0.1, refuse_tx=True)
+    said = []
+    fo = Follower("unused", RigClient("127.0.0.1", r.port), said.append, tune_carrier_w=10.0, policy=_POLICY)
+    fo.limits = {"hot_switch_w": 30.0, "min_tune_w": 2.0, "max_tune_w": 20.0}
+    assert fo.keyed_tune(_Board(), 7.1e6) is None
+    msg = [s for s in said if s.startswith("cannot key")]
+    assert msg and "RPRT -9: command rejected by the rig" in msg[0] and "may transmit" in msg[0], said
+    assert "T 0" in r.log and r.log[-2:] == ["L RFPOWER 0.100000", "M USB 2400"]  # unkeyed, restored anyway
+    assert "refused to key" in fo.may_key(7.1e6)   # and not asked to key again this session
 
 
 def test_no_key_above_the_box_limits():

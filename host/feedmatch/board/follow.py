@@ -115,8 +115,13 @@ class Follower:
         assert self.policy is not None
         m = ln.element_sections()
         if m and isinstance(m.get("network"), dict):
+            # The element values and their losses (a Q of 0 is the board's "lossless"); the
+            # board's other keys (stuck elements) are the firmware's business.
+            sec = {k: v for k, v in m["network"].items()
+                   if k in ("z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q")
+                   and not (k.endswith("_q") and not v)}
             try:
-                self.policy.network = network_from_dict(m["network"], "the board's network")
+                self.policy.network = network_from_dict(sec, "the board's network")
                 self.policy._matched.clear()
             except InputError:
                 pass  # an older board: the station's network stands
@@ -146,6 +151,10 @@ class Follower:
     def run(self, stop: threading.Event | None = None) -> None:
         if stop is not None:
             self.stop = stop
+        if self.lock is not None and self.tune_carrier_w is not None:
+            held = self.lock.acquire()
+            self.say(f"not the keyer: {held}; following without keying" if held else
+                     "this follower is the keyer for this radio and board")
         down = ""          # why it cannot follow now ("" while it follows)
         said_at = 0.0
         while not self.stop.is_set():
@@ -241,11 +250,11 @@ class Follower:
     def may_key(self, f: float, bin_no: int | None = None) -> str:
         """Why a tune carrier may not be keyed at f now ("" when it may)."""
         assert self.policy is not None
+        if self.key_off:
+            return self.key_off
         why = self.policy.refusal(f)
         if why:
             return why
-        if self.key_off:
-            return self.key_off
         if bin_no is not None and int(bin_no) in self.no_key_bins:
             return "a keyed tune here found no match earlier in this session; tune it by hand"
         if self.lock is not None:

@@ -464,9 +464,9 @@ def _carrier_policy(a):
                            swr_limit=float(cfg["tune"]["retune_swr"]))
     notes = pol.check_declared()
     if antenna is None:
-        notes.append(f"no antenna model (--station or --antenna): the box's range is taken as "
-                     f"{pol.box_range_hz[0] / 1e6:g}-{pol.box_range_hz[1] / 1e6:g} MHz without checking "
-                     "that it can match the antenna there")
+        notes.append(f"no antenna model (--station or --antenna): keying only from "
+                     f"{pol.box_range_hz[0] / 1e6:g} to {pol.box_range_hz[1] / 1e6:g} MHz where the box's network "
+                     "can match every load within SWR 3, without knowing whether it can match your antenna")
     return pol, notes
 
 
@@ -524,9 +524,6 @@ def cmd_follow(a) -> int:
             f"{policy.region}); you stay responsible for the station")
         for n in notes:
             say("note: " + n)
-        held = lock.acquire() if lock is not None else None
-        say(f"not the keyer: {held}; following without keying" if held else
-            "this follower is the keyer for this radio and board")
 
     def _term(_sig, _frame):
         raise KeyboardInterrupt
