@@ -123,3 +123,54 @@ def test_the_injected_fault_is_the_one_named(tmp_path, spec):
     el, kind = spec.split(":")
     assert [(f["element"], f["kind"]) for f in res["faults"]] == [(el, kind.split("=")[0])]
     assert m.violations == []
+
+
+# -- running around a failed element (network.failed) ----------------------------------
+def test_the_damage_map_keeps_the_search_on_what_still_switches():
+    from fmlogic.selftest import Damage, parse_faults
+
+    bank = NET.firmware_bank()
+    d = Damage(parse_faults("L3:stuck-in,C2:stuck-out,side:stuck-ant", 7, 7), bank)
+    assert d.bank.nl == 6 and d.bank.nc == 6
+    # The stuck-in coil is always there: the search's code 0 is 0.8 uH (L3's nominal value).
+    assert d.bank.l_uh(0) == pytest.approx(0.8)
+    assert d.bank.c_pf(0) == 0.0
+    # Search code 0b111111 (every coil that still switches) is every coil on the relays.
+    assert d.full((0b111111, 0b000011, 0)) == (0b1111111, 0b0000011, 1)
+    assert d.reduced((0b1111111, 0b1111011, 1)) == (0b111111, 0b111111, 1)
+    # The nearest-code lookup still finds the code of a value in the offset table.
+    want = 0.8 + 0.1 + 0.4 + 1.6  # L3 (stuck) + L0 + L2 + L4: reduced bits 0, 2, 3
+    assert d.bank.l_code_for(want) == 0b001101
+
+
+def test_a_box_marked_failed_never_drives_the_failed_relays(tmp_path):
+    box = draw_box(NET, 11, 0.05, "default")
+    m = StationModel(box.network, FixedLoad(LOAD.real, LOAD.imag), box.detector, 25.0, seed=5,
+                     faults=parse_faults("L4:stuck-out,side:stuck-tx", NET))
+    b = FakeBoard(m)
+    cfg = board_config()
+    cfg["network"]["failed"] = ["L4:stuck-out", "side:stuck-tx"]
+    ctl = Controller(b, cfg, str(tmp_path))
+    seen = []
+    b.on_set = lambda board: seen.append(m.relays)
+    m.key(10, F_HZ)
+    for _ in range(400):
+        ctl.step()
+        if ctl.rec.seq and ctl.tune is None:
+            break
+    tuned = [r for r in seen if not r[3]]
+    assert tuned and all(not r[0] & 0b10000 and r[2] == 0 for r in tuned)
+    assert ctl.state == LOCKED and m.swr() <= 1.6 and m.violations == []
+
+
+def test_the_config_validator_names_a_bad_failed_entry():
+    from fmlogic import config as fcfg
+
+    cfg = board_config()
+    for bad, words in ((["L9:stuck-out"], "network.failed[0]: element L9"), (["C1:drift=-20%"], "only a stuck"),
+                       (["L1:stuck-in", "L1:stuck-out"], "listed twice"), ("L1", "must be a list")):
+        cfg["network"]["failed"] = bad
+        errs = fcfg.validate(cfg)
+        assert errs and words in errs[0], errs
+    cfg["network"]["failed"] = ["side:stuck-ant", "C6:stuck-in"]
+    assert fcfg.validate(cfg) == []

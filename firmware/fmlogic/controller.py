@@ -124,6 +124,8 @@ class Controller:
     def _apply_cfg(self):
         m = self.cfg
         self.bank = fcfg.bank_from(m)
+        # Failed elements (network.failed): the search works on what still switches.
+        self.dmg = selftest.damage_from(m, self.bank)
         self.meter = fcfg.meter_from(m)
         self.cp = coupler.from_config(m["detector"], self.meter.ref)
         self.p = m["power"]
@@ -282,8 +284,11 @@ class Controller:
         name = self.t["strategy"]
         if name == "recall" and hint is None:
             name = "model"
-        strat = search.make(name, self.bank, f if f > 0 else 14.0e6, self.t["target_swr"],
-                            self.t["budget"], hint[:4] if hint else None, self.cp)
+        dmg = self.dmg
+        if dmg is not None and hint is not None:
+            hint = dmg.reduced(hint[:3]) + (hint[3],)
+        strat = search.make(name, dmg.bank if dmg is not None else self.bank, f if f > 0 else 14.0e6,
+                            self.t["target_swr"], self.t["budget"], hint[:4] if hint else None, self.cp)
         before = self._state_list()
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
@@ -310,9 +315,12 @@ class Controller:
             self._end_tune("time limit")
             return
         st = s.propose()
+        byp = st == search.BYPASS
+        if self.dmg is not None and not byp:
+            st = self.dmg.full(st)  # failed relays are never driven against their state
         # The search's BYPASS is the antenna alone: the bypass relay, as the
         # box ends when nothing beats it.
-        if not self._switch(st, st == search.BYPASS):
+        if not self._switch(st, byp):
             self._end_tune("power above hot-switch limit", abort=True)
             return
         b.sleep_ms(self.t["settle_ms"])
@@ -339,6 +347,8 @@ class Controller:
             why = why + "; " + note
         if final is None:
             final, byp = (self.relays, self.bypass)
+        elif self.dmg is not None and not byp:
+            final = self.dmg.full(final)
         switched = self._switch(final, byp)
         if not switched:
             why = why + "; relays held (power above hot-switch limit)"
@@ -352,7 +362,7 @@ class Controller:
         memory.journal_take(self.d)
         hit = tn["hint"] and s.n == 1 and outcome == LOCKED
         self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
-                     outcome, why, hit, tn["name"], _trace(s), tn["preset"],
+                     outcome, why, hit, tn["name"], _trace(s, self.dmg), tn["preset"],
                      bound(s) if switched and outcome != FAULT else None)
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
@@ -759,14 +769,17 @@ def bound(s):
     return (_r3(swr_from_gamma(lo)), _r3(swr_from_gamma(hi)))
 
 
-def _trace(s):
+def _trace(s, dmg=None):
     """The readings of a tune, flat [l, c, shunt, 1000*|gamma|, ...], for fitting the box later."""
     out = []
     for st in s.order[:TRACE_MAX]:
+        g = s.seen[st]
+        if dmg is not None and st != search.BYPASS:
+            st = dmg.full(st)
         out.append(st[0])
         out.append(st[1])
         out.append(st[2])
-        out.append(int(s.cp.raw(s.seen[st]) * 1000 + 0.5))
+        out.append(int(s.cp.raw(g) * 1000 + 0.5))
     return out
 
 

@@ -47,15 +47,29 @@ class Bank:
         self.ci = array("i", bytes(4 * (self.c_max + 1)))
         self.set_values(self.nominal_l, self.nominal_c)
 
-    def set_values(self, inductors_uh, capacitors_pf):
+    def set_values(self, inductors_uh, capacitors_pf, l_fixed=0.0, c_fixed=0.0):
+        """l_fixed, c_fixed: inductance (uH) and capacitance (pF) always in
+        circuit, whatever the codes (an element stuck in: fmlogic.selftest.Damage)."""
         self.ind = [float(v) for v in inductors_uh]
         self.cap = [float(v) for v in capacitors_pf]
         _tabulate(self.lv, self.ind)
         _tabulate(self.cv, self.cap)
         self._loc = (_locality(self.lv, 0.015), _locality(self.cv, 0.015),
                      _locality(self.lv, 0.0006), _locality(self.cv, 0.0006))
+        self.l_fixed = float(l_fixed)
+        self.c_fixed = float(c_fixed)
+        if l_fixed:
+            for i in range(len(self.lv)):
+                self.lv[i] += self.l_fixed
+        if c_fixed:
+            for i in range(len(self.cv)):
+                self.cv[i] += self.c_fixed
         self.lk, self.lmax = _scaled(self.li, self.lv)
         self.ck, self.cmax = _scaled(self.ci, self.cv)
+        # A bank that is not binary-weighted (an element taken out by
+        # fmlogic.selftest.Damage) has no good first guess: look codes up by scan.
+        self.l_scan = not _binary(self.ind)
+        self.c_scan = not _binary(self.cap)
 
     def locality(self, shunt):
         """Per-code factors of the fit's locality weight (search.ModelFit._fit)
@@ -76,6 +90,8 @@ class Bank:
         """Code whose inductance is nearest to l_uh."""
         if l_uh <= 0.0:
             return 0
+        if self.l_scan:
+            return _scan(self.li, self.l_max, int((l_uh if l_uh < self.lmax else self.lmax) * self.lk + 0.5))
         return _nearest(self.li, self.l_max, int((l_uh if l_uh < self.lmax else self.lmax) * self.lk + 0.5))
 
     @micropython.native
@@ -83,6 +99,8 @@ class Bank:
         """Code whose capacitance is nearest to c_pf."""
         if c_pf <= 0.0:
             return 0
+        if self.c_scan:
+            return _scan(self.ci, self.c_max, int((c_pf if c_pf < self.cmax else self.cmax) * self.ck + 0.5))
         return _nearest(self.ci, self.c_max, int((c_pf if c_pf < self.cmax else self.cmax) * self.ck + 0.5))
 
 
@@ -126,16 +144,48 @@ def _scaled(itab, ftab):
     return k, 2.0 * top
 
 
+def _binary(values):
+    # Each value within 40 % of twice the one before: the first guess of _nearest holds.
+    for i in range(1, len(values)):
+        r = values[i] / values[i - 1] if values[i - 1] > 0.0 else 0.0
+        if not 1.2 < r < 2.8:
+            return False
+    return True
+
+
+@micropython.viper
+def _scan(table, top: int, v: int) -> int:
+    # Code of the value nearest v, every code looked at.
+    t = ptr32(table)
+    best = 0
+    err = t[0] - v
+    if err < 0:
+        err = -err
+    code = 1
+    while code <= top:
+        e = t[code] - v
+        if e < 0:
+            e = -e
+        if e < err:
+            err = e
+            best = code
+        code += 1
+    return best
+
+
 @micropython.viper
 def _nearest(table, top: int, v: int) -> int:
     # Code of the value nearest v in table (integers, v > 0).  Binary weighting
     # makes v / table[1] a good first guess; walking downhill a few codes
     # absorbs banks whose effective values are off nominal.
     t = ptr32(table)
-    step = t[1]
+    base = t[0]  # 0 unless an element is stuck in (Bank.set_values' l_fixed, c_fixed)
+    step = t[1] - base
     if step <= 0:
         step = 1
-    best = (v + (step >> 1)) // step
+    best = (v - base + (step >> 1)) // step
+    if best < 0:
+        best = 0
     if best > top:
         best = top
     err = t[best] - v

@@ -177,6 +177,89 @@ def check_failed(errs, where, v, nl, nc):
         seen.append(f[0])
 
 
+class Damage:
+    """A box with failed elements (the config's network.failed), as the search
+    sees it: a bank of the elements still switching, with the stuck-in ones as a
+    fixed inductance or capacitance, and the maps between its codes (reduced)
+    and the relay codes (full).  A stuck side relay is not in the bank: full()
+    commands the side it is stuck on (the bench found the search does better
+    reading there than being told "no match" for the other side)."""
+
+    def __init__(self, failed, bank):
+        self.side = -1
+        out_l = 0
+        in_l = 0
+        out_c = 0
+        in_c = 0
+        for f in failed:
+            name = f[0]
+            if name == "side":
+                self.side = 0 if f[1] == STUCK_TX else 1
+                continue
+            bit = 1 << int(name[1:])
+            if name[0] == "L":
+                if f[1] == STUCK_IN:
+                    in_l |= bit
+                else:
+                    out_l |= bit
+            elif f[1] == STUCK_IN:
+                in_c |= bit
+            else:
+                out_c |= bit
+        self.l_keep = [i for i in range(bank.nl) if not (out_l | in_l) >> i & 1] or list(range(bank.nl))
+        self.c_keep = [i for i in range(bank.nc) if not (out_c | in_c) >> i & 1] or list(range(bank.nc))
+        self.l_or = in_l
+        self.c_or = in_c
+        l_fixed = 0.0
+        c_fixed = 0.0
+        for i in range(bank.nl):
+            if in_l >> i & 1:
+                l_fixed += bank.ind[i]
+        for i in range(bank.nc):
+            if in_c >> i & 1:
+                c_fixed += bank.cap[i]
+        from fmlogic import lnet
+
+        ind = [bank.ind[i] for i in self.l_keep]
+        cap = [bank.cap[i] for i in self.c_keep]
+        self.bank = lnet.Bank(bank.z0, ind, cap, bank.ql, bank.qc)
+        self.bank.set_values(ind, cap, l_fixed, c_fixed)
+
+    def full(self, st):
+        """Relay codes for a search state (stuck relays commanded as they are)."""
+        return (_spread(st[0], self.l_keep) | self.l_or, _spread(st[1], self.c_keep) | self.c_or,
+                st[2] if self.side < 0 else self.side)
+
+    def reduced(self, st):
+        """The search's codes for relay codes (a memory entry)."""
+        return (_pack(st[0], self.l_keep), _pack(st[1], self.c_keep), st[2])
+
+
+
+def _spread(code, keep):
+    out = 0
+    for j in range(len(keep)):
+        if code >> j & 1:
+            out |= 1 << keep[j]
+    return out
+
+
+def _pack(code, keep):
+    out = 0
+    for j in range(len(keep)):
+        if code >> keep[j] & 1:
+            out |= 1 << j
+    return out
+
+
+def damage_from(cfg, bank):
+    """The Damage of a merged config's network.failed, or None for a whole box."""
+    failed = cfg["network"].get("failed") or []
+    if not failed:
+        return None
+    return Damage([parse_fault(t, bank.nl, bank.nc) for t in failed], bank)
+
+
 def run(ctl, ref, side):
     """Step the relays through plan(ref) on the controller ctl with the carrier
     on, every change through its hot-switch gate (ctl._switch), then put the

@@ -97,3 +97,48 @@ def bench_selftest(quick: bool = False, workers: int = 2) -> dict[str, Any]:
     out["selftest_readings_max"] = max(r["readings"] for r in rows)
     out["selftest_missed"] = sorted(k for k, v in rates.items() if v < 0.95)
     return out
+
+
+DAMAGED_FAULTS = ("L2:stuck-out", "L4:stuck-in", "C3:stuck-out", "C5:stuck-in", "side:stuck-tx", "side:stuck-ant")
+
+
+def bench_damaged(quick: bool = False) -> dict[str, Any]:
+    """Running around a fault: drawn 5 % boxes, each with one stuck element that
+    its config marks failed (network.failed, as selftest --write sets it); the
+    model search on the Smith corpus, success counted over the loads the damaged
+    box can still match (its exhaustive optimum at or below SWR 1.5), against the
+    same box whole and the same damage unmarked."""
+    from feedmatch.rf.network import load_network
+    from feedmatch.sim.boxes import draw_box
+    from feedmatch.sim.faults import NONE, parse_faults
+    from feedmatch.sim.loads import smith_loads
+    from feedmatch.sim.scorer import ScoreConfig, run_parallel, summarise
+
+    net = load_network()
+    loads = smith_loads(100 if quick else 400, seed=2711)
+    boxes = [draw_box(net, 6100 + k, 0.05, "default") for k in range(1 if quick else 2)]
+    jobs = []
+    labels = []
+    for spec in ("",) + DAMAGED_FAULTS:
+        f = parse_faults(spec, net) if spec else NONE
+        for marked in ((False, True) if spec else (False,)):
+            for k, box in enumerate(boxes):
+                cfg = ScoreConfig(strategy="model", detector=box.detector, seed=k, faults=f,
+                                  failed=f if marked else NONE)
+                jobs.append((loads, box.network, net, cfg, box.detector))
+                labels.append((spec, marked))
+    parts = run_parallel(jobs, 2)
+    rows: dict[tuple[str, bool], list] = {}
+    for lab, part in zip(labels, parts):
+        rows.setdefault(lab, []).extend(part)
+    rate = {lab: summarise(rs, 1.5)["success_rate"] for lab, rs in rows.items()}
+    whole = rate[("", False)]
+    marked = {s: rate[(s, True)] for s in DAMAGED_FAULTS}
+    unmarked = {s: rate[(s, False)] for s in DAMAGED_FAULTS}
+    out: dict[str, Any] = {"damaged_whole_success_rate": round(whole, 4),
+                           "damaged_marked_success_rate_min": round(min(marked.values()), 4),
+                           "damaged_unmarked_success_rate_min": round(min(unmarked.values()), 4),
+                           "damaged_marked_gap_points_max": round(100 * max(1.0 - v for v in marked.values()), 2)}
+    for s in DAMAGED_FAULTS:
+        out["damaged_" + s.replace(":", "_").replace("-", "_") + "_success_rate"] = round(marked[s], 4)
+    return out

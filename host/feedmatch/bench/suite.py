@@ -290,9 +290,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
 
         res.update(bench_antenna_curve(quick))
     if want("selftest"):
-        from feedmatch.bench.selftest import bench_selftest
+        from feedmatch.bench.selftest import bench_damaged, bench_selftest
 
         res.update(bench_selftest(quick))
+        res.update(bench_damaged(quick))
     if want("life"):
         from feedmatch.bench.life import bench_life
         from feedmatch.sim.emulator import EmulatorMissing

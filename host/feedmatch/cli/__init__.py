@@ -239,6 +239,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--workers", type=int)
     s.add_argument("--fault", metavar="SPEC",
                    help="score on a damaged box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
+    s.add_argument("--mark-failed", action="store_true",
+                   help="with --fault: the box's config marks its stuck elements failed (as selftest --write does)")
     s.add_argument("--json", action="store_true")
     s.add_argument("--plots", help="directory for PNG plots")
     s.set_defaults(fn=cmd_score)

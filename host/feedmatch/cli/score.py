@@ -39,9 +39,13 @@ def run_score_job(a: argparse.Namespace) -> int:
     if a.plots:
         output_dir(a.plots, "--plots")
     net = load_network(a.network)
-    from feedmatch.sim.faults import parse_faults
+    from feedmatch.sim.faults import NONE as NO_FAULTS
+    from feedmatch.sim.faults import Faults, parse_faults
 
     faults = parse_faults(a.fault, net)
+    if a.mark_failed and not faults:
+        raise InputError("--mark-failed needs --fault: it marks the fault's stuck elements failed in the box's config")
+    failed = Faults(tuple(f for f in faults.items if f[1] != "drift")) if a.mark_failed else NO_FAULTS
     if a.loads:
         loads, bad = read_loads(a.loads, a.skip_bad)
         for b in bad:
@@ -73,7 +77,7 @@ def run_score_job(a: argparse.Namespace) -> int:
         for k, true_net, bdet, nominal in box_list:
             cfg = ScoreConfig(strategy=name, target_swr=a.target, budget=a.budget,
                               settle_ms=a.settle_ms, tune_power_w=a.power, seed=a.seed + (k or 0),
-                              detector=bdet, faults=faults)
+                              detector=bdet, faults=faults, failed=failed)
             part = score(loads, true_net, nominal, cfg, det=bdet, workers=a.workers,
                          progress=progress)
             if k is not None:

@@ -58,6 +58,8 @@ class ScoreConfig:
     memory: bool = False
     # Faults of the true box (sim.faults): stuck relays and drifted elements.
     faults: Faults = NO_FAULTS
+    # Elements the box's config marks failed (network.failed): the search keeps to what still switches.
+    failed: Faults = NO_FAULTS
     # The coupler's complex error as the calibration learned it (config
     # detector.coupler), or None: magnitudes only (the dummy-load passes).
     learned: tuple | None = None
@@ -116,6 +118,15 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
                    cfg.leak if cfg.leak is not None else det.calibrated_leak_fwd(), learned=cfg.learned,
                    floor_w=floor_watts(meter))
     hint = mem.lookup(load.freq_hz) if (mem is not None and cfg.strategy == "recall") else None
+    dmg = None
+    if cfg.failed:
+        # The box's config marks these elements failed: the controller's own mapping (fmlogic.selftest.Damage).
+        from fmlogic.selftest import Damage
+
+        dmg = Damage(list(cfg.failed.items), bank)
+        bank = dmg.bank
+        if hint is not None:
+            hint = dmg.reduced(hint[:3]) + (hint[3],)
     s = search.make(cfg.strategy, bank, load.freq_hz, cfg.target_swr, cfg.budget,
                     hint[:4] if hint else None, leak)
     prev = (0, 0, 1)
@@ -126,6 +137,8 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
         st = s.propose()
         if s.done:
             break
+        if dmg is not None and st != search.BYPASS:
+            st = dmg.full(st)  # as the controller: failed relays never driven against their state
         n_ops = relay_ops(prev, st)
         ops += n_ops
         # The controller drops to tune power before switching; count a hot
@@ -140,6 +153,8 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
         s.observe(pf, pr)
     compute_s = time.perf_counter() - t0
     outcome, final, through, est_swr, keep, _note = controller.conclude(s)
+    if dmg is not None and final is not None and not through:
+        final = dmg.full(final)
     if final is None or through:
         final, true_g = (0, 0, 1), bypass_g
         through = True
