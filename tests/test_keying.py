@@ -137,3 +137,28 @@ def test_follow_refuses_to_start_before_connecting(more, words):
     p = subprocess.run([str(BIN / "feedmatch"), *args], capture_output=True, text=True, timeout=60)
     assert p.returncode == 2 and len(p.stderr.strip().splitlines()) == 1, p.stderr
     assert words in p.stderr and "Traceback" not in p.stderr and p.stdout == ""
+
+
+def test_the_station_file_may_hold_the_segments_and_the_region(tmp_path):
+    import json
+
+    from feedmatch.resources import DATA
+    from feedmatch.sim.station import load_station
+
+    d = json.loads((DATA / "station_demo.json").read_text())
+    d["network"] = str(DATA / "network_default.json")
+    d |= {"segments": ["7.0-7.2", [14.0, 14.35]], "region": 1}
+    f = tmp_path / "station.json"
+    f.write_text(json.dumps(d))
+    st = load_station(f)
+    assert st.segments == [(7.0e6, 7.2e6), (14.0e6, 14.35e6)] and st.region == 1
+    for bad, words in [({"region": 4}, "field 'region'"), ({"segments": "7.0-7.2"}, "field 'segments'"),
+                       ({"segments": ["7.2-7.0"]}, "needs 0 < low < high")]:
+        f.write_text(json.dumps(d | bad))
+        with pytest.raises(InputError, match=words):
+            load_station(f)
+    # follow takes them from the file: a segment outside Region 1's 40 m is refused at start
+    f.write_text(json.dumps(d | {"segments": ["7.0-7.3"]}))
+    p = subprocess.run([str(BIN / "feedmatch"), "follow", "--port", "/nonexistent/board", "--rig", "127.0.0.1:1",
+                        "--tune-carrier", "10", "--station", str(f)], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 2 and "not inside an amateur band of ITU Region 1" in p.stderr, p.stderr

@@ -529,6 +529,9 @@ def cmd_follow(a) -> int:
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, _term)
+    # Ctrl-C must always stop a keyer, even when started where SIGINT was ignored (a
+    # background job of a non-interactive shell): it unkeys on the way out.
+    signal.signal(signal.SIGINT, signal.default_int_handler)
     say(f"following the radio at {host}:{port} for the board on {a.port} (Ctrl-C stops)")
     try:
         fo.run()
