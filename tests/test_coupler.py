@@ -226,3 +226,15 @@ def test_fit_box_refuses_what_the_data_cannot_support():
     # An element the tunes hardly used stays near nominal through the prior: no refusal.
     rare = dict(good, capacitor_sigma_pct=[1.0] * 6 + [9.0], capacitor_readings=[300] * 6 + [5])
     assert write_refusal(rare, names) is None
+
+
+def test_fit_box_on_thin_logbooks_refuses_to_write():
+    # Two logbooks of 60 independent tunes on one drawn box (5 % parts, strays):
+    # fit-box must not offer either for --write (their stated uncertainties are
+    # themselves rough at this size: one element's two values differed by 4.8
+    # combined sigmas, three of 13 beyond 3, on this box; the bench's fitbox
+    # group measures agreement on larger logbooks of several boxes).
+    from feedmatch.bench.fitbox import agreement
+
+    z, refused = agreement(35, 60)
+    assert len(z) >= 8 and all(refused)

@@ -234,7 +234,7 @@ def bench_design() -> dict[str, Any]:
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design",
-              "presets", "antenna_curve", "selftest", "coupler", "life")
+              "presets", "antenna_curve", "selftest", "coupler", "life", "fitbox")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -274,6 +274,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
         res.update(bench_cold(quick))
     if want("design"):
         res.update(bench_design())
+    if want("fitbox"):
+        from feedmatch.bench.fitbox import bench_fitbox
+
+        res.update(bench_fitbox(quick))
     if want("coupler"):
         from feedmatch.bench.coupler import bench_coupler
 
