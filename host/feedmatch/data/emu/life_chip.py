@@ -128,7 +128,14 @@ def run():
     from fmlogic.controller import Controller
 
     t1 = _us()
-    # Where the start's time goes (read-only look-alikes of what the controller does).
+    board = Board(cfg)
+    ctl = Controller(board, cfg, d)
+    t2 = _us()
+    st = _answer(board, ctl, 1, "status", {})
+    t_ans = time.ticks_ms() if hasattr(time, "ticks_ms") else 0
+    print("BOOT %d %d %d %d %d" % (t_ans, _diff(_us(), t0) // 1000, st["seq"] if st else -1,
+                                   _diff(t1, t0) // 1000, _diff(t2, t1) // 1000))
+    # Where the start's time goes (after the answer, read-only look-alikes of what the controller did).
     from fmlogic.config import merged
 
     m = merged(cfg)
@@ -139,15 +146,6 @@ def run():
         fn()
         parts.append(_diff(_us(), t) // 1000)
     print("PARTS boots %d mem %d rec %d" % tuple(parts))
-    gc.collect()
-    t1 = _us()
-    board = Board(cfg)
-    ctl = Controller(board, cfg, d)
-    t2 = _us()
-    st = _answer(board, ctl, 1, "status", {})
-    t_ans = time.ticks_ms() if hasattr(time, "ticks_ms") else 0
-    print("BOOT %d %d %d %d %d" % (t_ans, _diff(_us(), t0) // 1000, st["seq"] if st else -1,
-                                   _diff(t1, t0) // 1000, _diff(t2, t1) // 1000))
     loads = spec["loads"]
     flash = [0, 0]
 
