@@ -34,7 +34,15 @@ def _step(link, args: dict[str, Any], nl: int, nc: int) -> tuple[list, list[floa
     from fmlogic.selftest import plan
 
     try:
-        ans = link.request("selftest", args, timeout=15.0, retries=0)
+        try:
+            ans = link.request("selftest", args, timeout=15.0, retries=0)
+        except BoardRefused as e:
+            if e.why != "busy":
+                raise
+            # The box began a tune of its own (its state was above the retune SWR):
+            # let it end, then step from the asked reference.
+            link.wait_event("record", timeout=10.0)
+            ans = link.request("selftest", args, timeout=15.0, retries=0)
     except BoardRefused as e:
         msg = e.detail.get("msg")
         raise LinkError(f"the board refused the self-test: {e.why}" + (f" ({msg})" if msg else "")) from None
