@@ -164,3 +164,19 @@ def test_a_damaged_memory_copy_never_becomes_the_backup(tmp_path):
     m3.store(10.1e6, (2, 2, 0), 1.4, 5)
     m3.flush()
     assert memory._parse_mem(str(tmp_path / "mem.bak"), None) not in (None, False)
+
+
+def test_after_a_restart_what_was_just_learned_is_not_the_first_to_go(tmp_path):
+    """The board's clock (its uptime) starts again at 0 after every reset: the memory's
+    oldest-first eviction must still take the oldest entries, not the newest."""
+    d = str(tmp_path)
+    mem = memory.Memory(d, 25000, 5)
+    for i in range(5):
+        mem.store(3.5e6 + i * 100e3, (i, i, 1), 1.2, 1000 + i)  # learned over a long uptime
+    mem.flush()
+    again = memory.Memory(d, 25000, 5)  # a reset: uptime back to 0 s
+    assert again.load()
+    again.store(14.2e6, (7, 8, 0), 1.1, 3)
+    again.store(21.2e6, (9, 9, 0), 1.1, 9)
+    assert again.lookup(14.2e6)[:3] == (7, 8, 0) and again.lookup(21.2e6)[:3] == (9, 9, 0)
+    assert again.lookup(3.5e6) is None and again.lookup(3.6e6) is None  # the two oldest went

@@ -107,6 +107,7 @@ class Memory:
         self.load_error = None
         self.n = 0
         self.cap = 0
+        self.tmax = 0  # the newest time stamp held (stamps never go back, see store)
         self.wbuf = bytearray(512)
         self.set_max(max_entries)
 
@@ -175,6 +176,8 @@ class Memory:
         self.codes[i] = (l & 0xFFF) | ((c & 0xFFF) << 12) | ((1 if sh else 0) << 24)
         self.milli[i] = milli
         self.t[i] = t
+        if t > self.tmax:
+            self.tmax = t
         if self.n > self.cap:
             oldest = 0
             for k in range(1, self.n):
@@ -258,7 +261,14 @@ class Memory:
             if ((c & 0xFFF, (c >> 12) & 0xFFF, (c >> 24) & 1) == (state[0], state[1], 1 if state[2] else 0)
                     and abs(self.milli[i] - milli) < 50):
                 return False
-        self._put(b, state[0], state[1], state[2], milli, int(t))
+        t = int(t)
+        if t < self.tmax:
+            # The clock went back (the board restarted: its uptime begins again at 0).
+            # An entry stored now is still the newest, so the oldest-first eviction
+            # never takes what was just learned.
+            t = self.tmax
+        self.tmax = t
+        self._put(b, state[0], state[1], state[2], milli, t)
         self.dirty = True
         return True
 
