@@ -14,7 +14,13 @@ from .conftest import run_cli
 
 CASES = [
     (["simulate", "--freq", "7.1", "--load", "50"], "below 100 kHz"),     # MHz typed as Hz
-    (["simulate", "--freq", "40", "--load", "50"], "did you mean 40e6"),
+    (["simulate", "--freq", "40", "--load", "50"], "did you mean the 40m band or 40e6 Hz (40 MHz)?"),
+    (["simulate", "--freq", "20", "--load", "50"], "did you mean the 20m band or 20e6 Hz (20 MHz)?"),
+    (["simulate", "--freq", "7.1", "--load", "50"], "did you mean 7.1e6 Hz (7.1 MHz)?"),
+    (["simulate", "--sweep", "7.0:7.3:5", "--load", "50", "--best"], "did you mean 7e6:7.3e6:5 (MHz)?"),
+    (["antenna", "--antenna", "x.json", "--sweep", "1.8:30:100"], "did you mean 1.8e6:30e6:100 (MHz)?"),
+    (["simulate", "--sweep", "7e6:2e9:5", "--load", "50", "--best"], "sweep stop 2e9 Hz is above 1 GHz"),
+    (["simulate", "--sweep", "7e6:7.3e6:1", "--load", "50", "--best"], "2..100000 points"),
     (["simulate", "--freq", "inf", "--load", "50"], "positive number of Hz"),
     (["simulate", "--freq", "nan", "--load", "50"], "positive number of Hz"),
     (["simulate", "--freq", "1e300", "--load", "50"], "above 1 GHz"),

@@ -15,6 +15,32 @@ class LinkError(Exception):
     """The serial link failed: port missing, busy, or the board not answering."""
 
 
+# The firmware's refusal codes (fmlogic/controller.py) in an operator's words.
+REFUSALS = {
+    "busy": "it is busy with a tune or a relay change of its own",
+    "fault": "it is in a fault state",
+    "rf-present": "RF is already on the line (the box tunes on that carrier itself)",
+    "hot": "the power on the line is above its hot-switch limit: relays never move under power",
+    "no-carrier": "there is no carrier to tune on",
+    "invalid": "the configuration is not valid",
+    "unknown-request": "its firmware does not know this request (older firmware?)",
+    "not-a-request": "the frame was not a request",
+    "reply-too-long": "its answer would be too long for the link",
+    "button": "the button on the box was pressed",
+}
+
+
+def refusal_words(why: str, msg: str = "") -> str:
+    """A refusal code and its detail as a sentence ("bad-args", "freq_hz" ->
+    "it did not accept the value of freq_hz")."""
+    if why == "bad-args":
+        text = f"it did not accept the value of {msg}" if msg and " " not in msg else \
+            "it did not accept the request's values" + (f" ({msg})" if msg else "")
+        return text
+    text = REFUSALS.get(why, f"reason '{why}'")
+    return text + (f" ({msg})" if msg and msg not in text else "")
+
+
 class BoardRefused(LinkError):
     """The board answered a request with a refusal.
 
@@ -25,5 +51,6 @@ class BoardRefused(LinkError):
         self.request = request
         self.why = why
         self.detail = dict(detail or {})
-        msg = self.detail.get("msg", "")
-        super().__init__(f"board refused {request}: {why} {msg}".strip())
+        msg = str(self.detail.get("msg", ""))
+        self.words = refusal_words(why, msg)
+        super().__init__(f"the board refused {request}: {self.words}")

@@ -217,8 +217,7 @@ class Follower:
             if e.why == "busy":
                 self._asked = False  # a tune is under way: ask again on the next poll
                 return
-            msg = e.detail.get("msg")
-            self.say(f"{_mhz(f)} {mode}: preset refused ({e.why}{': ' + msg if msg else ''})")
+            self.say(f"{_mhz(f)} {mode}: preset refused: {e.words}")
             return
         b = ans.get("bin")
         if b is not None and b == self.last_bin and (ans.get("already") or not ans.get("preset")):

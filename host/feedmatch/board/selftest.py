@@ -44,8 +44,7 @@ def _step(link, args: dict[str, Any], nl: int, nc: int) -> tuple[list, list[floa
             link.wait_event("record", timeout=10.0)
             ans = link.request("selftest", args, timeout=15.0, retries=0)
     except BoardRefused as e:
-        msg = e.detail.get("msg")
-        raise LinkError(f"the board refused the self-test: {e.why}" + (f" ({msg})" if msg else "")) from None
+        raise LinkError(f"the board refused the self-test: {e.words}") from None
     ref = tuple(ans["ref"])
     states = plan(ref, nl, nc, bool(ans.get("side", True)))[:len(ans["g"])]
     return states, [g / 1000.0 for g in ans["g"]], ans
@@ -70,7 +69,7 @@ def run_selftest(link, wait_s: float = 20.0, say=None) -> dict[str, Any]:
         try:
             link.request("tune", {"freq_hz": 0.0})
         except BoardRefused as e:
-            raise LinkError(f"the board refused to tune first: {e.why}") from None
+            raise LinkError(f"the board refused to tune first: {e.words}") from None
         if link.wait_event("record", lambda o: o.get("seq", 0) > before, timeout=wait_s) is None:
             raise LinkError(f"no tune result within {wait_s:g} s (is a carrier keyed in the tune window?)")
     s1, g1, a1 = _step(link, {}, nl, nc)

@@ -47,8 +47,8 @@ def run_antenna(a: argparse.Namespace) -> int:
             raise InputError(f"--{opt} goes with --logbook")
     if not a.antenna:
         raise InputError("give --antenna FILE (a model or a .s1p) or --logbook DB (the antenna as the box measured it)")
+    f = np.array(bands.parse_sweep(a.sweep or DEFAULT_SWEEP))  # a typo costs nothing: before the model
     ant = load_antenna(a.antenna)
-    f = np.array(bands.parse_sweep(a.sweep or DEFAULT_SWEEP))
     how = None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")

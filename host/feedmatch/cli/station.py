@@ -68,8 +68,26 @@ def _freq_disagrees(asked: str | None, asked_hz: float, counted_hz: float) -> st
 
 
 def _swr_text(swr) -> str:
-    # The board's -1 means no reading (no RF): never print it as an SWR.
-    return f"{swr}" if isinstance(swr, (int, float)) and swr >= 1.0 else "-"
+    # The board's -1 means no reading (no RF) and its 999 (fmlogic.swr.SWR_MAX) a
+    # reflection as large as the forward power: neither is printed as a number.
+    if not isinstance(swr, (int, float)) or isinstance(swr, bool) or swr < 1.0:
+        return "-"
+    return "above 99" if swr >= 99.0 else f"{swr:.3f}"
+
+
+def _plural(n, one: str, many: str | None = None) -> str:
+    return f"{n} {one if n == 1 else (many or one + 's')}"
+
+
+def _state_words(st: dict) -> str:
+    """The board's state, said so that a result is not mistaken for the present:
+    "locked" with no carrier now is the last tune's result."""
+    state, why = st.get("state", "?"), st.get("why", "")
+    swr = st.get("swr")
+    carrier = isinstance(swr, (int, float)) and swr >= 1.0
+    if state in ("locked", "best-effort") and not carrier:
+        return f"{state} at the last tune ({why}); no carrier now"
+    return f"{state} - {why}"
 
 
 def _bound_text(b) -> str:
@@ -90,11 +108,11 @@ def cmd_status(a) -> int:
         emit_json(st)
         return 0
     swr = st.get("swr")
-    print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {st['state']}"
-          f" - {st['why']}")
+    print(f"board {st['board_id']} (firmware {st['version']}, boot {st['boot']}): {_state_words(st)}")
     print(f"  relays {_state_text(st['relays'], bank)}; forward {st['fwd_w']} W, "
-          f"SWR {swr if swr is not None else 'no RF'}{_bound_text(st.get('swr_bound'))}; {_mhz(st['freq_hz'])}")
-    print(f"  {st['mem_entries']} memory entries; last record {st['seq']}; "
+          f"SWR {_swr_text(swr) if swr is not None else 'no RF'}{_bound_text(st.get('swr_bound'))}; "
+          f"{_mhz(st['freq_hz'])}")
+    print(f"  {_plural(st['mem_entries'], 'memory entry', 'memory entries')}; last record no. {st['seq']}; "
           f"bad frames {st['bad_frames']}; hot-switch refusals {st['hot_refusals']}")
     if st.get("file"):
         print(f"  concerns {st['file']}" + ("; the board is in safe mode: relays through, no tunes"
@@ -134,23 +152,31 @@ def cmd_tune(a) -> int:
             rec = recs[0] if recs else None
         bank = None if a.json else ln.bank()
     if rec is None:
-        raise LinkError(f"no tune result within {a.wait:g} s (is a carrier keyed?)")
+        # The same answer as the board's own "no RF" refusal: exit 1, whatever --wait was.
+        sys.stderr.write(f"feedmatch: no tune result within {a.wait:g} s: is a carrier of the tune power "
+                         "keyed?\n")
+        return 1
+    b, af = rec.get("swr_before"), rec.get("swr_after")
+    worse = all(isinstance(x, (int, float)) and 1.0 <= x < 99.0 for x in (b, af)) and af > b + 0.005
     if a.json:
         emit_json(rec)
     else:
         if rec["outcome"] == "refused":
             print(f"refused: {rec['why']}; relays left at {_state_text(rec['after'], bank)}")
         else:
-            print(f"{rec['outcome']}: {rec['why']}; SWR {_swr_text(rec['swr_before'])} -> "
-                  f"{_swr_text(rec['swr_after'])}{_bound_text(rec.get('swr_bound'))} at {_mhz(rec['freq_hz'])}, "
+            head = (f"ended worse than it started ({rec['outcome']}: {rec['why']})" if worse
+                    else f"{rec['outcome']}: {rec['why']}")
+            print(f"{head}; SWR {_swr_text(b)} -> "
+                  f"{_swr_text(af)}{_bound_text(rec.get('swr_bound'))} at {_mhz(rec['freq_hz'])}, "
                   f"{_state_text(rec['after'], bank)}, "
-                  f"{rec['n']} measurements in {rec['ms']} ms")
+                  f"{_plural(rec['n'], 'measurement')} in {rec['ms']} ms")
         note = _freq_disagrees(a.freq, f, rec.get("freq_hz") or 0.0)
         if note:
             print("note: " + note)
     from fmlogic.controller import BEST, LOCKED, THROUGH
 
-    return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) else 1
+    # A tune that left the SWR higher than it found it is not a success.
+    return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) and not worse else 1
 
 
 def cmd_selftest(a) -> int:
@@ -247,7 +273,7 @@ def cmd_memory(a) -> int:
     if a.json:
         emit_json({"bin_hz": r["bin_hz"], "entries": items})
         return 0
-    print(f"{len(items)} stored states (bins of {r['bin_hz'] / 1e3:g} kHz)")
+    print(f"{_plural(len(items), 'stored state')} (bins of {r['bin_hz'] / 1e3:g} kHz)")
     for f, l, c, sh, swr, _t in items:
         print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}"
               f"{_values_text(bank, l, c)}")

@@ -116,25 +116,36 @@ def band_of(f_hz: float) -> str:
     return "out"
 
 
+def check_hz(f: float, text: str, what: str = "frequency") -> float:
+    """The one guard on a frequency typed in Hz: finite, positive, 100 kHz to 1 GHz.
+    A small number is MHz or a band to an operator, never Hz to this box: the
+    message says what was probably meant."""
+    if not f > 0 or f != f or f == float("inf"):
+        raise InputError(f"{what} must be a positive number of Hz, got {text}")
+    if f > 1e9:
+        raise InputError(f"{what} {text} Hz is above 1 GHz: an HF matching unit has no use for it")
+    if f < 100e3:
+        band = f"{f:g}m"
+        try:
+            by_name(band)
+            meant = f"the {band} band or {f:g}e6 Hz ({f:g} MHz)"
+        except InputError:
+            meant = f"{f:g}e6 Hz ({f:g} MHz)"
+        raise InputError(f"{what} {text} is in Hz and below 100 kHz: did you mean {meant}?")
+    return f
+
+
 def parse_freq(text: str) -> float:
     """A frequency in Hz, or a band name meaning its centre."""
     try:
         f = float(text)
     except ValueError:
         return by_name(text).centre_hz
-    if not f > 0 or f != f or f == float("inf"):
-        raise InputError(f"frequency must be a positive number of Hz, got {text}")
-    if f > 1e9:
-        raise InputError(f"frequency {text} Hz is above 1 GHz: an HF matching unit has no use for it")
-    if f < 100e3:
-        # 7.1 or 40 are MHz or a band to an operator, never Hz to this box.
-        raise InputError(f"frequency {text} is in Hz and below 100 kHz: did you mean {f:g}e6 (MHz) "
-                         f"or a band name such as 40m?")
-    return f
+    return check_hz(f, text)
 
 
 def parse_sweep(text: str) -> list[float]:
-    """'start:stop:n' in Hz."""
+    """'start:stop:n' in Hz (each end through the same guard as a single frequency)."""
     parts = text.split(":")
     if len(parts) != 3:
         raise InputError(f"sweep must be start:stop:points, got '{text}'")
@@ -142,6 +153,10 @@ def parse_sweep(text: str) -> list[float]:
         a, b, n = float(parts[0]), float(parts[1]), int(parts[2])
     except ValueError:
         raise InputError(f"sweep must be start:stop:points with numbers, got '{text}'") from None
-    if not (0 < a < b) or not (2 <= n <= 100000):
-        raise InputError(f"sweep needs 0 < start < stop and 2..100000 points, got '{text}'")
+    if 0 < a < 100e3 and 0 < b < 100e3:
+        raise InputError(f"sweep {text} is in Hz and below 100 kHz: did you mean {a:g}e6:{b:g}e6:{n} (MHz)?")
+    check_hz(a, parts[0], "sweep start")
+    check_hz(b, parts[1], "sweep stop")
+    if not (a < b) or not (2 <= n <= 100000):
+        raise InputError(f"sweep needs start < stop and 2..100000 points, got '{text}'")
     return [a + (b - a) * i / (n - 1) for i in range(n)]

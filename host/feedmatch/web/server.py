@@ -277,7 +277,8 @@ class Station:
         try:
             ans = await asyncio.get_running_loop().run_in_executor(None, self.watch.request, word, args)
         except BoardRefused as e:
-            return web.json_response({"error": f"the board refused: {e.why}", "detail": e.detail}, status=409)
+            return web.json_response({"error": f"the board refused: {e.words}", "why": e.why, "detail": e.detail},
+                                     status=409)
         except LinkError as e:
             return web.json_response({"error": str(e)}, status=503)
         return web.json_response(ans)
