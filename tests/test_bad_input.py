@@ -56,6 +56,8 @@ CASES = [
     (["serve", "--db", "nothere.sqlite"], "logbook nothere.sqlite does not exist"),
     (["serve", "--port", "loop://", "--allow-control-file", "nothere-token"], "does not exist"),
     (["serve", "--port", "loop://", "--idle-timeout", "0"], "--idle-timeout must be"),
+    (["status", "--port", "loop://", "--timeout", "0"], "--timeout must be 0.1 to 120 s"),
+    (["tune", "--port", "loop://", "--baud", "0"], "--baud must be 300 to 4000000"),
     (["calibrate", "--rehearse", "--port", "/dev/null"], "leave out --port"),
     (["score", "--fault", "L3:stuck-oot"], "kind must be stuck-out, stuck-in or drift=P%"),
     (["score", "--fault", "L9:stuck-out"], "the bank has L0..L6"),

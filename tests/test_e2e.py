@@ -219,7 +219,11 @@ def test_operator_commands_over_the_pty(tmp_path):
         r = run_cli("report", "--db", str(db), "--json")
         vals = json.loads(r.stdout)["bands"][0]["most_used_values"]
         assert vals is not None and vals["l_uh"] > 0 and vals["c_pf"] > 0
-        r = run_cli("memory", "--port", pty, "--clear", "--json")
+        r = run_cli("memory", "--port", pty, "--clear", "--json")  # no terminal to ask on: refused
+        assert r.returncode == 2 and "--yes" in r.stderr
+        r = run_cli("memory", "--port", pty, "--json")
+        assert len(json.loads(r.stdout)["entries"]) == 1
+        r = run_cli("memory", "--port", pty, "--clear", "--yes", "--json")
         assert r.returncode == 0 and json.loads(r.stdout) == {"cleared": True}
         r = run_cli("memory", "--port", pty, "--json")
         assert json.loads(r.stdout)["entries"] == []

@@ -11,17 +11,24 @@ from feedmatch.outpaths import output_dir, output_file
 
 
 def _link(a: argparse.Namespace):
+    import math
+
     from feedmatch.board.link import BoardLink
 
+    if not (math.isfinite(a.timeout) and 0.1 <= a.timeout <= 120):
+        raise InputError(f"--timeout must be 0.1 to 120 s, got {a.timeout:g}")
+    if not 300 <= a.baud <= 4_000_000:
+        raise InputError(f"--baud must be 300 to 4000000 bit/s, got {a.baud}")
     return BoardLink(a.port, a.baud, timeout=a.timeout).open()
 
 
 def _add_port(s) -> None:
     s.add_argument("--port", required=True,
                    help="device path, pyserial URL (socket://, rfc2217://, loop://) or auto")
-    s.add_argument("--baud", type=int, default=115200)
-    s.add_argument("--timeout", type=float, default=2.0)
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--baud", type=int, default=115200, help="serial speed in bit/s (default 115200)")
+    s.add_argument("--timeout", type=float, default=2.0,
+                   help="seconds to wait for each answer of the board (default 2; 0.1 to 120)")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
 def _state_text(r, bank=None) -> str:
@@ -253,6 +260,16 @@ def cmd_bypass(a) -> int:
 def cmd_memory(a) -> int:
     from feedmatch.cli.output import emit_json
 
+    if a.clear and not a.yes:
+        # Every stored state goes, on the box, for good: ask first.
+        if not sys.stdin.isatty():
+            raise InputError("--clear wipes every stored state on the box: add --yes to confirm")
+        sys.stderr.write(f"clear every stored state on the board at {a.port}? This cannot be undone. "
+                         "Type yes: ")
+        sys.stderr.flush()
+        if sys.stdin.readline().strip().lower() != "yes":
+            sys.stderr.write("nothing was cleared\n")
+            return 1
     with _link(a) as ln:
         if a.clear:
             ln.request("mem-clear")
@@ -743,23 +760,25 @@ def add_commands(sub) -> None:
 
     s = sub.add_parser("bypass", help="put the tuner through (or back in line with --off)")
     _add_port(s)
-    s.add_argument("--off", action="store_true")
+    s.add_argument("--off", action="store_true", help="put the network back in line instead")
     s.set_defaults(fn=cmd_bypass)
 
     s = sub.add_parser("memory", help="list (or --clear) the stored states")
     _add_port(s)
-    s.add_argument("--clear", action="store_true")
+    s.add_argument("--clear", action="store_true",
+                   help="wipe every stored state on the box (asks first; --yes does not ask)")
+    s.add_argument("--yes", action="store_true", help="with --clear: do not ask for confirmation")
     s.set_defaults(fn=cmd_memory)
 
     s = sub.add_parser("log", help="log every tune into an SQLite logbook until stopped")
     _add_port(s)
-    s.add_argument("--db", required=True)
+    s.add_argument("--db", required=True, help="the SQLite logbook file (made if missing; its directory must exist)")
     s.set_defaults(fn=cmd_log)
 
     s = sub.add_parser("serve", help="a live web page of the station (board state, logbook, charts)")
     s.add_argument("--port", help="the board's serial port (optional: without it, the logbook alone)")
-    s.add_argument("--baud", type=int, default=115200)
-    s.add_argument("--db", help="the logbook to show")
+    s.add_argument("--baud", type=int, default=115200, help="serial speed in bit/s (default 115200)")
+    s.add_argument("--db", help="the logbook to show (an existing file: `feedmatch log` makes it)")
     s.add_argument("--listen", default="127.0.0.1", help="address to bind (default 127.0.0.1: this machine only)")
     s.add_argument("--http-port", type=int, default=8765, help="TCP port of the page (default 8765)")
     s.add_argument("--allow-host", action="append", metavar="NAME",
@@ -782,11 +801,11 @@ def add_commands(sub) -> None:
     s.set_defaults(fn=cmd_serve)
 
     s = sub.add_parser("report", help="per-band table and antenna-health flags from the logbook")
-    s.add_argument("--db", required=True)
+    s.add_argument("--db", required=True, help="the SQLite logbook that `feedmatch log` writes")
     s.add_argument("--since", help="ISO date, e.g. 2026-11-01")
     s.add_argument("--plots", help="directory for PNG plots")
     s.add_argument("--csv", help="write the tune rows as CSV")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of the table")
     s.set_defaults(fn=cmd_report)
 
     s = sub.add_parser("demo", help="the main job on the built-in simulated station")
