@@ -29,6 +29,7 @@ sysdeps:
 	@command -v rigctld >/dev/null 2>&1 && command -v ampctld >/dev/null 2>&1 && \
 	  command -v chromium >/dev/null 2>&1 || \
 	  { if command -v apt-get >/dev/null 2>&1 && [ "$$(id -u)" = 0 ]; then \
+	      echo "installing Debian's libhamlib-utils (rigctld, ampctld, ampctl) and chromium with apt-get for the tests"; \
 	      (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq libhamlib-utils chromium) \
 	        >/dev/null 2>&1 || echo "note: apt-get could not install libhamlib-utils/chromium; those tests skip"; \
 	    else echo "note: rigctld, ampctld or chromium missing and apt-get not usable here; those tests skip"; fi; }
