@@ -133,13 +133,24 @@ def test_design_command_writes_a_network_the_project_reads(tmp_path):
     from feedmatch.resources import DATA
 
     out, plot = tmp_path / "bank.json", tmp_path / "map.png"
+    board = tmp_path / "board.json"
+    board.write_text((DATA / "boards" / "rp2040.json").read_text())
     r = run_cli("design", "--antenna", str(DATA / "antennas" / "hollow_oak_closed_form.json"),
                 "--bands", "20m,15m", "--boxes", "2", "--points", "9", "--out", str(out), "--plot", str(plot),
-                "--json", timeout=300)
+                "--into-config", str(board), "--json", timeout=300)
     assert r.returncode == 0, r.stderr
     s = json.loads(r.stdout)
     net = load_network(out)
     assert net.inductors_uh == s["proposal"]["inductors_uh"] and len(net.capacitors_pf) == 7
+    # The same banks in the board config that deploy takes, validated as deploy validates it.
+    from fmlogic import config as fcfg
+
+    cfg = json.loads(board.read_text())
+    assert fcfg.validate(cfg) == [] and cfg["network"]["inductors_uh"] == net.inductors_uh
+    assert cfg["network"]["capacitors_pf"] == net.capacitors_pf and (tmp_path / "board.json.bak").exists()
+    r = run_cli("design", "--antenna", str(DATA / "antennas" / "hollow_oak_closed_form.json"),
+                "--into-config", str(out), timeout=60)  # a network file is not a board config
+    assert r.returncode == 2 and "not a board config" in r.stderr
     assert [b["band"] for b in s["bands"]] == ["20m", "15m"]
     # Never worse than the bank the builder has, on any band.
     assert all(b["coverage"] >= b["coverage_now"] for b in s["bands"])

@@ -281,7 +281,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--points", type=int, default=31, help="frequencies per band")
     s.add_argument("--seed", type=int, default=1)
     s.add_argument("--network", help="the bank you have now, for comparison (default: the shipped one)")
-    s.add_argument("--out", help="write the proposal as a network JSON")
+    s.add_argument("--out", help="write the proposal as a network JSON (for simulate, score and design --network)")
+    s.add_argument("--into-config", metavar="CONFIG",
+                   help="also write the proposal into this board config's network section (a .bak is kept): "
+                        "what `deploy --config` takes")
     s.add_argument("--plot", help="coverage map (.png, .svg or .pdf)")
     s.add_argument("--json", action="store_true")
     s.set_defaults(fn=cmd_design)

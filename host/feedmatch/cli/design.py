@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+from pathlib import Path
 from typing import Any
 
 from feedmatch.errors import InputError
@@ -42,6 +43,8 @@ def run_design(a: argparse.Namespace) -> int:
         output_file(a.out, "--out", (".json",))
     if a.plot:
         output_file(a.plot, "--plot", PLOT_SUFFIXES)
+    if a.into_config:
+        _board_config(a.into_config)  # a wrong file is refused before the design runs
     current = load_network(a.network)
     ant = load_antenna(a.antenna)
     p = Progress()
@@ -64,6 +67,8 @@ def run_design(a: argparse.Namespace) -> int:
         with open(a.out, "w", encoding="utf-8") as fh:
             json.dump(doc, fh, indent=2)
             fh.write("\n")
+    if a.into_config:
+        _put_network(a.into_config, prop.to_json())
     if a.plot:
         from feedmatch.plots import design_plot
 
@@ -149,6 +154,43 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
     out.append(f"{s['evaluations']} candidates in {s['design_s']:.1f} s")
     if a.out:
         out.append(f"wrote {a.out}")
+    if a.into_config:
+        out.append(f"wrote the proposed banks into {a.into_config} (previous copy: {a.into_config}.bak); "
+                   f"`feedmatch deploy --config {a.into_config}` puts them on the board")
     if a.plot:
         out.append(f"wrote {a.plot}")
     return out
+
+
+def _board_config(path: str) -> dict:
+    """A board config that `deploy --config` takes, or InputError."""
+    from fmlogic import config as fcfg
+
+    from feedmatch.jsonfile import load_json
+
+    cfg = load_json(path, "--into-config board config")
+    if not isinstance(cfg, dict) or "board" not in cfg:
+        raise InputError(f"--into-config {path} is not a board config (no \"board\" field): give the config "
+                         "you deploy, e.g. a copy of the shipped rp2040.json")
+    errs = fcfg.validate(cfg)
+    if errs:
+        raise InputError(f"--into-config {path}: {errs[0]}")
+    return cfg
+
+
+def _put_network(path: str, net: dict) -> None:
+    """Replace the element values in a board config's network section with the
+    proposal's (the rest of the section, such as failed elements, is kept)."""
+    from fmlogic import config as fcfg
+
+    from feedmatch.jsonfile import write_json_with_backup
+
+    cfg = _board_config(path)
+    sec = dict(cfg.get("network") or {})
+    for k in ("z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q"):
+        sec[k] = net[k]
+    cfg["network"] = sec
+    errs = fcfg.validate(cfg)
+    if errs:
+        raise InputError(f"the proposal does not fit a board config: {errs[0]}")
+    write_json_with_backup(Path(path), cfg)
