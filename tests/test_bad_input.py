@@ -57,6 +57,9 @@ CASES = [
     (["serve", "--port", "loop://", "--allow-control-file", "nothere-token"], "does not exist"),
     (["serve", "--port", "loop://", "--idle-timeout", "0"], "--idle-timeout must be"),
     (["status", "--port", "loop://", "--timeout", "0"], "--timeout must be 0.1 to 120 s"),
+    (["deploy", "--port", "/dev/ttyACM97", "--dry-run"], "there is no device /dev/ttyACM97"),
+    (["deploy", "--port", "/dev/ttyACM97", "--config", "host/feedmatch/data/network_default.json", "--dry-run"],
+     "there is no device"),
     (["tune", "--port", "loop://", "--baud", "0"], "--baud must be 300 to 4000000"),
     (["calibrate", "--rehearse", "--port", "/dev/null"], "leave out --port"),
     (["score", "--fault", "L3:stuck-oot"], "kind must be stuck-out, stuck-in or drift=P%"),
@@ -239,3 +242,12 @@ def test_an_immutable_logbook_is_refused_before_the_port(tmp_path):
         assert book.read_bytes() == before
     finally:
         subprocess.run(["chattr", "-i", str(book)])
+
+
+def test_deploy_refuses_a_network_file_as_its_config(tmp_path):
+    from feedmatch.resources import DATA
+
+    r = run_cli("deploy", "--port", str(tmp_path), "--config", str(DATA / "network_default.json"), "--dry-run",
+                timeout=60)
+    assert r.returncode == 2 and "is a network file" in r.stderr and "--into-config" in r.stderr
+    assert list(tmp_path.iterdir()) == []

@@ -76,6 +76,18 @@ def cmd_deploy(a: argparse.Namespace) -> int:
     from feedmatch.board.deploy import CONFIGS, DirTarget, MpremoteTarget, apply, plan
 
     cfg = Path(a.config) if a.config else CONFIGS / f"{a.board}.json"
+    if a.port.startswith("/") and not Path(a.port).exists():
+        # mpremote would say it "failed to access" the port "(it may be in use)": it is not there.
+        raise InputError(f"there is no device {a.port}: is the board plugged in? (see `ls /dev/ttyACM* "
+                         "/dev/ttyUSB*`)")
+    if a.config and cfg.is_file():
+        from feedmatch.jsonfile import load_json
+
+        doc = load_json(cfg, "board config")
+        if isinstance(doc, dict) and "board" not in doc and "inductors_uh" in doc:
+            raise InputError(f"--config {cfg} is a network file (design --out), not a board config: "
+                             "write the banks into your board config with `feedmatch design ... --into-config "
+                             "CONFIG`")
     if not Path(a.port).is_dir():
         from feedmatch.board.hub import hub_alive, hub_path
 
@@ -179,7 +191,7 @@ def add_board_commands(sub) -> None:
     s.add_argument("--config", help="board config JSON (default: the shipped one for --board)")
     s.add_argument("--compile", action="store_true", help="precompile with mpy-cross to save RAM")
     s.add_argument("--dry-run", action="store_true", help="print the plan only")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     s.set_defaults(fn=cmd_deploy)
 
     s = sub.add_parser("calibrate", help="guided detector calibration into a dummy load")
