@@ -58,6 +58,8 @@ CASES = [
     (["serve", "--port", "loop://", "--idle-timeout", "0"], "--idle-timeout must be"),
     (["status", "--port", "loop://", "--timeout", "0"], "--timeout must be 0.1 to 120 s"),
     (["deploy", "--port", "/dev/ttyACM97", "--dry-run"], "there is no device /dev/ttyACM97"),
+    (["virtual-board", "--emulate", "rp2040", "--image", "README.md"], "is not a UF2 firmware image"),
+    (["virtual-board", "--emulate", "rp2040", "--image", "nothere.uf2"], "--image nothere.uf2 does not exist"),
     (["deploy", "--port", "/dev/ttyACM97", "--config", "host/feedmatch/data/network_default.json", "--dry-run"],
      "there is no device"),
     (["tune", "--port", "loop://", "--baud", "0"], "--baud must be 300 to 4000000"),

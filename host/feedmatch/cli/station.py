@@ -377,6 +377,25 @@ def cmd_report(a) -> int:
     return 0
 
 
+def _check_uf2(path: str) -> None:
+    """InputError unless path starts with a UF2 block (Microsoft's UF2 specification,
+    github.com/microsoft/uf2: magic words 0x0A324655 and 0x9E5D5157, little endian)."""
+    import struct
+    from pathlib import Path
+
+    p = Path(path)
+    try:
+        with p.open("rb") as f:
+            head = f.read(8)
+    except FileNotFoundError:
+        raise InputError(f"--image {p} does not exist") from None
+    except OSError as e:
+        raise InputError(f"--image {p} cannot be read: {e.strerror or e}") from None
+    if len(head) < 8 or struct.unpack("<II", head) != (0x0A324655, 0x9E5D5157):
+        raise InputError(f"--image {p} is not a UF2 firmware image: give MicroPython's .uf2 for the "
+                         "Raspberry Pi Pico")
+
+
 def cmd_virtual_board(a) -> int:
     from feedmatch.sim.station import load_station
     from feedmatch.sim.virtual import VirtualStation
@@ -420,6 +439,8 @@ def cmd_virtual_board(a) -> int:
     if a.dir:
         output_dir(a.dir, "--dir")
     d = a.dir or tempfile.mkdtemp(prefix="feedmatch-board-")
+    if a.image:
+        _check_uf2(a.image)  # a wrong file fails now, not after the emulator's half-minute start
     if a.emulate:
         from feedmatch.sim.emulated import EmulatedStation
         from feedmatch.sim.emulator import EmulatorMissing
