@@ -44,6 +44,12 @@ def _parse_load(text: str) -> complex:
     return z
 
 
+def _rl_text(rl_db: float) -> str:
+    """Return loss for the table: beyond 60 dB no bridge or detector tells one value from
+    another (common practice), and a perfect match's 300 dB is a clip, not a figure."""
+    return f"{'>60':>6}" if rl_db > 60.0 else f"{rl_db:6.1f}"
+
+
 # -- simulate ----------------------------------------------------------------------
 def cmd_simulate(a: argparse.Namespace) -> int:
     from feedmatch.rf import bands
@@ -98,7 +104,7 @@ def cmd_simulate(a: argparse.Namespace) -> int:
         zi = complex(*p["z_in_ohm"])
         line = (f"{p['freq_hz'] / 1e6:9.4f} {zl.real:8.2f}{zl.imag:+9.2f}j {p['l_code']:4d} "
                 f"{p['c_code']:4d} {p['shunt']:>3} {zi.real:8.2f}{zi.imag:+9.2f}j {p['swr']:6.2f} "
-                f"{p['return_loss_db']:6.1f} {100 * p['efficiency']:6.1f}")
+                f"{_rl_text(p['return_loss_db'])} {100 * p['efficiency']:6.1f}")
         if a.power:
             line += f" {p['v_cap_peak']:6.0f}V {p['i_ind_rms']:5.2f}A"
         print(line)
@@ -192,18 +198,19 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("simulate", help="figures of one network state, or the best state")
     s.add_argument("--network", help="network JSON (default: the shipped demo network)")
     s.add_argument("--freq", help="frequency in Hz or a band name such as 40m")
-    s.add_argument("--sweep", help="start:stop:points in Hz")
+    s.add_argument("--sweep", help="start:stop:points in Hz, e.g. 7e6:7.3e6:31")
     s.add_argument("--load", help="load impedance, e.g. 12-150j")
     s.add_argument("--antenna", help="antenna JSON or .s1p file instead of --load")
-    s.add_argument("--l-code", type=int)
-    s.add_argument("--c-code", type=int)
-    s.add_argument("--shunt", default="ant", choices=["tx", "ant"])
+    s.add_argument("--l-code", type=int, help="inductor relay code (0 = no inductance; bit n = inductor n)")
+    s.add_argument("--c-code", type=int, help="capacitor relay code (0 = no capacitance; bit n = capacitor n)")
+    s.add_argument("--shunt", default="ant", choices=["tx", "ant"],
+                   help="side of the network the capacitor is on (default ant)")
     s.add_argument("--best", action="store_true", help="search all states exhaustively")
     s.add_argument("--power", type=_watts, help="forward power in W for voltage/current figures")
     s.add_argument("--ratings", action="store_true",
                    help="worst capacitor voltage / inductor current per band at the best states")
     s.add_argument("--bands", default="all", help="bands for --ratings, e.g. 40m,20m")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print JSON instead of the table")
     s.set_defaults(fn=cmd_simulate)
 
     s = sub.add_parser("loads", help="write a load corpus CSV for the scorer")
@@ -212,9 +219,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--vertical-model", choices=["nec", "closed-form"], default="nec",
                    help="--verticals from NEC-2 antennas with radials (default) or the closed-form monopole")
     s.add_argument("--antenna", help="loads of an antenna over the bands")
-    s.add_argument("--bands", default="all")
+    s.add_argument("--bands", default="all", help="bands for --antenna, e.g. 40m,20m (default all)")
     s.add_argument("--points", type=int, default=11, help="frequencies per band (--antenna)")
-    s.add_argument("--seed", type=int, default=1)
+    s.add_argument("--seed", type=int, default=1, help="random seed (default 1): the same seed, the same corpus")
     s.add_argument("--out", help="output CSV (default: standard output)")
     s.set_defaults(fn=cmd_loads)
 
@@ -222,21 +229,24 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--strategy", default="all", help="grid, model, recall or all")
     s.add_argument("--loads", help="loads CSV (freq_hz,r_ohm,x_ohm); default: 2000 generated")
     s.add_argument("--network", help="network JSON (default: shipped)")
-    s.add_argument("--target", type=float, default=1.5)
-    s.add_argument("--budget", type=int, default=80)
-    s.add_argument("--settle-ms", type=float, default=10.0)
+    s.add_argument("--target", type=float, default=1.5, help="SWR a tune aims for (default 1.5)")
+    s.add_argument("--budget", type=int, default=80, help="most measurements one tune may take (default 80)")
+    s.add_argument("--settle-ms", type=float, default=10.0,
+                   help="relay settling time in ms charged per switch (default 10)")
     s.add_argument("--power", type=_watts, default=10.0, help="tune carrier power, W")
-    s.add_argument("--seed", type=int, default=1)
-    s.add_argument("--ideal-detector", action="store_true")
+    s.add_argument("--seed", type=int, default=1, help="random seed for the detector noise (default 1)")
+    s.add_argument("--ideal-detector", action="store_true", help="noiseless, perfectly calibrated detectors")
     s.add_argument("--directivity", type=float, metavar="DB",
                    help="flat coupler directivity in dB (default: frequency-dependent, 25 dB at 28 MHz)")
-    s.add_argument("--skip-bad", action="store_true")
+    s.add_argument("--skip-bad", action="store_true", help="skip malformed rows of --loads instead of refusing")
     s.add_argument("--boxes", type=int, default=0, help="score on N drawn non-ideal boxes")
-    s.add_argument("--tolerance", type=float, default=0.05)
-    s.add_argument("--strays", default="default", choices=["default", "none"])
+    s.add_argument("--tolerance", type=float, default=0.05,
+                   help="with --boxes: part tolerance as a fraction (default 0.05 = 5 %%)")
+    s.add_argument("--strays", default="default", choices=["default", "none"],
+                   help="with --boxes: the drawn boxes' stray capacitances (default) or none")
     s.add_argument("--fitted", action="store_true",
                    help="with --boxes: give the strategies each box's fitted element values")
-    s.add_argument("--workers", type=int)
+    s.add_argument("--workers", type=int, help="processes to score in (default: one per core)")
     s.add_argument("--fault", metavar="SPEC",
                    help="score on a damaged box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
     s.add_argument("--mark-failed", action="store_true",
@@ -246,7 +256,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.set_defaults(fn=cmd_score)
 
     s = sub.add_parser("bench", help="speed and memory benchmarks")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object (the bench's keys)")
     s.add_argument("--quick", action="store_true", help="fewer repetitions")
     s.add_argument("--only", help="comma-separated keys to run")
     s.add_argument("--save-costs", action="store_true",

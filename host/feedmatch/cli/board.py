@@ -197,13 +197,14 @@ def add_board_commands(sub) -> None:
     s = sub.add_parser("calibrate", help="guided detector calibration into a dummy load")
     s.add_argument("--port", help="the board's serial port")
     s.add_argument("--baud", type=int, default=115200)
-    s.add_argument("--timeout", type=float, default=2.0)
+    s.add_argument("--timeout", type=float, default=2.0, help="seconds to wait for each answer (default 2)")
     s.add_argument("--powers", default="1,2,5,10,25,50,100", help="transmit powers to step through, W")
     s.add_argument("--config", help="board config JSON to update (a backup is kept)")
     s.add_argument("--rehearse", action="store_true",
                    help="practise on the virtual board with a dummy load (no --port; nothing real changes)")
     s.add_argument("--station", help="with --rehearse: station JSON (default: the built-in demo station)")
-    s.add_argument("--samples", type=int, default=16)
+    s.add_argument("--samples", type=int, default=16,
+                   help="detector readings averaged at each power (default 16; the board takes 1 to 64)")
     s.add_argument("--yes", action="store_true", help="take each power as confirmed (scripts and tests)")
     s.add_argument("--reflected", action="store_true",
                    help="second pass with the box reversed (transmitter on ANT, dummy load on TX): "
