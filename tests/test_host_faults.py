@@ -195,3 +195,17 @@ def test_a_real_full_then_read_only_disk(tmp_path):
             vs.stop()
         subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
 
+
+
+def test_log_says_each_tune_it_logs_with_no_sentinel_as_a_number():
+    import io
+
+    out = io.StringIO()
+    lg = Logger("loop://", "unused.sqlite", out=out)
+    lg._say_record({"seq": 7, "freq_hz": 14.2e6, "outcome": "locked", "why": "matched", "swr_before": 999.0,
+                    "swr_after": 1.21})
+    lg._say_record({"seq": 8, "freq_hz": 7.1e6, "outcome": "refused", "why": "no RF", "swr_before": -1.0,
+                    "swr_after": -1.0})
+    lines = out.getvalue().replace("\r\x1b[K", "").splitlines()
+    assert lines == ["#7 14.2000 MHz locked: SWR above 99 -> 1.21 (matched)",
+                     "#8 7.1000 MHz refused: SWR - -> - (no RF)"]

@@ -58,7 +58,21 @@ class Logger:
         rec.setdefault("board_id", self.board_id)
         if self.book.add(rec, when):
             self.added += 1
+            self._say_record(rec)
         self.last_committed = self.book.last_seq(self.board_id)
+
+    def _say_record(self, rec: dict[str, Any]) -> None:
+        """One line per tune logged, on a terminal (the status line is redrawn below it)."""
+        if self.out is None:
+            return
+        f = rec.get("freq_hz") or 0.0
+
+        def swr(x) -> str:
+            return "-" if not isinstance(x, (int, float)) or x < 1.0 else ("above 99" if x >= 99 else f"{x:.2f}")
+        self.out.write(f"\r\x1b[K#{rec.get('seq')} {f / 1e6:.4f} MHz {rec.get('outcome', '?')}: "
+                       f"SWR {swr(rec.get('swr_before'))} -> {swr(rec.get('swr_after'))} "
+                       f"({rec.get('why', '')})\n")
+        self.out.flush()
 
     def _connect(self) -> None:
         # The logger owns the port unless another feedmatch process does; then it
@@ -188,9 +202,13 @@ class Logger:
             return
         s = self.status
         swr = s.get("swr")
-        line = (f"\r{self.board_id} {s.get('state', '?'):<11} "
-                f"{(s.get('freq_hz') or 0) / 1e6:8.4f} MHz  SWR {swr if swr is not None else '-':>6}  "
-                f"records {self.book.last_seq(self.board_id):5d} (+{self.added} this run)  "
-                f"bad frames {self.link.bad_frames if self.link else 0}")
+        swr_t = "-" if not isinstance(swr, (int, float)) or swr < 1.0 else ("above 99" if swr >= 99 else f"{swr:.2f}")
+        # The board numbers every record (refused and reset ones too); the logbook
+        # holds what it could still fetch: the two counts need not agree.
+        n = self.book.count(self.board_id)
+        line = (f"\r\x1b[K{self.board_id} {s.get('state', '?'):<11} "
+                f"{(s.get('freq_hz') or 0) / 1e6:8.4f} MHz  SWR {swr_t:>6}  "
+                f"last record no. {self.book.last_seq(self.board_id)}, {n} in the logbook "
+                f"(+{self.added} this run)  bad frames {self.link.bad_frames if self.link else 0}")
         self.out.write(line)
         self.out.flush()

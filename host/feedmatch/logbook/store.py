@@ -256,6 +256,11 @@ class Logbook:
                               "WHERE boards.board_id=?", (board_id,)).fetchone()
         return int(row[0] or 0)
 
+    def count(self, board_id: str) -> int:
+        """How many of a board's records the logbook holds."""
+        return int(self.db.execute("SELECT COUNT(*) FROM tunes JOIN boards ON boards.id = tunes.board "
+                                   "WHERE boards.board_id=?", (board_id,)).fetchone()[0])
+
     def seqs(self, board_id: str, lo: int = 0, hi: int | None = None) -> set[int]:
         """The record numbers of a board in the logbook, from lo to hi (inclusive)."""
         rows = self.db.execute("SELECT seq FROM tunes JOIN boards ON boards.id = tunes.board "
