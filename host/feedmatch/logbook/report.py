@@ -220,6 +220,77 @@ def write_csv(path: str, rows: list) -> None:
                         for c in cols])
 
 
+TARGET_SWR = 1.5  # the shipped tune.target_swr (fmlogic/config.py); the logbook does not keep the board's
+BIN_HZ = 25000    # the shipped memory.bin_hz: a series joins only tunes of one frequency bin
+
+
+def _band_order(names) -> list[str]:
+    from feedmatch.rf.bands import ALL_BANDS
+
+    rank = {b.name: i for i, b in enumerate(ALL_BANDS)}
+    return sorted(names, key=lambda n: (rank.get(n, len(rank)), n))
+
+
+def _colours(n: int) -> list:
+    from matplotlib import colormaps
+
+    cmap = colormaps["tab10"]
+    return [cmap(i % 10) for i in range(n)]
+
+
+def draw_swr_by_band(ax, by: dict, missed: list) -> None:
+    """SWR after each locked tune over time: one colour per band (in band order), one
+    line per frequency bin (a line never joins two frequencies), the target drawn,
+    the time axis in UTC."""
+    import datetime as dt
+
+    import matplotlib.dates as mdates
+
+    def when(r):
+        t = dt.datetime.fromisoformat(r["time"])
+        return t if t.tzinfo else t.replace(tzinfo=dt.UTC)
+    order = _band_order(by)
+    for band, colour in zip(order, _colours(len(order))):
+        bins = defaultdict(list)
+        for r in by[band]:
+            bins[round((r["freq_hz"] or 0.0) / BIN_HZ)].append(r)
+        for i, (_k, rs) in enumerate(sorted(bins.items())):
+            ax.plot([when(r) for r in rs], [r["swr_after"] for r in rs], "o-", ms=3, color=colour,
+                    label=band if i == 0 else None)
+    with_swr = [r for r in missed if r["swr_after"] is not None and r["swr_after"] > 0]
+    if with_swr:
+        ax.plot([when(r) for r in with_swr], [min(r["swr_after"], 10.0) for r in with_swr],
+                "x", color="red", ms=6, label="not locked (best effort, through)")
+    no_result = [r for r in missed if r not in with_swr]
+    if no_result:
+        # No SWR to show (aborted, fault): marked along the top edge so they are not lost.
+        top = max([r["swr_after"] for rs in by.values() for r in rs] + [2.0])
+        ax.plot([when(r) for r in no_result], [top] * len(no_result), "v",
+                color="0.4", ms=6, label="no result (aborted, fault)")
+    ax.axhline(TARGET_SWR, color="0.3", ls="--", lw=1, label=f"target SWR {TARGET_SWR:g}")
+    ax.set_ylabel("SWR after tune (1 = perfect match)")
+    ax.set_xlabel("time (UTC)")
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d %H:%M", tz=dt.UTC))
+    ax.set_title("SWR after tune by band (one line per 25 kHz frequency bin)")
+    ax.legend(fontsize=8, ncol=4)
+
+
+def draw_states_by_band(ax, by: dict) -> None:
+    """The matched relay states per band, the capacitor's side told apart."""
+    order = _band_order(by)
+    for band, colour in zip(order, _colours(len(order))):
+        for side, mark, word in ((0, "o", "C on tx side"), (1, "^", "C on ant side")):
+            rs = [r for r in by[band] if (r["after_shunt"] or 0) == side]
+            if rs:
+                ax.scatter([r["after_l"] for r in rs], [r["after_c"] for r in rs], s=18, marker=mark, color=colour,
+                           label=f"{band}, {word}")
+    ax.set_xlabel("inductor relay code (L)")
+    ax.set_ylabel("capacitor relay code (C)")
+    ax.set_title("matched states per band (o: C on the transmitter side, ^: on the antenna side)")
+    if by:
+        ax.legend(fontsize=7)
+
+
 def report_plots(outdir: str, rows: list) -> list[Path]:
     from feedmatch.plots import _plt
 
@@ -237,38 +308,14 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
             missed.append(r)
     files = []
     fig, ax = plt.subplots(figsize=(8, 4))
-    import datetime as dt
-
-    for band, rs in by.items():
-        t = [dt.datetime.fromisoformat(r["time"]) for r in rs]
-        ax.plot(t, [r["swr_after"] for r in rs], "o-", ms=3, label=band)
-    with_swr = [r for r in missed if r["swr_after"] is not None and r["swr_after"] > 0]
-    if with_swr:
-        ax.plot([dt.datetime.fromisoformat(r["time"]) for r in with_swr], [r["swr_after"] for r in with_swr],
-                "x", color="red", ms=6, label="not locked (best effort, through)")
-    no_result = [r for r in missed if r not in with_swr]
-    if no_result:
-        # No SWR to show (aborted, fault): marked along the top edge so they are not lost.
-        top = max([r["swr_after"] for rs in by.values() for r in rs] + [r["swr_after"] for r in with_swr] + [2.0])
-        ax.plot([dt.datetime.fromisoformat(r["time"]) for r in no_result], [top] * len(no_result), "v",
-                color="0.4", ms=6, label="no result (aborted, fault)")
-    ax.set_ylabel("SWR after tune")
-    ax.set_title("SWR after tune by band")
-    if by or missed:
-        ax.legend(fontsize=8, ncol=4)
+    draw_swr_by_band(ax, by, missed)
     fig.autofmt_xdate()
     f = d / "swr_by_band.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
     plt.close(fig)
     files.append(f)
     fig, ax = plt.subplots(figsize=(6, 5))
-    for band, rs in by.items():
-        ax.scatter([r["after_l"] for r in rs], [r["after_c"] for r in rs], s=18, label=band)
-    ax.set_xlabel("l_code")
-    ax.set_ylabel("c_code")
-    ax.set_title("matched states per band")
-    if by:
-        ax.legend(fontsize=8)
+    draw_states_by_band(ax, by)
     f = d / "states_by_band.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
     plt.close(fig)
