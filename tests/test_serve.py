@@ -190,6 +190,9 @@ async def _drive(dport: int, url: str, vs) -> bytes:
             # The logbook table (written by `log`) shows the tune's band.
             await page.until("[...document.querySelectorAll('#bands tbody td:first-child')]"
                              ".some(td => td.textContent === '20m')", timeout=30)
+            # When the page last heard from the board and read the logbook, in UTC.
+            upd = await page.js(_text("updated"))
+            assert "board: updated " in upd and "logbook: read " in upd and upd.endswith(" UTC"), upd
             vs.key(0.0)
             shot = await page.call("Page.captureScreenshot", format="png")
             return base64.b64decode(shot["data"])

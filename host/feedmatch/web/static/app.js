@@ -6,7 +6,16 @@ const COLORS = ["#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b"
 
 function fmt(v, digits) { return (v === null || v === undefined) ? "-" : Number(v).toFixed(digits); }
 
+// When the page last heard from the board and last read the logbook, in UTC like the plots.
+const seen = { board: null, logbook: null };
+function stamp(what) {
+  seen[what] = new Date().toISOString().slice(11, 19) + " UTC";
+  $("updated").textContent = "board: " + (seen.board ? "updated " + seen.board : "never updated") +
+    "; logbook: " + (seen.logbook ? "read " + seen.logbook : "never read");
+}
+
 function showStatus(s) {
+  stamp("board");
   $("state").textContent = s.state;
   $("why").textContent = s.why;
   const r = s.relays || [];
@@ -27,6 +36,7 @@ function setLink(text, cls) { const l = $("link"); l.textContent = text; l.class
 function pct(x) { return x === null ? "-" : Math.round(100 * x) + "%"; }
 
 function showView(v) {
+  stamp("logbook");
   $("summary").textContent = (v.lines && v.lines[0]) || (v.error ? v.error : "no logbook");
   const tb = $("bands").querySelector("tbody");
   tb.innerHTML = "";
