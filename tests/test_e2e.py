@@ -219,6 +219,11 @@ def test_operator_commands_over_the_pty(tmp_path):
         r = run_cli("report", "--db", str(db), "--json")
         vals = json.loads(r.stdout)["bands"][0]["most_used_values"]
         assert vals is not None and vals["l_uh"] > 0 and vals["c_pf"] > 0
+        exported = tmp_path / "memory.json"
+        r = run_cli("memory", "--port", pty, "--export", str(exported))
+        doc = json.loads(exported.read_text())
+        assert r.returncode == 0 and doc["format"] == "feedmatch-memory" and len(doc["entries"]) == 1
+        assert abs(doc["entries"][0][0] - 14.2e6) < doc["bin_hz"] and doc["board"].startswith("hollow-oak-1")
         r = run_cli("memory", "--port", pty, "--clear", "--json")  # no terminal to ask on: refused
         assert r.returncode == 2 and "--yes" in r.stderr
         r = run_cli("memory", "--port", pty, "--json")

@@ -260,6 +260,10 @@ def cmd_bypass(a) -> int:
 def cmd_memory(a) -> int:
     from feedmatch.cli.output import emit_json
 
+    if a.export and a.clear:
+        raise InputError("give --export or --clear, not both (export first, then clear)")
+    if a.export:
+        output_file(a.export, "--export", (".json",))
     if a.clear and not a.yes:
         # Every stored state goes, on the box, for good: ask first.
         if not sys.stdin.isatty():
@@ -287,6 +291,21 @@ def cmd_memory(a) -> int:
             if not r["entries"] or start >= r["total"]:
                 break
         bank = None if a.json else ln.bank()
+        status = ln.request("status") if a.export else {}
+    if a.export:
+        import datetime as dt
+        import json
+
+        from feedmatch.logbook.store import board_key
+
+        # The box's memory as a file of its own: kept before a re-flash or a board swap.
+        doc = {"format": "feedmatch-memory", "version": 1, "board": board_key(status),
+               "exported": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"), "bin_hz": r["bin_hz"],
+               "fields": ["freq_hz", "l_code", "c_code", "side (0 tx, 1 ant)", "swr", "t"], "entries": items}
+        with open(a.export, "w", encoding="utf-8") as fh:
+            json.dump(doc, fh, indent=1)
+            fh.write("\n")
+        sys.stderr.write(f"wrote {_plural(len(items), 'stored state')} to {a.export}\n")
     if a.json:
         emit_json({"bin_hz": r["bin_hz"], "entries": items})
         return 0
@@ -789,6 +808,8 @@ def add_commands(sub) -> None:
     s.add_argument("--clear", action="store_true",
                    help="wipe every stored state on the box (asks first; --yes does not ask)")
     s.add_argument("--yes", action="store_true", help="with --clear: do not ask for confirmation")
+    s.add_argument("--export", metavar="FILE.json",
+                   help="also write the stored states to a JSON file (keep it before re-flashing a board)")
     s.set_defaults(fn=cmd_memory)
 
     s = sub.add_parser("log", help="log every tune into an SQLite logbook until stopped")
