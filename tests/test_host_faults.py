@@ -209,3 +209,22 @@ def test_log_says_each_tune_it_logs_with_no_sentinel_as_a_number():
     lines = out.getvalue().replace("\r\x1b[K", "").splitlines()
     assert lines == ["#7 14.2000 MHz locked: SWR above 99 -> 1.21 (matched)",
                      "#8 7.1000 MHz refused: SWR - -> - (no RF)"]
+
+
+@pytest.mark.parametrize("rec,worse", [
+    # relays moved, SWR rose well past the reading's bound: worse
+    ({"swr_before": 1.3, "swr_after": 1.9, "before": [1, 2, 0, 0], "after": [3, 4, 0, 0],
+      "swr_bound": [1.8, 2.0]}, True),
+    # the same state confirmed, a hair higher: noise
+    ({"swr_before": 1.125, "swr_after": 1.134, "before": [11, 22, 0, 0], "after": [11, 22, 0, 0],
+      "swr_bound": [1.01, 1.27]}, False),
+    # moved, but within the bound
+    ({"swr_before": 1.20, "swr_after": 1.25, "before": [1, 2, 0, 0], "after": [3, 4, 0, 0],
+      "swr_bound": [1.1, 1.4]}, False),
+    # a sentinel before (999: no reading) is never compared
+    ({"swr_before": 999.0, "swr_after": 1.3, "before": [0, 0, 1, 1], "after": [3, 4, 0, 0]}, False),
+])
+def test_a_tune_that_ended_worse_is_told_apart_from_reading_noise(rec, worse):
+    from feedmatch.cli.station import ended_worse
+
+    assert ended_worse(rec) is worse

@@ -82,6 +82,20 @@ def _swr_text(swr) -> str:
     return "above 99" if swr >= 99.0 else f"{swr:.3f}"
 
 
+def ended_worse(rec: dict) -> bool:
+    """A tune that left the SWR higher than it found it: only when the relays moved
+    and the SWR rose beyond what two readings of one state differ by (half the
+    bound the board gives, else 2 %); a confirmation of the same state that reads
+    a hair higher is noise, not a worse match."""
+    b, af = rec.get("swr_before"), rec.get("swr_after")
+    if not all(isinstance(x, (int, float)) and 1.0 <= x < 99.0 for x in (b, af)):
+        return False
+    bound = rec.get("swr_bound")
+    noise = (bound[1] - bound[0]) / 2 if isinstance(bound, list) and len(bound) == 2 else 0.02 * b
+    moved = list(rec.get("before") or []) != list(rec.get("after") or [])
+    return moved and af > b + max(noise, 0.01)
+
+
 def _plural(n, one: str, many: str | None = None) -> str:
     return f"{n} {one if n == 1 else (many or one + 's')}"
 
@@ -164,7 +178,7 @@ def cmd_tune(a) -> int:
                          "keyed?\n")
         return 1
     b, af = rec.get("swr_before"), rec.get("swr_after")
-    worse = all(isinstance(x, (int, float)) and 1.0 <= x < 99.0 for x in (b, af)) and af > b + 0.005
+    worse = ended_worse(rec)
     if a.json:
         emit_json(rec)
     else:
