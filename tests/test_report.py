@@ -210,3 +210,21 @@ def test_best_effort_tunes_carry_the_true_swr_they_allow(tmp_path):
     write_csv(str(tmp_path / "t.csv"), rows)
     got = list(csv.DictReader(open(tmp_path / "t.csv")))
     assert got[-1]["outcome"] == "best-effort" and got[-1]["true_swr_high"] == "1.9"
+
+
+def test_the_csv_gives_the_matched_state_in_microhenries_and_picofarads(tmp_path):
+    # The values are the bank's own sums of the switched elements (arithmetic of the bank).
+    import csv
+
+    from feedmatch.logbook.report import write_csv
+
+    bank = _shipped_bank()
+    rows = [dict(_row(1, 7.1e6, 100, 90), time="2026-11-01T10:00:00", board_id="hollow-oak-1", reason="",
+                 swr_before=3.0, after_bypass=0),
+            dict(_row(2, 7.1e6, 100, 90), time="2026-11-01T11:00:00", board_id="another-box", reason="",
+                 swr_before=3.0, after_bypass=0)]
+    write_csv(str(tmp_path / "t.csv"), rows, {"hollow-oak-1": bank})
+    got = list(csv.DictReader(open(tmp_path / "t.csv", encoding="utf-8")))
+    assert float(got[0]["after_l_uh"]) == pytest.approx(bank.lv[100], abs=1e-3)
+    assert float(got[0]["after_c_pf"]) == pytest.approx(bank.cv[90], abs=0.1)
+    assert got[1]["after_l_uh"] == "" and got[1]["after_c_pf"] == ""  # no values known for that board

@@ -399,7 +399,7 @@ def cmd_report(a) -> int:
 
     add_antenna(rep, a.db, a.since)  # health in ohms, from the antenna the tunes measured
     if a.csv:
-        write_csv(a.csv, rep["rows"])
+        write_csv(a.csv, rep["rows"], rep["banks"])
     files = report_plots(a.plots, rep["rows"]) if a.plots else []
     if a.json:
         emit_json({"tunes": rep["tunes"], "bands": rep["bands"], "antenna_notes": rep["antenna_notes"]})

@@ -205,18 +205,25 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
     return out
 
 
-def write_csv(path: str, rows: list) -> None:
+def write_csv(path: str, rows: list, banks: dict[str, Any] | None = None) -> None:
+    """The tune rows as CSV; with banks ({board key: firmware Bank}, as make_report
+    gives them) the matched state also in uH and pF, as the builder measures it."""
     cols = ["time", "board_id", "seq", "band", "freq_hz", "outcome", "reason", "swr_before", "swr_after",
-            "measurements", "duration_ms", "after_l", "after_c", "after_shunt", "after_bypass",
-            "memory_hit", "preset", "rig_hz", "rig_mode", "true_swr_low", "true_swr_high"]
+            "measurements", "duration_ms", "after_l", "after_c", "after_l_uh", "after_c_pf", "after_shunt",
+            "after_bypass", "memory_hit", "preset", "rig_hz", "rig_mode", "true_swr_low", "true_swr_high"]
     with open(path, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
         w.writerow(cols)
         for r in rows:
             # The capacitor side as the tables say it (tx/ant), not the relay's 0/1.
             b = swr_bound(r) or [None, None]
+            bank = (banks or {}).get(_get(r, "board_id"))
+            lc = (_get(r, "after_l"), _get(r, "after_c"))
+            v = state_values(bank, *lc) if None not in lc and not _get(r, "after_bypass") else None
+            vals = {"after_l_uh": round(v[0], 3) if v else None, "after_c_pf": round(v[1], 1) if v else None}
             w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None
-                        else b[0] if c == "true_swr_low" else b[1] if c == "true_swr_high" else _get(r, c)
+                        else b[0] if c == "true_swr_low" else b[1] if c == "true_swr_high"
+                        else vals[c] if c in vals else _get(r, c)
                         for c in cols])
 
 

@@ -89,7 +89,7 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
         say(line)
     plots = report_plots(str(out / "plots"), rep["rows"])
     csv_path = out / "tunes.csv"
-    write_csv(str(csv_path), rep["rows"])
+    write_csv(str(csv_path), rep["rows"], rep["banks"])
     elapsed = time.monotonic() - t_start
     say("")
     say(f"hot-switch violations: {len(violations)}; watchdog resets: {resets}; "
