@@ -319,7 +319,8 @@ def cmd_memory(a) -> int:
         with open(a.export, "w", encoding="utf-8") as fh:
             json.dump(doc, fh, indent=1)
             fh.write("\n")
-        sys.stderr.write(f"wrote {_plural(len(items), 'stored state')} to {a.export}\n")
+        # "wrote" lines go where the other commands print them: standard output (stderr under --json).
+        (sys.stderr if a.json else sys.stdout).write(f"wrote {_plural(len(items), 'stored state')} to {a.export}\n")
     if a.json:
         emit_json({"bin_hz": r["bin_hz"], "entries": items})
         return 0
