@@ -183,6 +183,7 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
 
 
 def test_operator_commands_over_the_pty(tmp_path):
+    lg = None  # so a failure before the logger starts still stops the virtual board below
     p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--carrier", "10@14.2e6",
                           "--dir", str(tmp_path / "flash")], stdout=subprocess.PIPE,
                          stderr=subprocess.PIPE, text=True)
