@@ -42,3 +42,33 @@ def test_a_refusal_is_data():
         ln.request("tune", {"freq_hz": 7.1e6}, retries=0)
     assert (e.value.request, e.value.why) == ("tune", "busy")
     assert isinstance(e.value, LinkError)  # one exception tree for every link failure
+
+
+def test_each_link_failure_has_its_own_type_chosen_where_it_arises(tmp_path):
+    """pyserial's model: one base (LinkError), a subclass per failure a caller acts on;
+    the type, never the message's words, tells them apart."""
+    import os
+
+    from feedmatch.board.link import open_serial
+    from feedmatch.errors import LinkTimeout, PortBusy, PortError, PortMissing
+
+    with pytest.raises(PortMissing, match="cannot open port"):
+        open_serial(str(tmp_path / "ttyUSB9"), 115200)
+    (tmp_path / "notes.txt").write_text("not a port")
+    with pytest.raises(PortError) as e:
+        open_serial(str(tmp_path / "notes.txt"), 115200)
+    assert not isinstance(e.value, (PortMissing, PortBusy))  # a file that is no tty: just unopenable
+    master, slave = os.openpty()
+    try:
+        held = open_serial(os.ttyname(slave), 115200)  # exclusive: pyserial's flock
+        with pytest.raises(PortBusy, match="busy"):
+            open_serial(os.ttyname(slave), 115200)
+        held.close()
+        open_serial(os.ttyname(slave), 115200).close()  # free again once let go
+    finally:
+        os.close(master)
+        os.close(slave)
+    with pytest.raises(LinkTimeout):
+        _link().request("status", retries=0)
+    for t in (PortError, PortMissing, PortBusy, LinkTimeout, BoardRefused):
+        assert issubclass(t, LinkError)

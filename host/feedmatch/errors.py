@@ -1,7 +1,16 @@
 """Errors the command line turns into one clear line and exit status 2.
 
-One tree: every failure of the link is a LinkError; a board that answered but
-said no is the subclass BoardRefused, its reason kept as data.
+One tree, as pyserial's: every failure of the link is a LinkError, and each
+kind a caller acts on is a subclass chosen where the failure arises, so no
+caller tells them apart by their words:
+
+    LinkError
+      PortError         the port could not be opened (the generic case)
+        PortMissing     no such device, or no USB serial port to pick
+        PortBusy        another program holds the port open (its lock)
+        PortOwned       another feedmatch process owns it (its hub is running)
+      LinkTimeout       the board gave no (undamaged) answer in time
+      BoardRefused      the board answered "no"; its reason kept as data
 """
 
 from __future__ import annotations
@@ -13,6 +22,26 @@ class InputError(Exception):
 
 class LinkError(Exception):
     """The serial link failed: port missing, busy, or the board not answering."""
+
+
+class PortError(LinkError):
+    """The port could not be opened (the subclasses say why, where it is known)."""
+
+
+class PortMissing(PortError):
+    """There is no such device (or no USB serial port to pick for "auto")."""
+
+
+class PortBusy(PortError):
+    """Another program holds the port open (its exclusive lock)."""
+
+
+class PortOwned(PortError):
+    """Another feedmatch process owns the port: its hub is running (attach to it)."""
+
+
+class LinkTimeout(LinkError):
+    """No answer to a request within its time, or only damaged ones."""
 
 
 # The firmware's refusal codes (fmlogic/controller.py) in an operator's words.

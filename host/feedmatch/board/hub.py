@@ -27,7 +27,7 @@ from pathlib import Path
 import serial
 from fmlogic import link as frames
 
-from feedmatch.errors import LinkError
+from feedmatch.errors import LinkError, PortBusy, PortOwned
 
 BACKLOG = 128  # connections waiting to be accepted: many tools started at once all get in
 _CRED = struct.Struct("3i")  # struct ucred: pid, uid, gid (Linux, socket(7) SO_PEERCRED)
@@ -153,20 +153,16 @@ class LinkHub:
 
     # -- life --------------------------------------------------------------------------
     def _open_serial(self) -> None:
-        try:
-            self.ser = serial.Serial(self.device, self.baud, timeout=0.05, write_timeout=2.0, exclusive=True)
-        except (serial.SerialException, OSError, ValueError) as e:
-            msg = str(e)
-            if "busy" in msg.lower() or "lock" in msg.lower():
-                raise LinkError(f"port {self.device} is busy (another program has it open)") from None
-            raise LinkError(f"cannot open port {self.device}: {msg}") from None
+        from feedmatch.board.link import open_serial
+
+        self.ser = open_serial(self.device, self.baud)
 
     def start(self) -> LinkHub:
         self._open_serial()
         if self.path.exists():
             if hub_alive(self.path):
                 self.ser.close()
-                raise LinkError(f"another feedmatch process already owns {self.device}")
+                raise PortOwned(f"another feedmatch process already owns {self.device}")
             self.path.unlink()  # left by a process that was killed
         srv = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
         old = os.umask(0o177)
@@ -342,7 +338,8 @@ def ensure_hub(port: str, baud: int = 115200, wait_s: float = 3.0) -> LinkHub | 
             return None
         try:
             return LinkHub(device, baud).start()
-        except LinkError as e:
-            if "busy" not in str(e) and "owns" not in str(e) or time.monotonic() > deadline:
+        except (PortBusy, PortOwned):
+            # The other process that started at this instant: attach to its hub.
+            if time.monotonic() > deadline:
                 raise
             time.sleep(0.2)

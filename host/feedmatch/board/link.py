@@ -9,6 +9,7 @@ disconnect the link closes, waits, reopens and carries on.
 from __future__ import annotations
 
 import collections
+import errno
 import time
 from collections.abc import Callable
 from typing import Any
@@ -17,7 +18,7 @@ import serial
 import serial.tools.list_ports
 from fmlogic import link as frames
 
-from feedmatch.errors import BoardRefused, LinkError
+from feedmatch.errors import BoardRefused, LinkError, LinkTimeout, PortBusy, PortError, PortMissing
 
 # Events kept for a reader that has no handler (wait_event, serve's watcher): the
 # oldest go first, so a tool that never reads them holds at most this many.
@@ -33,11 +34,31 @@ def resolve_port(port: str) -> str:
         return port
     usb = [p for p in serial.tools.list_ports.comports() if p.vid is not None]
     if not usb:
-        raise LinkError("no serial port with USB ids found; give --port")
+        raise PortMissing("no serial port with USB ids found; give --port")
     if len(usb) > 1:
         names = ", ".join(p.device for p in usb)
-        raise LinkError(f"several USB serial ports ({names}); give --port")
+        raise PortError(f"several USB serial ports ({names}); give --port")
     return usb[0].device
+
+
+# pyserial raises SerialException(errno, text) when the system refuses the open or
+# the exclusive lock (serialposix.py): the number says why, never the words.
+_BUSY = (errno.EBUSY, errno.EAGAIN, errno.EWOULDBLOCK)
+
+
+def open_serial(dev: str, baud: int) -> serial.SerialBase:
+    """The serial port dev (a device path, held exclusively, or a pyserial URL) open,
+    or the LinkError subclass that says why not (PortMissing, PortBusy, PortError)."""
+    try:
+        if "://" in dev:
+            return serial.serial_for_url(dev, baudrate=baud, timeout=0.05, write_timeout=2.0)
+        return serial.Serial(dev, baud, timeout=0.05, write_timeout=2.0, exclusive=True)
+    except (serial.SerialException, OSError, ValueError) as e:
+        code = getattr(e, "errno", None)
+        if code in _BUSY:
+            raise PortBusy(f"port {dev} is busy (another program has it open)") from None
+        kind = PortMissing if code == errno.ENOENT else PortError
+        raise kind(f"cannot open port {dev}: {e}") from None
 
 
 def state_values(bank, l_code: int, c_code: int) -> tuple[float, float] | None:
@@ -76,18 +97,7 @@ class BoardLink:
             hp = hub_path(dev)
             if hub_alive(hp):
                 dev = f"fmhub://{hp}"  # another feedmatch process owns the port: attach to it
-        try:
-            if "://" in dev:
-                self.ser = serial.serial_for_url(dev, baudrate=self.baud, timeout=0.05,
-                                                 write_timeout=2.0)
-            else:
-                self.ser = serial.Serial(dev, self.baud, timeout=0.05, write_timeout=2.0,
-                                         exclusive=True)
-        except (serial.SerialException, OSError, ValueError) as e:
-            msg = str(e)
-            if "busy" in msg.lower() or "lock" in msg.lower():
-                raise LinkError(f"port {dev} is busy (another program has it open)") from None
-            raise LinkError(f"cannot open port {dev}: {msg}") from None
+        self.ser = open_serial(dev, self.baud)
         self.reader = frames.LineReader()
         return self
 
@@ -203,7 +213,7 @@ class BoardLink:
                     last_err = f"no answer to {word} within {timeout:g} s"
             finally:
                 self._awaited, self._answer = None, None
-        raise LinkError(last_err)
+        raise LinkTimeout(last_err)
 
     def records_since(self, seq: int, each: Callable[[dict], None] | None = None) -> list[dict[str, Any]]:
         """Every record the board still holds after seq (several requests if needed);

@@ -9,7 +9,7 @@ from typing import Any, TextIO
 
 from feedmatch.board.hub import ensure_hub
 from feedmatch.board.link import BoardLink
-from feedmatch.errors import LinkError
+from feedmatch.errors import LinkError, LinkTimeout, PortError, PortOwned
 from feedmatch.logbook.store import Logbook, board_key
 
 
@@ -154,10 +154,12 @@ class Logger:
                 except LinkError as e:
                     if self.link is not None:
                         self.link.close()
-                    if t_give_up is not None and (time.monotonic() > t_give_up or "cannot open" in str(e)
-                                                  or "busy" in str(e)):
-                        if str(e).startswith("no answer"):
-                            raise LinkError(f"no feedmatch board answers on {self.port} (is it the right "
+                    # A port that cannot be opened ends it at once; a port another feedmatch
+                    # process owns is attached to at the next try (its hub).
+                    hopeless = isinstance(e, PortError) and not isinstance(e, PortOwned)
+                    if t_give_up is not None and (time.monotonic() > t_give_up or hopeless):
+                        if isinstance(e, LinkTimeout):
+                            raise LinkTimeout(f"no feedmatch board answers on {self.port} (is it the right "
                                             "port, and is the board powered?)") from None
                         raise
                     if stop.wait(0.5) or (t_end is not None and time.monotonic() > t_end):
