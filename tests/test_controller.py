@@ -11,6 +11,7 @@ from fmlogic.controller import FAULT, LOCKED, SEEK, WAIT_RF, Controller
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as hs
 
+from .conftest import run_mpy
 from .fakes import FakeBoard, board_config, make_model
 
 
@@ -488,3 +489,84 @@ def test_presets_spare_the_first_carrier_a_mismatch():
     assert r["first_carrier_swr_median_preset"] <= 1.5
     assert r["relay_changes_under_carrier_per_change_preset"] < r["relay_changes_under_carrier_per_change_no_preset"]
     assert r["preset_hot_switches"] == 0
+
+
+def test_mem_put_writes_an_export_back_and_refuses_what_does_not_fit(tmp_path):
+    """memory --import's request: entries as mem-list lists them go back to their
+    own bins, one flash write at the last frame; another bin width without rebin,
+    a code beyond the banks (7 relays: 0..127) or a non-bool flag stores nothing."""
+    m, b, ctl = _setup(tmp_path)
+    run(ctl, 5)
+    _frames(b)
+    relays = ctl._state_list()
+    ents = [[7.1e6, 12, 34, 0, 1.21, 5], [14.2e6 + 25000, 127, 127, 1, 1.0, 9], [28.4e6, 0, 5, 1, 2.5, 7]]
+    a = _ask(b, ctl, 1, "mem-put", {"bin_hz": 25000, "entries": ents[:2], "save": False})
+    assert a[2] == "ok" and a[3]["stored"] == 2 and a[3]["saved"] is False
+    assert not (tmp_path / memory.MEM).exists() or memory.Memory(str(tmp_path), 25000, 50).load() is False
+    a = _ask(b, ctl, 2, "mem-put", {"bin_hz": 25000.0, "entries": ents[2:]})
+    assert a[3] == {"stored": 1, "kept": 0, "entries": 3, "max_entries": 50, "saved": True}
+    listed = _ask(b, ctl, 3, "mem-list", {"start": 0})[3]["entries"]
+    assert [e[:5] for e in listed] == [e[:5] for e in ents]  # back in the bins they were listed for
+    again = memory.Memory(str(tmp_path), 25000, 50)
+    assert again.load() and again.listing() == listed  # on flash
+    # The board's own state wins over a second import unless replace.
+    a = _ask(b, ctl, 4, "mem-put", {"bin_hz": 25000, "entries": [[7.1e6, 1, 1, 1, 1.1, 1]]})
+    assert a[3]["stored"] == 0 and a[3]["kept"] == 1
+    a = _ask(b, ctl, 5, "mem-put", {"bin_hz": 25000, "entries": [[7.1e6, 1, 1, 1, 1.1, 1]], "replace": True})
+    assert a[3]["stored"] == 1 and ctl.mem.lookup(7.1e6)[:3] == (1, 1, 1)
+    # Bins of 10 kHz: refused without rebin; with it, each lands on the 25 kHz bin holding its middle.
+    a = _ask(b, ctl, 6, "mem-put", {"bin_hz": 10000, "entries": [[3.51e6, 2, 2, 0, 1.3, 1]]})
+    assert a[2] == "err" and a[3]["why"] == "other-bins"
+    a = _ask(b, ctl, 7, "mem-put", {"bin_hz": 10000, "entries": [[3.51e6, 2, 2, 0, 1.3, 1]], "rebin": True})
+    assert a[2] == "ok" and ctl.mem.bin_of(3.515e6) in ctl.mem.entries
+    before = ctl.mem.listing()
+    for seq, args, why in (
+            (8, {"bin_hz": 25000, "entries": [[7.2e6, 128, 0, 0, 1.2, 1]]}, "bad-entry"),
+            (9, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 2, 1.2, 1]]}, "bad-entry"),
+            (10, {"bin_hz": 25000, "entries": [[7.3e6, 1, 0, 0, 1.2, 1], [7.2e6, 1, 0, 0, 0.5, 1]]}, "bad-entry"),
+            (11, {"bin_hz": 25000, "entries": [[-7.2e6, 1, 0, 0, 1.2, 1]]}, "bad-entry"),
+            (12, {"bin_hz": 25000, "entries": [[7.2e6, True, 0, 0, 1.2, 1]]}, "bad-entry"),
+            (13, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2]]}, "bad-entry"),
+            (14, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]] * (memory.PUT_MAX + 1)}, "bad-entry"),
+            (15, {"bin_hz": 25000, "entries": []}, "bad-entry"),
+            (16, {"bin_hz": "25000", "entries": [[7.2e6, 1, 0, 0, 1.2, 1]]}, "bad-args"),
+            (17, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]], "save": 1}, "bad-args")):
+        a = _ask(b, ctl, seq, "mem-put", args)
+        assert a[2] == "err" and a[3]["why"] == why, (seq, a)
+    assert ctl.mem.listing() == before  # a frame with one bad entry stored nothing
+    assert ctl._state_list() == relays  # no relay moved
+
+
+def test_mem_put_decides_alike_under_the_unix_port(micropython):
+    """The entry check and the bins an import lands in, on the single- or
+    double-precision port as under CPython (the host runs the same check)."""
+    cases = [[[7.1e6, 12, 34, 0, 1.21, 5]], [[29.7e6 - 1, 0, 0, 1, 99.0, 2147483647]],
+             [[1.8e6, 1, 2, 0, 1.0, 0], [1.8e6 + 9999, 1, 2, 1, 1.5, 3]], [[7.2e6, 128, 0, 0, 1.2, 1]],
+             [[7.2e6, 1, 0, 0, 99.5, 1]], [[7.2e6, 1, 0, 0, 1.2, -1]], [[7.2e6, 1, 0, 0, 1.2, 1.5]],
+             [[0, 1, 0, 0, 1.2, 1]], [[7.2e6, 1, 0, "1", 1.2, 1]], "x", []]
+    code = ("import json\nfrom fmlogic import memory\n"
+            f"for ents in json.loads({json.dumps(json.dumps(cases))}):\n"
+            "    for w in (25000.0, 10000.0, 1000.0):\n"
+            "        e = memory.check_entries(ents, 127, 127)\n"
+            "        m = memory.Memory(None, 25000, 50)\n"
+            "        r = None if e else m.put_many(ents, w, False)\n"
+            "        print(json.dumps([e, r, sorted(m.entries)]))\n")
+    import os
+
+    from .test_strategies import FLOAT32
+
+    ports = [micropython]
+    f32 = os.environ.get("FEEDMATCH_MPY_FLOAT32") or (str(FLOAT32) if FLOAT32.exists() else None)
+    if f32 is not None:
+        ports.append(f32)  # single precision, as on the RP2040 and ESP32
+    outs = [run_mpy(mp, code).split("\n") for mp in ports]
+    want = []
+    for ents in cases:
+        for w in (25000.0, 10000.0, 1000.0):
+            e = memory.check_entries(ents, 127, 127)
+            mm = memory.Memory(None, 25000, 50)
+            r = None if e else mm.put_many(ents, w, False)
+            want.append(json.dumps([e, list(r) if r else r, sorted(mm.entries)]))
+    for out in outs:
+        assert out[:len(want)] == want
+    assert len(outs) == 2 or not FLOAT32.parent.exists()  # the float32 port where ../shared has it

@@ -233,6 +233,24 @@ def test_operator_commands_over_the_pty(tmp_path):
         assert r.returncode == 0 and json.loads(r.stdout) == {"cleared": True}
         r = run_cli("memory", "--port", pty, "--json")
         assert json.loads(r.stdout)["entries"] == []
+        # What was exported goes back: the same states in the same bins, kept on the board's flash.
+        r = run_cli("memory", "--port", pty, "--import", str(exported), "--json")
+        assert r.returncode == 0 and json.loads(r.stdout)["imported"] == 1, r.stderr
+        r = run_cli("memory", "--port", pty, "--json")
+        assert json.loads(r.stdout)["entries"] == doc["entries"]
+        # A file from another board, a malformed one, a code beyond the banks: one line, exit 2.
+        other = tmp_path / "other.json"
+        other.write_text(json.dumps({**doc, "board": "elm-yard-2/0a1b2c3d4e5f"}))
+        broken = tmp_path / "broken.json"
+        broken.write_text(exported.read_text()[:-30])
+        wild = tmp_path / "wild.json"
+        wild.write_text(json.dumps({**doc, "entries": [[7.1e6, 4096, 1, 0, 1.2, 1]]}))
+        for f, words in ((other, "comes from board elm-yard-2"), (broken, "is not valid JSON"),
+                         (wild, "l code not in 0..127")):
+            r = run_cli("memory", "--port", pty, "--import", str(f))
+            assert r.returncode == 2 and words in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
+        r = run_cli("memory", "--port", pty, "--import", str(other), "--mismatch-ok", "--json")
+        assert r.returncode == 0 and json.loads(r.stdout)["kept"] == 1  # the board's own state stays
     finally:
         if lg is not None and lg.poll() is None:
             lg.kill()

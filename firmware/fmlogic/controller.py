@@ -630,6 +630,8 @@ class Controller:
             items = self.mem.listing()
             return True, {"bin_hz": self.mem.bin_hz, "total": len(items), "start": start,
                           "entries": items[start:start + 12]}
+        if word == "mem-put":
+            return self._mem_put(a)
         if word == "mem-clear":
             self.mem.clear()
             return True, {"entries": 0}
@@ -680,6 +682,38 @@ class Controller:
         if word == "ping":
             return True, {"pong": True}
         return False, {"why": "unknown-request", "msg": word[:16]}
+
+    def _mem_put(self, a):
+        """Stored states written into the memory (the host's memory --import):
+        bin_hz (the width of the bins they were listed from), entries (up to
+        memory.PUT_MAX, as mem-list gives them), rebin (bins of another width are
+        refused without it), replace (a bin this box already holds keeps its own
+        state without it), save (false: keep in RAM until the last frame, one
+        flash write for the whole import).  Every entry is checked before any is
+        stored; no relay moves."""
+        if self.tune is not None:
+            return False, {"why": "busy"}
+        if self.state == FAULT:
+            return False, {"why": "fault", "msg": self.why}
+        w = a.get("bin_hz")
+        flags = (a.get("rebin", False), a.get("replace", False), a.get("save", True))
+        for v in flags:
+            if not isinstance(v, bool):
+                return False, {"why": "bad-args", "msg": "rebin, replace and save are true or false"}
+        if not memory._is_num(w) or not 100.0 <= w <= 1e7:
+            return False, {"why": "bad-args", "msg": "bin_hz"}
+        own = self.mem.bin_hz
+        if not flags[0] and abs(w - own) > own * 1e-6:
+            return False, {"why": "other-bins", "msg": "%g Hz here, %g Hz in the request" % (own, w)}
+        ents = a.get("entries")
+        err = memory.check_entries(ents, self.bank.l_max, self.bank.c_max)
+        if err:
+            return False, {"why": "bad-entry", "msg": err}
+        stored, kept = self.mem.put_many(ents, float(w), flags[1])
+        if flags[2]:
+            self.mem.flush()
+        return True, {"stored": stored, "kept": kept, "entries": self.mem.n,
+                      "max_entries": self.mem.max_entries, "saved": not self.mem.dirty}
 
     def _cfg_set(self, a):
         if self.tune is not None:

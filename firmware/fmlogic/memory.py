@@ -353,12 +353,71 @@ class Memory:
         self.dirty = False
         return True
 
+    def put_many(self, ents, from_bin_hz, replace):
+        """Entries [freq_hz, l, c, shunt, swr, t_s] (as listing() gives them, checked
+        by check_entries) into the memory: the host's import of an exported memory.
+        Each goes to the bin that holds the middle of the bin it was listed for
+        (from_bin_hz wide), so an export from bins of this width lands exactly where
+        it came from, whatever the float precision.  A bin that already holds a
+        state keeps it unless replace (what this box learned itself is the better
+        guess).  Returns (stored, kept); nothing is written until flush()."""
+        stored = 0
+        kept = 0
+        half = from_bin_hz / 2.0
+        for e in ents:
+            b = int((e[0] + half) // self.bin_hz)
+            if not replace and self._find(b)[1]:
+                kept += 1
+                continue
+            self._put(b, e[1], e[2], e[3], int(e[4] * 1000 + 0.5), int(e[5]))
+            stored += 1
+        if stored:
+            self.dirty = True
+        return stored, kept
+
     def listing(self):
         out = []
         for i in range(self.n):
             e = self._entry(i)
             out.append([self.bins[i] * self.bin_hz, e[0], e[1], e[2], e[3], e[4]])
         return out
+
+
+# At most this many entries in one mem-put request (about 50 bytes each in the frame).
+PUT_MAX = 16
+_T_MAX = 2147483647  # the time stamps' array holds 32-bit signed integers
+
+
+def _is_int(v):
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_num(v):
+    return (isinstance(v, int) or isinstance(v, float)) and not isinstance(v, bool) and v == v
+
+
+def check_entries(ents, l_max, c_max):
+    """None when every entry of a mem-put can be stored, else what is wrong, in
+    short words naming the entry: a frame with one bad entry stores nothing."""
+    if not isinstance(ents, list) or not 1 <= len(ents) <= PUT_MAX:
+        return "entries: a list of 1 to %d" % PUT_MAX
+    for i in range(len(ents)):
+        e = ents[i]
+        if not isinstance(e, list) or len(e) != 6:
+            return "entry %d: not [freq_hz, l, c, shunt, swr, t]" % i
+        if not _is_num(e[0]) or not 0 < e[0] <= 1e9:
+            return "entry %d: freq_hz not in 0..1e9 Hz" % i
+        if not _is_int(e[1]) or not 0 <= e[1] <= l_max:
+            return "entry %d: l code not in 0..%d" % (i, l_max)
+        if not _is_int(e[2]) or not 0 <= e[2] <= c_max:
+            return "entry %d: c code not in 0..%d" % (i, c_max)
+        if not _is_int(e[3]) or not 0 <= e[3] <= 1:
+            return "entry %d: shunt not 0 or 1" % i
+        if not _is_num(e[4]) or not 1.0 <= e[4] <= 99.0:
+            return "entry %d: swr not in 1..99" % i
+        if not _is_num(e[5]) or not 0 <= e[5] <= _T_MAX:
+            return "entry %d: t not a time stamp in s" % i
+    return None
 
 
 def _mem_gen(p):

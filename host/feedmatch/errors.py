@@ -56,6 +56,8 @@ REFUSALS = {
     "not-a-request": "the frame was not a request",
     "reply-too-long": "its answer would be too long for the link",
     "button": "the button on the box was pressed",
+    "other-bins": "its memory bins are another width than the states sent",
+    "bad-entry": "a stored state sent is out of its range",
 }
 
 

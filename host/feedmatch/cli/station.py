@@ -274,8 +274,12 @@ def cmd_bypass(a) -> int:
 def cmd_memory(a) -> int:
     from feedmatch.cli.output import emit_json
 
-    if a.export and a.clear:
-        raise InputError("give --export or --clear, not both (export first, then clear)")
+    if sum(1 for x in (a.export, a.clear, a.import_) if x) > 1:
+        raise InputError("give one of --export, --clear and --import (export first, then clear, then import)")
+    if a.mismatch_ok and not a.import_:
+        raise InputError("--mismatch-ok goes with --import")
+    if a.import_:
+        return _memory_import(a)
     if a.export:
         output_file(a.export, "--export", (".json",))
     if a.clear and not a.yes:
@@ -306,6 +310,7 @@ def cmd_memory(a) -> int:
                 break
         bank = None if a.json else ln.bank()
         status = ln.request("status") if a.export else {}
+        sections = ln.element_sections() if a.export else None
     if a.export:
         import datetime as dt
         import json
@@ -316,9 +321,15 @@ def cmd_memory(a) -> int:
         doc = {"format": "feedmatch-memory", "version": 1, "board": board_key(status),
                "exported": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"), "bin_hz": r["bin_hz"],
                "fields": ["freq_hz", "l_code", "c_code", "side (0 tx, 1 ant)", "swr", "t"], "entries": items}
+        if sections:
+            # The codes mean these element values only: an import checks them.
+            net = sections["network"]
+            doc["network"] = {"inductors_uh": net.get("inductors_uh"), "capacitors_pf": net.get("capacitors_pf")}
+        # One stored state a line, so the file reads (and diffs) as a table.
+        text = json.dumps({**doc, "entries": [None]}, indent=1).replace(
+            "[\n  null\n ]", "[\n" + ",\n".join("  " + json.dumps(e) for e in items) + "\n ]" if items else "[]")
         with open(a.export, "w", encoding="utf-8") as fh:
-            json.dump(doc, fh, indent=1)
-            fh.write("\n")
+            fh.write(text + "\n")
         # "wrote" lines go where the other commands print them: standard output (stderr under --json).
         (sys.stderr if a.json else sys.stdout).write(f"wrote {_plural(len(items), 'stored state')} to {a.export}\n")
     if a.json:
@@ -328,6 +339,112 @@ def cmd_memory(a) -> int:
     for f, l, c, sh, swr, _t in items:
         print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}"
               f"{_values_text(bank, l, c)}")
+    return 0
+
+
+def _banks_differ(mine: dict, theirs: dict) -> str:
+    """Words naming the first element value that differs by more than 1 % between
+    two network sections, or "" when they are the same banks."""
+    for key, unit in (("inductors_uh", "uH"), ("capacitors_pf", "pF")):
+        a_, b_ = mine.get(key), theirs.get(key)
+        if not isinstance(a_, list) or not isinstance(b_, list):
+            continue
+        if len(a_) != len(b_):
+            return f"{len(b_)} {key.split('_')[0]} in the file, {len(a_)} on this board"
+        for i, (x, y) in enumerate(zip(a_, b_, strict=True)):
+            if isinstance(x, (int, float)) and isinstance(y, (int, float)) and abs(x - y) > 0.01 * abs(x):
+                return f"{key.split('_')[0][0].upper()}{i} is {y:g} {unit} in the file, {x:g} {unit} on this board"
+    return ""
+
+
+def _memory_file(path: str) -> dict:
+    """An exported memory file, its shape checked (the entries' ranges are the board's to check)."""
+    import math
+
+    from feedmatch.jsonfile import load_json
+
+    doc = load_json(path, "memory")
+    where = f"memory file {path}"
+    if doc.get("format") != "feedmatch-memory":
+        raise InputError(f"{where} is not a feedmatch memory export (field 'format')")
+    if doc.get("version") != 1:
+        raise InputError(f"{where}: version {doc.get('version')!r} is not one this feedmatch reads (1)")
+    w = doc.get("bin_hz")
+    if isinstance(w, bool) or not isinstance(w, (int, float)) or not math.isfinite(w) or not 100 <= w <= 1e7:
+        raise InputError(f"{where}: field 'bin_hz' must be 100 to 1e7 Hz, got {w!r}")
+    ents = doc.get("entries")
+    if not isinstance(ents, list):
+        raise InputError(f"{where}: field 'entries' must be a list of [freq_hz, l, c, shunt, swr, t]")
+    for i, e in enumerate(ents):
+        if not isinstance(e, list) or len(e) != 6:
+            raise InputError(f"{where}: entries[{i}] must be [freq_hz, l, c, shunt, swr, t]")
+    if not isinstance(doc.get("board"), str):
+        raise InputError(f"{where}: field 'board' (the board it came from) is missing")
+    return doc
+
+
+def _memory_import(a) -> int:
+    """memory --import: an exported memory written back into a board's memory
+    (mem-put, a frame of at most memory.PUT_MAX states at a time, one flash write
+    at the end). A file from another board, bin width or banks is refused unless
+    --mismatch-ok; the board checks every entry's codes itself."""
+    from fmlogic.memory import PUT_MAX, check_entries
+
+    from feedmatch.cli.output import emit_json
+    from feedmatch.logbook.store import board_key
+
+    doc = _memory_file(a.import_)
+    ents = doc["entries"]
+    with _link(a) as ln:
+        status = ln.request("status")
+        here = board_key(status)
+        own_w = ln.request("mem-list", {"start": 0})["bin_hz"]
+        sections = ln.element_sections()
+        bank = ln.bank()
+        problems = []
+        if doc["board"] != here:
+            problems.append(f"it comes from board {doc['board']}, this is {here}")
+        if abs(doc["bin_hz"] - own_w) > own_w * 1e-6:
+            problems.append(f"its bins are {doc['bin_hz']:g} Hz wide, this board's {own_w:g} Hz "
+                            "(the states would be moved to this board's bins)")
+        if sections and isinstance(doc.get("network"), dict):
+            diff = _banks_differ(sections["network"], doc["network"])
+            if diff:
+                problems.append(f"its element values differ ({diff}): a code there is another network here")
+        if problems and not a.mismatch_ok:
+            raise InputError(f"not imported: {'; '.join(problems)}. Add --mismatch-ok to import it anyway")
+        if bank is not None:
+            # The firmware's own check, before the first frame: a bad entry anywhere stores nothing.
+            for k in range(0, len(ents), PUT_MAX):
+                err = check_entries(ents[k:k + PUT_MAX], bank.l_max, bank.c_max)
+                if err:
+                    n, _, rest = err.partition(": ")
+                    idx = int(n.split()[1]) + k if n.startswith("entry ") else None
+                    raise InputError(f"memory file {a.import_}: "
+                                     + (f"entries[{idx}]: {rest}" if idx is not None else err)
+                                     + "; nothing was imported")
+        stored = kept = 0
+        r: dict = {"entries": status.get("mem_entries", 0), "saved": True, "max_entries": None}
+        for k in range(0, len(ents), PUT_MAX):
+            last = k + PUT_MAX >= len(ents)
+            r = ln.request("mem-put", {"bin_hz": doc["bin_hz"], "entries": ents[k:k + PUT_MAX],
+                                       "rebin": bool(a.mismatch_ok), "save": last})
+            stored += r["stored"]
+            kept += r["kept"]
+    out = {"imported": stored, "kept": kept, "in_file": len(ents), "entries": r["entries"],
+           "max_entries": r["max_entries"], "saved": r["saved"], "board": here}
+    if a.json:
+        emit_json(out)
+    else:
+        print(f"imported {_plural(stored, 'stored state')} of {len(ents)} from {a.import_}"
+              + (f"; {_plural(kept, 'bin')} kept the board's own state" if kept else "")
+              + f"; the board now holds {_plural(r['entries'], 'stored state')}")
+        if r["max_entries"] is not None and status.get("mem_entries", 0) + stored > r["entries"]:
+            print(f"note: the board keeps at most {r['max_entries']}: the oldest states made room")
+    if not r["saved"]:
+        sys.stderr.write("the board could not write its memory to flash: the states are in its RAM only "
+                         "(see status); import again after fixing the flash\n")
+        return 1
     return 0
 
 
@@ -818,13 +935,20 @@ def add_commands(sub) -> None:
     s.add_argument("--off", action="store_true", help="put the network back in line instead")
     s.set_defaults(fn=cmd_bypass)
 
-    s = sub.add_parser("memory", help="list (or --clear) the stored states")
+    s = sub.add_parser("memory", help="list, --export, --import or --clear the stored states")
     _add_port(s)
     s.add_argument("--clear", action="store_true",
                    help="wipe every stored state on the box (asks first; --yes does not ask)")
     s.add_argument("--yes", action="store_true", help="with --clear: do not ask for confirmation")
     s.add_argument("--export", metavar="FILE.json",
                    help="also write the stored states to a JSON file (keep it before re-flashing a board)")
+    s.add_argument("--import", dest="import_", metavar="FILE.json",
+                   help="write the states of an --export file into the board's memory (a bin it already "
+                        "holds keeps the board's own state); a file from another board, bin width or "
+                        "element values is refused without --mismatch-ok")
+    s.add_argument("--mismatch-ok", action="store_true",
+                   help="with --import: import a file from another board identity, bin width (its states "
+                        "move to this board's bins) or element values anyway (off by default)")
     s.set_defaults(fn=cmd_memory)
 
     s = sub.add_parser("log", help="log every tune into an SQLite logbook until stopped")
