@@ -55,3 +55,101 @@ def test_the_files_are_written(tmp_path):
     files = report_plots(str(tmp_path / "p"), [r for rs in ROWS.values() for r in rs])
     assert [f.name for f in files] == ["swr_by_band.png", "states_by_band.png"]
     assert all(f.stat().st_size > 5000 for f in files)
+
+
+def _overlaps(fig) -> list[tuple[str, str]]:
+    """Pairs of drawn texts (titles, axis and tick labels, keys, annotations) whose
+    boxes on the rendered figure intersect: labels that print over each other."""
+    fig.canvas.draw()
+    r = fig.canvas.get_renderer()
+    ticks, shown = set(), set()
+    for ax in fig.axes:
+        for axis, lim, k in ((ax.xaxis, ax.get_xlim(), 0), (ax.yaxis, ax.get_ylim(), 1)):
+            lo, hi = min(lim), max(lim)
+            for t in axis.get_ticklabels(which="both"):
+                ticks.add(id(t))
+                if lo <= t.get_position()[k] <= hi:  # a tick outside the view is never drawn
+                    shown.add(id(t))
+    texts = [t for t in fig.findobj(matplotlib.text.Text) if t.get_visible() and t.get_text().strip()
+             and (id(t) not in ticks or id(t) in shown)]
+    boxes = [(t.get_text(), t.get_window_extent(r)) for t in texts]
+    out = []
+    for i, (a, ba) in enumerate(boxes):
+        for b, bb in boxes[i + 1:]:
+            if ba.overlaps(bb) and ba.intersection(ba, bb).width > 1 and ba.intersection(ba, bb).height > 1:
+                out.append((a, b))
+    return out
+
+
+def test_smith_charts_label_their_circles_where_they_are_drawn():
+    """Each r label sits where its constant-r circle crosses the real axis and each
+    x label beside the end of its arc on the rim: gamma = (z - 1) / (z + 1)
+    (Pozar, Microwave Engineering, 4th ed., sec. 2.4)."""
+    from feedmatch.plots import SMITH_R, SMITH_X, smith_axes
+
+    fig, ax = plt.subplots(figsize=(5, 5))
+    smith_axes(ax, 50.0)
+    r_lab = {t.get_text(): t.get_position() for t in ax.texts if t.get_gid() == "smith-r"}
+    x_lab = {t.get_text(): t.get_position() for t in ax.texts if t.get_gid() == "smith-x"}
+    assert set(r_lab) == {f"{r:g}" for r in SMITH_R}
+    assert set(x_lab) == {f"{s}j{x:g}" for x in SMITH_X for s in "+-"}
+    for text, (gx, _gy) in r_lab.items():
+        z = (1 + gx) / (1 - gx)  # the point on the real axis the label marks
+        assert abs(z - float(text)) < 1e-9
+    for text, (gx, gy) in x_lab.items():
+        g = complex(gx, gy) / abs(complex(gx, gy))  # back onto the rim, where r = 0
+        z = (1 + g) / (1 - g)
+        assert abs(z.real) < 1e-9 and abs(z.imag - float(text.replace("j", ""))) < 1e-9
+    assert "50 ohm" in [t.get_text() for t in ax.texts if t.get_gid() == "smith-z0"][0]
+    assert _overlaps(fig) == []
+    plt.close(fig)
+
+
+def test_measurements_plot_shows_every_strategy_and_no_label_covers_another():
+    from feedmatch.plots import measurements_figure
+
+    # Two strategies with identical counts: overlaid outlines would hide one.
+    same = [{"measurements": m, "oracle_swr": 1.1} for m in (1, 1, 2, 5, 5, 5, 9)]
+    out = [{"strategy": "model", "results": same}, {"strategy": "recall", "results": list(same)},
+           {"strategy": "grid", "results": [{"measurements": 60, "oracle_swr": 1.2}]}]
+    fig = measurements_figure(out, 1.5)
+    ax = fig.axes[0]
+    bars = [p for p in ax.patches]
+    assert len(bars) == 4 + 4 + 1  # one bar per strategy and count, side by side
+    lefts = [round(b.get_x(), 6) for b in bars]
+    assert len(set(lefts)) == len(lefts)  # none drawn over another
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert labels == ["model (median 5)", "recall (median 5)", "grid (median 60)"]
+    fig.canvas.draw()
+    r = fig.canvas.get_renderer()
+    assert not ax.get_legend().get_window_extent(r).overlaps(ax.get_window_extent(r))  # the key covers no bar
+    assert _overlaps(fig) == []
+    plt.close(fig)
+
+
+def test_design_coverage_map_draws_every_band_and_agrees_with_the_table():
+    """Every band gets its panel, titled with the table's coverage, and the drawn
+    worst line counts the uncertain model's widened loads as the table does: with
+    one drawn box the share of frequencies at or below the design SWR on the
+    line is the table's figure (was: the 12 m panel disagreed with 42.7 %)."""
+    import numpy as np
+    from feedmatch.plots import design_figure
+    from feedmatch.rf.antenna import FixedLoad
+    from feedmatch.rf.network import load_network
+    from feedmatch.sim.design import DesignSpec, design
+
+    spec = DesignSpec(["15m", "12m", "10m"], n_l=7, n_c=7, boxes=1, points=9, maxiter=5,
+                      uncertainty={"12m": 0.4})
+    res = design(FixedLoad(20.0, -150.0), spec, load_network(None))
+    fig = design_figure(res, spec.design_swr)
+    panels = [ax for ax in fig.axes if ax.get_title()]
+    assert [ax.get_title().split(":")[0] for ax in panels] == ["15m", "12m", "10m"]
+    for b, ax in enumerate(panels):
+        now, prop = res["score_current"]["bands"][b]["coverage"], res["score"]["bands"][b]["coverage"]
+        assert ax.get_title().startswith(f"{spec.band_names[b]}: {100 * now:.1f}% -> {100 * prop:.1f}%")
+        lines = {ln.get_label(): np.asarray(ln.get_ydata()) for ln in ax.get_lines()}
+        for key, cov in (("now (worst box)", now), ("proposed (worst box)", prop)):
+            assert np.mean(lines[key] <= spec.design_swr + 1e-9) == __import__("pytest").approx(cov)
+    assert "uncertain" in panels[1].get_title() and "uncertain" not in panels[0].get_title()
+    assert _overlaps(fig) == []
+    plt.close(fig)

@@ -22,25 +22,42 @@ def _plt():
     return plt
 
 
-def smith_axes(ax) -> None:
-    """Draw a plain Smith chart grid (constant-r and constant-x circles) on ax."""
+SMITH_R = (0.2, 0.5, 1, 2, 5)  # the constant-resistance circles drawn (normalised r)
+SMITH_X = (0.2, 0.5, 1, 2, 5)  # the constant-reactance arcs drawn, each sign (normalised x)
+_LABEL_BOX = {"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.75}  # legible over points
+
+
+def smith_axes(ax, z0_ohm: float = 50.0) -> None:
+    """Draw a Smith chart grid on ax: constant-r circles and constant-x arcs, each
+    labelled with its normalised value (r where its circle meets the real axis,
+    +jx/-jx where its arc meets the rim), and the reference impedance said."""
     t = np.linspace(0, 2 * np.pi, 400)
     ax.plot(np.cos(t), np.sin(t), color="0.3", lw=1)
-    for r in (0.2, 0.5, 1, 2, 5):
+    for r in SMITH_R:
         c = r / (1 + r)
         rad = 1 / (1 + r)
         ax.plot(c + rad * np.cos(t), rad * np.sin(t), color="0.85", lw=0.6)
-    for x in (0.2, 0.5, 1, 2, 5):
+        # Where the circle crosses the real axis on the left: gamma = (r - 1) / (r + 1).
+        ax.text((r - 1) / (r + 1), 0.02, f"{r:g}", fontsize=6, color="0.25", rotation=90,
+                ha="right", va="bottom", gid="smith-r", zorder=5, bbox=_LABEL_BOX)
+    for x in SMITH_X:
         for s in (1, -1):
             z = 1j * s * x + np.linspace(0, 50, 800)
             g = (z - 1) / (z + 1)
             ax.plot(g.real, g.imag, color="0.85", lw=0.6)
+            rim = (1j * s * x - 1) / (1j * s * x + 1)  # the arc's end on the rim (r = 0)
+            ax.text(1.1 * rim.real, 1.1 * rim.imag, f"{'+' if s > 0 else '-'}j{x:g}", fontsize=6, color="0.35",
+                    ha="center", va="center", gid="smith-x")
     ax.axhline(0, color="0.85", lw=0.6)
+    ax.text(0.0, -1.24, f"r + jx = Z / {z0_ohm:g} ohm", fontsize=6, color="0.35", ha="center", va="center",
+            gid="smith-z0")
     ax.set_aspect("equal")
-    ax.set_xlim(-1.05, 1.05)
-    ax.set_ylim(-1.05, 1.05)
+    ax.set_xlim(-1.22, 1.22)
+    ax.set_ylim(-1.3, 1.22)
     ax.set_xticks([])
     ax.set_yticks([])
+    for side in ax.spines.values():
+        side.set_visible(False)
 
 
 def score_plots(outdir: str | Path, out: list[dict[str, Any]], net: Network,
@@ -69,22 +86,40 @@ def score_plots(outdir: str | Path, out: list[dict[str, Any]], net: Network,
         fig.savefig(f, dpi=110, bbox_inches="tight")
         plt.close(fig)
         files.append(f)
-    fig, ax = plt.subplots(figsize=(7, 4))
-    for o in out:
-        m = [r["measurements"] for r in o["results"] if r["oracle_swr"] <= target]
-        if m:
-            ax.hist(m, bins=np.arange(0, max(m) + 2) - 0.5, histtype="step", label=o["strategy"])
-    ax.set_xlabel("measurements per tune")
-    ax.set_ylabel("loads")
-    ax.set_yscale("log")
-    ax.legend()
-    ax.set_title("measurements per tune (matchable loads)")
+    fig = measurements_figure(out, target)
     f = d / "measurements.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
     plt.close(fig)
     files.append(f)
     files.append(match_range_plot(d / "match_range.png", net, target))
     return files
+
+
+def measurements_figure(out: list[dict[str, Any]], target: float):
+    """Measurements per tune on the matchable loads, one bar per strategy side by
+    side in each count (bars never hide one another as overlaid outlines did), the
+    key outside the axes so it covers no bar."""
+    plt = _plt()
+    fig, ax = plt.subplots(figsize=(8, 4))
+    runs = [(o["strategy"], [r["measurements"] for r in o["results"] if r["oracle_swr"] <= target]) for o in out]
+    runs = [(name, m) for name, m in runs if m]
+    width = 0.8 / max(len(runs), 1)
+    for k, (name, m) in enumerate(runs):
+        counts = np.bincount(np.asarray(m, dtype=int))
+        n = np.nonzero(counts)[0]
+        ax.bar(n - 0.4 + width * (k + 0.5), counts[n], width=width, color=f"C{k}",
+               label=f"{name} (median {float(np.median(m)):g})")
+    ax.set_xlabel("measurements per tune (readings of the coupler)")
+    ax.set_ylabel("loads (log scale)")
+    ax.set_yscale("log")
+    ax.set_ylim(bottom=0.7)  # a count of one still shows
+    ax.yaxis.set_major_formatter(matplotlib_ticker().FuncFormatter(lambda v, _p: f"{v:g}"))
+    ax.xaxis.set_major_locator(matplotlib_ticker().MaxNLocator(integer=True))
+    if runs:
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, title="strategy", title_fontsize=8)
+    ax.set_title(f"measurements per tune (matchable loads, target SWR {target:g})", fontsize=10)
+    fig.tight_layout()
+    return fig
 
 
 def match_range_plot(path: Path, net: Network, target: float,
@@ -112,35 +147,61 @@ def match_range_plot(path: Path, net: Network, target: float,
     return path
 
 
-def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> None:
-    """Coverage map of a design: per band, the best state's SWR over frequency for
-    the bank you have and the proposal (nominal, and the worst drawn box)."""
+SWR_TOP = 3.0  # the coverage map's SWR axis ends here; anything above is drawn on its top edge
+
+
+def design_figure(res: dict[str, Any], design_swr: float):
+    """The coverage map of a design, one panel per band (every band designed for,
+    in the order given): the best state's SWR over frequency for the bank you
+    have and the proposal, on the loads the coverage counts (the model's own
+    and, where the antenna model is uncertain, its widened variants: the worst
+    of them is drawn), the shaded range from the best to the worst drawn box,
+    and each panel's title carrying the table's coverage figures, so the two
+    cannot disagree. SWR above the axis is drawn on its top edge, not lost."""
     plt = _plt()
     loads = res["loads"]
     names = loads.names
-    fig, axes = plt.subplots(1, len(names), figsize=(2.2 * len(names) + 1, 3.8), sharey=True, squeeze=False)
+    now, prop = res["score_current"], res["score"]
+    fig, axes = plt.subplots(1, len(names), figsize=(2.3 * len(names) + 1, 4.0), sharey=True, squeeze=False)
+
+    def top(g):
+        return np.minimum(swr_of(np.asarray(g)), SWR_TOP)
     for b, (ax, name) in enumerate(zip(axes[0], names)):
         m = loads.band == b
         f = loads.f_hz[m] / 1e6
-        ax.plot(f, swr_of(res["score_current"]["best_gamma_boxes_worst"][m]), color="0.55", lw=1.5,
-                label="now (worst box)")
-        ax.plot(f, swr_of(res["score"]["best_gamma_nominal"][m]), color="tab:blue", lw=1, ls="--",
+        ax.fill_between(f, top(prop["best_gamma_boxes_best_all"][m]), top(prop["best_gamma_boxes_worst_all"][m]),
+                        color="tab:blue", alpha=0.15, lw=0, label="proposed (range of drawn boxes)")
+        ax.plot(f, top(now["best_gamma_boxes_worst_all"][m]), color="0.55", lw=1.5, label="now (worst box)")
+        ax.plot(f, top(prop["best_gamma_nominal_all"][m]), color="tab:blue", lw=1, ls="--",
                 label="proposed (nominal)")
-        ax.plot(f, swr_of(res["score"]["best_gamma_boxes_worst"][m]), color="tab:blue", lw=1.8,
+        ax.plot(f, top(prop["best_gamma_boxes_worst_all"][m]), color="tab:blue", lw=1.8,
                 label="proposed (worst box)")
         ax.axhline(design_swr, color="tab:green", lw=0.8)
         ax.axhline(1.5, color="tab:red", lw=0.8)
-        ax.set_title(name, fontsize=9)
+        unc = bool(np.any(loads.z[m, 1] != loads.z[m, 0]))
+        ax.set_title(f"{name}: {100 * now['bands'][b]['coverage']:.1f}% -> {100 * prop['bands'][b]['coverage']:.1f}%"
+                     + ("\n(model uncertain: widened loads)" if unc else ""), fontsize=8)
         ax.set_yscale("log")
-        ax.set_ylim(1.0, 3.0)
-        ax.set_yticks([1.0, 1.3, 1.5, 2.0, 3.0])
-        ax.yaxis.set_major_formatter(matplotlib_ticker().ScalarFormatter())
+        ax.set_ylim(1.0, SWR_TOP * 1.03)
+        ax.set_yticks([1.0, 1.3, 1.5, 2.0, SWR_TOP])
+        ax.yaxis.set_major_formatter(matplotlib_ticker().FixedFormatter(["1.0", "1.3", "1.5", "2.0", "3+"]))
         ax.yaxis.set_minor_formatter(matplotlib_ticker().NullFormatter())
+        ax.xaxis.set_major_locator(matplotlib_ticker().MaxNLocator(3))
         ax.tick_params(labelsize=7)
         ax.set_xlabel("MHz", fontsize=8)
     axes[0][0].set_ylabel(f"best SWR (green: design {design_swr:g}, red: 1.5)", fontsize=8)
-    axes[0][0].legend(fontsize=6, loc="upper left")
-    fig.tight_layout()
+    handles, labels = axes[0][0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="lower center", ncol=4, fontsize=7, frameon=False)
+    fig.suptitle("coverage per band: now -> proposed (share of frequencies and drawn boxes at or below "
+                 f"SWR {design_swr:g})", fontsize=9)
+    fig.tight_layout(rect=(0, 0.08, 1, 0.95))
+    return fig
+
+
+def design_plot(path: str | Path, res: dict[str, Any], design_swr: float) -> None:
+    """Write design_figure to path."""
+    plt = _plt()
+    fig = design_figure(res, design_swr)
     fig.savefig(path, dpi=110)
     plt.close(fig)
 

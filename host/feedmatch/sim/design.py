@@ -338,7 +338,14 @@ def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float,
     return {"bands": rows, "states": states, "v_cap_peak": v_pk, "i_ind_rms": i_rms, "loss_db": loss_db,
             "p_load_w": p_load, "z_seen": loads.z[:, 0],
             "best_gamma_nominal": nom[:, 0], "best_gamma_boxes_worst":
-                np.max([g[:, 0] for g in per_box], axis=0) if per_box else nom[:, 0]}
+                np.max([g[:, 0] for g in per_box], axis=0) if per_box else nom[:, 0],
+            # What the coverage counts: each load's worst variant (the model's own and,
+            # where it is uncertain, the widened ones), nominal and over the drawn boxes.
+            "best_gamma_nominal_all": nom.max(axis=1),
+            "best_gamma_boxes_worst_all": np.max([g.max(axis=1) for g in per_box], axis=0) if per_box
+                else nom.max(axis=1),
+            "best_gamma_boxes_best_all": np.min([g.max(axis=1) for g in per_box], axis=0) if per_box
+                else nom.max(axis=1)}
 
 
 def parts_list(net: Network, score: dict[str, Any], loads: Loads, margin: float,
