@@ -196,3 +196,144 @@ async def _drive(dport: int, url: str, vs) -> bytes:
             vs.key(0.0)
             shot = await page.call("Page.captureScreenshot", format="png")
             return base64.b64decode(shot["data"])
+
+
+# Records what the page writes on its canvases (text, where, in which colour), the
+# last drawing of each canvas only: the test reads the charts as drawn.
+_RECORD_DRAWN = """
+window.__drawn = [];
+const _fill = CanvasRenderingContext2D.prototype.fillText;
+CanvasRenderingContext2D.prototype.fillText = function (t, x, y, ...rest) {
+  const m = this.getTransform();
+  window.__drawn.push({c: this.canvas.id, t: String(t), x: m.a * x + m.c * y + m.e, y: m.b * x + m.d * y + m.f,
+                       fill: this.fillStyle, rot: Math.abs(m.b) > 0.5});
+  return _fill.call(this, t, x, y, ...rest);
+};
+const _clear = CanvasRenderingContext2D.prototype.clearRect;
+CanvasRenderingContext2D.prototype.clearRect = function (...a) {
+  const id = this.canvas.id;
+  window.__drawn = window.__drawn.filter((d) => d.c !== id);
+  return _clear.apply(this, a);
+};
+"""
+
+# The page's band colours (app.js COLORS, matplotlib's tab10), in band order.
+_TAB10 = [(31, 119, 180), (255, 127, 14), (44, 160, 44)]
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Debian's chromium is not installed (`make test` installs it "
+                    "where it may run apt-get)")
+def test_the_page_charts_read_at_a_glance(tmp_path):
+    """The SWR-over-time chart names its axes with units and zone, draws and says the
+    target, keys the bands in band order (logged out of order here); the Smith chart
+    labels its circles, keys the bands and tells the capacitor's side apart."""
+    from feedmatch.logbook.store import Logbook
+
+    db = tmp_path / "station.sqlite"
+    b = Logbook(db)
+    b.start_session("hollow-oak-1", "-")
+    rows = [  # 20m first, then 12m, then 40m: the logbook's order is not the bands'
+        (1, 14.2e6, 1.2, [11, 22, 0], "2026-11-01T10:00:00+00:00"),
+        (2, 24.93e6, 1.3, [5, 12, 0], "2026-11-01T11:00:00+00:00"),
+        (3, 7.1e6, 1.1, [101, 94, 1], "2026-11-02T09:30:00+00:00"),
+        (4, 14.2e6, 1.4, [11, 22, 0], "2026-11-02T12:00:00+00:00")]
+    for seq, f, swr, after, when in rows:
+        b.add({"board_id": "hollow-oak-1", "seq": seq, "freq_hz": f, "swr_before": 3.0, "swr_after": swr,
+               "outcome": "locked", "n": 5, "ms": 400, "after": after + [0]}, when)
+    b.close()
+    http = free_port()
+    p = subprocess.Popen([str(BIN / "feedmatch"), "serve", "--db", str(db), "--http-port", str(http)],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    prof = tmp_path / "chromium-profile"
+    br = None
+    try:
+        assert "read-only" in p.stdout.readline()
+        view = _get(f"http://127.0.0.1:{http}/api/view")[1]
+        assert view["band_order"] == ["40m", "20m", "12m"]
+        br = subprocess.Popen([CHROMIUM, "--headless=new", "--no-sandbox", "--disable-gpu", "--no-first-run",
+                               "--remote-debugging-port=0", f"--user-data-dir={prof}", "--window-size=1200,1000",
+                               "about:blank"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        port_file = prof / "DevToolsActivePort"
+        assert _wait(lambda: port_file.exists() and port_file.read_text().strip(), 30), "chromium did not start"
+        drawn, pix = asyncio.run(_read_charts(int(port_file.read_text().split()[0]), f"http://127.0.0.1:{http}/",
+                                              view))
+    finally:
+        if br is not None:
+            br.kill()
+            br.wait(10)
+        p.send_signal(signal.SIGTERM)
+        p.wait(15)
+    (tmp_path / "charts.png").write_bytes(pix.pop("shot"))
+    swr = [d for d in drawn if d["c"] == "swrtime"]
+    texts = [d["t"] for d in swr]
+    assert "SWR after tune" in texts and [d for d in swr if d["t"] == "SWR after tune"][0]["rot"]
+    assert "time (UTC)" in texts and "target 1.5" in texts
+    # The time axis: the first and last tune's times, in UTC.
+    assert "11-01 10:00" in texts and "11-02 12:00" in texts
+    key = sorted((d for d in swr if d["t"] in ("40m", "20m", "12m")), key=lambda d: d["y"])
+    assert [d["t"] for d in key] == ["40m", "20m", "12m"]
+    # As pictures: the key's swatches in the bands' colours, in band order; the dashed
+    # target line red across the plot at SWR 1.5.
+    for k, rgb in enumerate(pix["swatches"]):
+        assert all(abs(a - b) <= 12 for a, b in zip(rgb, _TAB10[k])), (k, rgb)
+    assert pix["target_red_share"] > 0.4, pix
+    sm = [d["t"] for d in drawn if d["c"] == "smith"]
+    assert {"0.2", "0.5", "1", "2", "5"} <= set(sm)
+    assert {f"{s}j{x}" for x in ("0.2", "0.5", "1", "2", "5") for s in "+-"} <= set(sm)
+    assert [t for t in sm if t in ("40m", "20m", "12m")] == ["40m", "20m", "12m"]
+    assert "C on tx side" in sm and "C on ant side" in sm and "- - SWR 1.5" in sm
+    # The 40m state (capacitor on the antenna side) is drawn as a triangle, 20m's
+    # (transmitter side) as a dot: read from the pixels, the triangle is the wider below.
+    assert pix["ant_width"] >= 6 and pix["tx_width"] <= 4, pix
+    # The antenna's Smith chart is labelled the same way.
+    assert {"0.2", "+j1", "-j1"} <= {d["t"] for d in drawn if d["c"] == "antsmith"}
+
+
+async def _read_charts(dport: int, url: str, view: dict):
+    import aiohttp
+
+    async with aiohttp.ClientSession() as s:
+        async with s.get(f"http://127.0.0.1:{dport}/json/list") as r:
+            targets = await r.json()
+        ws_url = [t for t in targets if t["type"] == "page"][0]["webSocketDebuggerUrl"]
+        async with s.ws_connect(ws_url, max_msg_size=0) as ws:
+            page = _Page(ws)
+            await page.call("Page.enable")
+            await page.call("Page.addScriptToEvaluateOnNewDocument", source=_RECORD_DRAWN)
+            await page.call("Page.navigate", url=url)
+            await page.until("window.__drawn && window.__drawn.some(d => d.c === 'smith' && d.t === '12m')")
+            await page.until("window.__drawn.some(d => d.c === 'antsmith')")
+            drawn = await page.js("window.__drawn")
+            # Pixels read back from the canvases.
+            g40 = [p for p in view["smith"]["40m"]][0]
+            g20 = [p for p in view["smith"]["20m"]][0]
+            pix = await page.js(f"""(() => {{
+              const px = (id, x, y) => Array.from(document.getElementById(id).getContext('2d')
+                .getImageData(Math.round(x), Math.round(y), 1, 1).data.slice(0, 3));
+              const d = window.__drawn.filter(d => d.c === 'swrtime');
+              const key = ['40m', '20m', '12m'].map(b => d.find(e => e.t === b));
+              const swatches = key.map(e => px('swrtime', e.x - 10, e.y - 4));
+              const lab = d.find(e => e.t === 'target 1.5');
+              const c = document.getElementById('swrtime'), g = c.getContext('2d');
+              const row = g.getImageData(52, Math.round(lab.y + 4), c.width - 110 - 52, 1).data;
+              let red = 0;
+              // red: the line is antialiased over two rows, so reddish rather than pure
+              for (let i = 0; i < row.length; i += 4) if (row[i] > row[i + 1] + 50 && row[i] > row[i + 2] + 50) red++;
+              const sc = document.getElementById('smith'), sg = sc.getContext('2d');
+              const rad = sc.width / 2 - 24, cx = sc.width / 2, cy = rad + 20;
+              // How many pixels of a marker's colour lie across a row 2.5 px below its
+              // centre: a triangle is widest there (about 7), a dot of radius 3 narrow (about 3).
+              const width = (g, rgb) => {{
+                const x = cx + g[0] * rad, y = cy - g[1] * rad + 2.5;
+                const d = sg.getImageData(Math.floor(x) - 6, Math.floor(y), 13, 1).data;
+                let n = 0;
+                for (let i = 0; i < d.length; i += 4)
+                  if (Math.abs(d[i] - rgb[0]) + Math.abs(d[i + 1] - rgb[1]) + Math.abs(d[i + 2] - rgb[2]) < 90) n++;
+                return n;
+              }};
+              return {{swatches, target_red_share: red / (row.length / 4),
+                       ant_width: width({json.dumps(g40)}, {json.dumps(list(_TAB10[0]))}),
+                       tx_width: width({json.dumps(g20)}, {json.dumps(list(_TAB10[1]))})}};
+            }})()""")
+            shot = await page.call("Page.captureScreenshot", format="png")
+            return drawn, {**pix, "shot": base64.b64decode(shot["data"])}

@@ -349,13 +349,16 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
         if r["outcome"] == PRESET:
             continue  # no reading was taken
         if r["swr_after"] is not None:
-            series[r["band"]].append([r["time"], r["swr_after"], r["outcome"]])
+            # [time, SWR after, outcome, memory bin]: the page joins a bin's points only.
+            series[r["band"]].append([r["time"], r["swr_after"], r["outcome"], round((r["freq_hz"] or 0.0) / BIN_HZ)])
         if r["outcome"] == LOCKED and r["after_l"] is not None and not r["after_bypass"] and r["freq_hz"]:
             bank = banks.get(r["board_id"], default_bank)
             z = lnet.load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),
                                      int(r["after_shunt"]))
             if z is not None and z.real > 0:
                 g = complex(gamma(z, Z0_OHM))
-                smith[r["band"]].append([round(g.real, 4), round(g.imag, 4)])
+                # [re, im, side]: side 0 the capacitor on the transmitter side, 1 on the antenna side.
+                smith[r["band"]].append([round(g.real, 4), round(g.imag, 4), int(r["after_shunt"])])
     return {"tunes": rep["tunes"], "bands": rep["bands"], "series": series, "smith": smith,
-            "lines": report_lines(rep)}
+            "lines": report_lines(rep), "band_order": _band_order(set(series) | set(smith)),
+            "target_swr": TARGET_SWR}

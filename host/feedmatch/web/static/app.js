@@ -57,55 +57,134 @@ function showView(v) {
     });
     tb.appendChild(tr);
   }
-  drawSeries(v.series || {});
-  drawSmith(v.smith || {});
+  const order = v.band_order || Object.keys(v.series || {});
+  const target = v.target_swr || 1.5;
+  drawSeries(v.series || {}, order, target);
+  drawSmith(v.smith || {}, order, target);
 }
 
-function drawSeries(series) {
+// Bands in band order (the server's), each with its colour on both charts.
+function bandColours(order) {
+  const col = {};
+  order.forEach((b, k) => { col[b] = COLORS[k % COLORS.length]; });
+  return col;
+}
+
+function utc(t) { return new Date(t).toISOString().slice(5, 16).replace("T", " "); }
+
+function drawSeries(series, order, target) {
   const c = $("swrtime"), g = c.getContext("2d");
   g.clearRect(0, 0, c.width, c.height);
+  const bands = order.filter((b) => series[b]);
+  const col = bandColours(order);
   const pts = [];
-  Object.values(series).forEach((rows) => rows.forEach((r) => pts.push(Date.parse(r[0]))));
-  const L = 40, R = c.width - 80, T = 10, B = c.height - 25;
-  g.strokeStyle = "#999"; g.strokeRect(L, T, R - L, B - T);
-  const y = (s) => B - (Math.min(Math.max(s, 1), 3) - 1) / 2 * (B - T);
-  g.fillStyle = "#555"; g.font = "11px sans-serif";
-  [1, 1.5, 2, 3].forEach((s) => { g.fillText(String(s), 8, y(s) + 4);
-    g.strokeStyle = s === 1.5 ? "#d62728" : "#eee"; g.beginPath(); g.moveTo(L, y(s)); g.lineTo(R, y(s)); g.stroke(); });
+  bands.forEach((b) => series[b].forEach((r) => pts.push(Date.parse(r[0]))));
+  const L = 52, R = c.width - 110, T = 12, B = c.height - 44, TOP = 3;
+  g.strokeStyle = "#999"; g.lineWidth = 1; g.strokeRect(L, T, R - L, B - T);
+  const y = (s) => B - (Math.min(Math.max(s, 1), TOP) - 1) / (TOP - 1) * (B - T);
+  g.fillStyle = "#555"; g.font = "11px sans-serif"; g.textAlign = "right";
+  [1, 1.5, 2, 2.5, 3].forEach((s) => {
+    g.fillText(s === TOP ? "3+" : String(s), L - 4, y(s) + 4);
+    g.strokeStyle = "#eee"; g.beginPath(); g.moveTo(L, y(s)); g.lineTo(R, y(s)); g.stroke(); });
+  // The axes' names and units: SWR is a ratio; time in UTC like the report's plots.
+  g.save(); g.translate(12, (T + B) / 2); g.rotate(-Math.PI / 2); g.textAlign = "center";
+  g.fillText("SWR after tune", 0, 0); g.restore();
+  g.textAlign = "center"; g.fillText("time (UTC)", (L + R) / 2, c.height - 6);
+  // The target SWR, drawn and said.
+  g.strokeStyle = "#d62728"; g.setLineDash([5, 3]); g.beginPath(); g.moveTo(L, y(target)); g.lineTo(R, y(target));
+  g.stroke(); g.setLineDash([]);
+  g.fillStyle = "#d62728"; g.textAlign = "left"; g.fillText("target " + target, L + 4, y(target) - 4);
+  g.fillStyle = "#555";
   if (!pts.length) { g.fillText("no tunes logged yet", L + 10, T + 20); return; }
   const t0 = Math.min(...pts), t1 = Math.max(...pts) + 1;
   const x = (t) => L + (t - t0) / (t1 - t0) * (R - L);
-  Object.keys(series).forEach((band, k) => {
-    const col = COLORS[k % COLORS.length];
-    g.fillStyle = col;
-    series[band].forEach((r) => {
+  [t0, (t0 + t1) / 2, t1].forEach((t, i) => {
+    g.textAlign = ["left", "center", "right"][i]; g.fillText(utc(t), x(t), B + 15); });
+  bands.forEach((band) => {
+    const rows = series[band];
+    g.strokeStyle = col[band]; g.fillStyle = col[band]; g.lineWidth = 1;
+    // One line per memory bin: a line never joins two frequencies.
+    const bins = {};
+    rows.forEach((r) => { if (r[2] === "locked") (bins[r[3]] = bins[r[3]] || []).push(r); });
+    Object.values(bins).forEach((rs) => { if (rs.length < 2) return; g.beginPath();
+      rs.forEach((r, i) => { const px = x(Date.parse(r[0])), py = y(r[1]); if (i) g.lineTo(px, py); else g.moveTo(px, py); });
+      g.stroke(); });
+    rows.forEach((r) => {
       const px = x(Date.parse(r[0])), py = y(r[1]);
       if (r[2] === "locked") { g.beginPath(); g.arc(px, py, 3, 0, 2 * Math.PI); g.fill(); }
-      else { g.strokeStyle = col; g.beginPath(); g.moveTo(px - 3, py - 3); g.lineTo(px + 3, py + 3);
+      else { g.beginPath(); g.moveTo(px - 3, py - 3); g.lineTo(px + 3, py + 3);
              g.moveTo(px + 3, py - 3); g.lineTo(px - 3, py + 3); g.stroke(); }
     });
-    g.fillText(band, R + 8, T + 12 + 14 * k);
   });
+  // The key, in band order.
+  g.textAlign = "left";
+  bands.forEach((band, k) => {
+    const ky = T + 12 + 15 * k;
+    g.fillStyle = col[band]; g.beginPath(); g.arc(R + 14, ky - 4, 4, 0, 2 * Math.PI); g.fill();
+    g.fillStyle = "#333"; g.fillText(band, R + 24, ky);
+  });
+  const ky = T + 12 + 15 * bands.length + 6;
+  g.fillStyle = "#333"; g.fillText("o locked", R + 10, ky); g.fillText("x not locked", R + 10, ky + 14);
 }
 
-function drawSmith(smith) {
-  const c = $("smith"), g = c.getContext("2d");
-  g.clearRect(0, 0, c.width, c.height);
-  const cx = c.width / 2, cy = c.height / 2, rad = c.width / 2 - 12;
-  g.strokeStyle = "#bbb";
+const SMITH_R = [0.2, 0.5, 1, 2, 5], SMITH_X = [0.2, 0.5, 1, 2, 5];
+
+// A Smith chart's grid with its circles labelled: r where each circle meets the real
+// axis, +jx / -jx where each arc meets the rim, Z normalised to 50 ohm.
+function smithGrid(g, cx, cy, rad) {
+  g.strokeStyle = "#bbb"; g.lineWidth = 1;
   g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.stroke();
   g.beginPath(); g.moveTo(cx - rad, cy); g.lineTo(cx + rad, cy); g.stroke();
-  [0.2, 1, 3].forEach((r) => {   // constant-resistance circles
-    const rr = rad / (1 + r); g.beginPath(); g.arc(cx + rad - rr, cy, rr, 0, 2 * Math.PI); g.stroke(); });
+  g.strokeStyle = "#ddd";
+  SMITH_R.forEach((r) => { const rr = rad / (1 + r); g.beginPath(); g.arc(cx + rad - rr, cy, rr, 0, 2 * Math.PI); g.stroke(); });
   g.save();                      // constant-reactance arcs, inside the unit circle only
   g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.clip();
-  [0.5, 1, 2].forEach((xv) => [1, -1].forEach((sgn) => {
+  SMITH_X.forEach((xv) => [1, -1].forEach((sgn) => {
     const rr = rad / xv; g.beginPath(); g.arc(cx + rad, cy - sgn * rr, rr, 0, 2 * Math.PI); g.stroke(); }));
   g.restore();
-  Object.keys(smith).forEach((band, k) => {
-    g.fillStyle = COLORS[k % COLORS.length];
-    smith[band].forEach((p) => { g.beginPath(); g.arc(cx + p[0] * rad, cy - p[1] * rad, 3, 0, 2 * Math.PI); g.fill(); });
+  g.fillStyle = "#666"; g.font = "9px sans-serif"; g.textAlign = "center";
+  SMITH_R.forEach((r) => g.fillText(String(r), cx + rad * (r - 1) / (r + 1), cy + 11));
+  SMITH_X.forEach((xv) => [1, -1].forEach((sgn) => {
+    // gamma = (jx - 1) / (jx + 1) on the rim
+    const d = 1 + xv * xv, gr = (xv * xv - 1) / d, gi = sgn * 2 * xv / d;
+    g.fillText((sgn > 0 ? "+j" : "-j") + xv, cx + 1.09 * rad * gr, cy - 1.09 * rad * gi + 3); }));
+}
+
+function drawSmith(smith, order, target) {
+  const c = $("smith"), g = c.getContext("2d");
+  g.clearRect(0, 0, c.width, c.height);
+  const cx = c.width / 2, rad = c.width / 2 - 24, cy = rad + 20;
+  smithGrid(g, cx, cy, rad);
+  // The target: every load inside this circle (|gamma| = (s - 1) / (s + 1)) is matched to it.
+  const gt = (target - 1) / (target + 1);
+  g.strokeStyle = "#d62728"; g.setLineDash([4, 3]); g.beginPath(); g.arc(cx, cy, gt * rad, 0, 2 * Math.PI); g.stroke();
+  g.setLineDash([]);
+  const col = bandColours(order), bands = order.filter((b) => smith[b]);
+  bands.forEach((band) => {
+    g.fillStyle = col[band];
+    smith[band].forEach((p) => {
+      const px = cx + p[0] * rad, py = cy - p[1] * rad;
+      g.beginPath();
+      if (p[2] === 1) { g.moveTo(px, py - 4); g.lineTo(px + 4, py + 3); g.lineTo(px - 4, py + 3); g.closePath(); }
+      else g.arc(px, py, 3, 0, 2 * Math.PI);
+      g.fill();
+    });
   });
+  // The key: bands in band order, the capacitor's side by the marker, the target circle.
+  g.font = "11px sans-serif"; g.textAlign = "left";
+  let kx = 8, ky = cy + rad + 30;
+  bands.forEach((band) => {
+    g.fillStyle = col[band]; g.fillRect(kx, ky - 8, 8, 8); g.fillStyle = "#333"; g.fillText(band, kx + 11, ky);
+    kx += 18 + g.measureText(band).width + 8;
+    if (kx > c.width - 50) { kx = 8; ky += 15; }
+  });
+  ky += 17;
+  g.fillStyle = "#333";
+  g.beginPath(); g.arc(12, ky - 4, 3, 0, 2 * Math.PI); g.fill(); g.fillText("C on tx side", 20, ky);
+  g.beginPath(); g.moveTo(112, ky - 8); g.lineTo(116, ky - 1); g.lineTo(108, ky - 1); g.closePath(); g.fill();
+  g.fillText("C on ant side", 120, ky);
+  g.fillStyle = "#d62728"; g.fillText("- - SWR " + target, 210, ky);
+  g.fillStyle = "#666"; g.fillText("the load each matched state matches, Z / 50 ohm", 8, ky + 15);
 }
 
 // The measured antenna: R and X against frequency with one-sigma bars, the loads on a Smith chart.
@@ -151,11 +230,8 @@ function drawAntenna(a) {
 function drawSmithPoints(c, gs) {
   const g = c.getContext("2d");
   g.clearRect(0, 0, c.width, c.height);
-  const cx = c.width / 2, cy = c.height / 2, rad = c.width / 2 - 12;
-  g.strokeStyle = "#bbb";
-  g.beginPath(); g.arc(cx, cy, rad, 0, 2 * Math.PI); g.stroke();
-  g.beginPath(); g.moveTo(cx - rad, cy); g.lineTo(cx + rad, cy); g.stroke();
-  [0.2, 1, 3].forEach((r) => { const rr = rad / (1 + r); g.beginPath(); g.arc(cx + rad - rr, cy, rr, 0, 2 * Math.PI); g.stroke(); });
+  const cx = c.width / 2, cy = c.height / 2, rad = c.width / 2 - 24;
+  smithGrid(g, cx, cy, rad);
   g.strokeStyle = COLORS[2]; g.fillStyle = COLORS[2];
   gs.forEach((p, i) => {
     const px = cx + p[0] * rad, py = cy - p[1] * rad;
