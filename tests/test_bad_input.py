@@ -26,7 +26,17 @@ CASES = [
     (["simulate", "--freq", "1e300", "--load", "50"], "above 1 GHz"),
     (["loads", "--smith", "99999999999"], "--smith needs a count from 1 to"),
     (["loads", "--smith", "0"], "--smith needs a count from 1 to"),
-    (["loads", "--smith", "10", "--seed", "-1"], "--seed must be 0 or more"),
+    (["loads", "--smith", "10", "--seed", "-1"], "--seed: needs 0 to 4294967295"),
+    (["design", "--antenna", "x.json", "--seed", "-1"], "--seed: needs 0 to 4294967295"),  # was a traceback
+    (["tune", "--port", "loop://", "--wait", "0"], "--wait must be 1 to 600 s"),
+    (["tune", "--port", "loop://", "--wait", "nan"], "--wait must be 1 to 600 s"),
+    (["calibrate", "--rehearse", "--samples", "0"], "--samples must be 1 to 64"),
+    (["calibrate", "--rehearse", "--timeout", "0"], "--timeout must be 0.1 to 120 s"),
+    (["calibrate", "--rehearse", "--baud", "5"], "--baud must be 300 to 4000000"),
+    (["virtual-board", "--rig", "127.0.0.1:1", "--rig-full-power", "0"], "--rig-full-power must be above 0"),
+    (["memory", "--port", "loop://", "--mismatch-ok"], "--mismatch-ok goes with --import"),
+    (["memory", "--port", "loop://", "--import", "nothere.json"], "memory file not found: nothere.json"),
+    (["memory", "--port", "loop://", "--export", "a.json", "--import", "b.json"], "give one of --export"),
     (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
     (["bench", "--only", "typo"], "--only: unknown typo"),
     (["virtual-board", "--carrier", "abc"], "--carrier must be W@Hz or W@band"),
@@ -253,3 +263,24 @@ def test_deploy_refuses_a_network_file_as_its_config(tmp_path):
                 timeout=60)
     assert r.returncode == 2 and "is a network file" in r.stderr and "--into-config" in r.stderr
     assert list(tmp_path.iterdir()) == []
+
+
+def test_every_option_has_help_and_says_its_default():
+    """--help: every option of every command says what it is, and one with a default
+    says it (units go with the words: 'in W', 's', 'bit/s' ...)."""
+    import argparse
+
+    from feedmatch.cli import build_parser
+
+    sub = [a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction)][0]
+    missing = []
+    for name, sp in sub.choices.items():
+        for act in sp._actions:
+            if isinstance(act, argparse._HelpAction):
+                continue
+            flag = "/".join(act.option_strings) or act.dest
+            if not act.help:
+                missing.append(f"{name} {flag}: no help")
+            elif act.default not in (None, False) and "default" not in act.help.lower():
+                missing.append(f"{name} {flag}: default {act.default!r} not said")
+    assert missing == []

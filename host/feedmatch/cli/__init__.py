@@ -33,6 +33,17 @@ def _watts(text: str) -> float:
     return v
 
 
+def _seed(text: str) -> int:
+    """argparse type: a random seed (numpy takes 0 to 2**32 - 1)."""
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"needs a whole number, got '{text}'") from None
+    if not 0 <= v < 2 ** 32:
+        raise argparse.ArgumentTypeError(f"needs 0 to {2 ** 32 - 1}, got '{text}'")
+    return v
+
+
 def _parse_load(text: str) -> complex:
     try:
         z = complex(text.replace(" ", "").replace("i", "j"))
@@ -117,8 +128,6 @@ def cmd_loads(a: argparse.Namespace) -> int:
     from feedmatch.rf.antenna import load_antenna
     from feedmatch.sim.loads import Load, smith_loads, write_loads
 
-    if a.seed < 0:
-        raise InputError(f"--seed must be 0 or more, got {a.seed}")
     if a.out and a.out != "-":
         output_file(a.out, "--out", (".csv",))
     if sum(x is not None for x in (a.smith, a.antenna, a.verticals)) != 1:
@@ -209,7 +218,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--power", type=_watts, help="forward power in W for voltage/current figures")
     s.add_argument("--ratings", action="store_true",
                    help="worst capacitor voltage / inductor current per band at the best states")
-    s.add_argument("--bands", default="all", help="bands for --ratings, e.g. 40m,20m")
+    s.add_argument("--bands", default="all", help="bands for --ratings, e.g. 40m,20m (default all)")
     s.add_argument("--json", action="store_true", help="print JSON instead of the table")
     s.set_defaults(fn=cmd_simulate)
 
@@ -220,26 +229,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="--verticals from NEC-2 antennas with radials (default) or the closed-form monopole")
     s.add_argument("--antenna", help="loads of an antenna over the bands")
     s.add_argument("--bands", default="all", help="bands for --antenna, e.g. 40m,20m (default all)")
-    s.add_argument("--points", type=int, default=11, help="frequencies per band (--antenna)")
-    s.add_argument("--seed", type=int, default=1, help="random seed (default 1): the same seed, the same corpus")
+    s.add_argument("--points", type=int, default=11, help="frequencies per band with --antenna (default 11)")
+    s.add_argument("--seed", type=_seed, default=1, help="random seed (default 1): the same seed, the same corpus")
     s.add_argument("--out", help="output CSV (default: standard output)")
     s.set_defaults(fn=cmd_loads)
 
     s = sub.add_parser("score", help="bench-test search strategies against the oracle")
-    s.add_argument("--strategy", default="all", help="grid, model, recall or all")
+    s.add_argument("--strategy", default="all", help="grid, model, recall or all (default all)")
     s.add_argument("--loads", help="loads CSV (freq_hz,r_ohm,x_ohm); default: 2000 generated")
     s.add_argument("--network", help="network JSON (default: shipped)")
     s.add_argument("--target", type=float, default=1.5, help="SWR a tune aims for (default 1.5)")
     s.add_argument("--budget", type=int, default=80, help="most measurements one tune may take (default 80)")
     s.add_argument("--settle-ms", type=float, default=10.0,
                    help="relay settling time in ms charged per switch (default 10)")
-    s.add_argument("--power", type=_watts, default=10.0, help="tune carrier power, W")
-    s.add_argument("--seed", type=int, default=1, help="random seed for the detector noise (default 1)")
+    s.add_argument("--power", type=_watts, default=10.0, help="tune carrier power in W (default 10)")
+    s.add_argument("--seed", type=_seed, default=1, help="random seed for the detector noise (default 1)")
     s.add_argument("--ideal-detector", action="store_true", help="noiseless, perfectly calibrated detectors")
     s.add_argument("--directivity", type=float, metavar="DB",
                    help="flat coupler directivity in dB (default: frequency-dependent, 25 dB at 28 MHz)")
     s.add_argument("--skip-bad", action="store_true", help="skip malformed rows of --loads instead of refusing")
-    s.add_argument("--boxes", type=int, default=0, help="score on N drawn non-ideal boxes")
+    s.add_argument("--boxes", type=int, default=0,
+                   help="score on N drawn non-ideal boxes (default 0: the ideal box the model describes)")
     s.add_argument("--tolerance", type=float, default=0.05,
                    help="with --boxes: part tolerance as a fraction (default 0.05 = 5 %%)")
     s.add_argument("--strays", default="default", choices=["default", "none"],
@@ -251,7 +261,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="score on a damaged box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
     s.add_argument("--mark-failed", action="store_true",
                    help="with --fault: the box's config marks its stuck elements failed (as selftest --write does)")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     s.add_argument("--plots", help="directory for PNG plots")
     s.set_defaults(fn=cmd_score)
 
@@ -275,28 +285,31 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
     s.add_argument("--exact", action="store_true",
                    help="solve NEC-2 at every frequency instead of sampling adaptively and interpolating")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     s.set_defaults(fn=cmd_antenna)
 
     s = sub.add_parser("design", help="propose element values for an antenna and its bands")
     s.add_argument("--antenna", required=True, help="antenna JSON (NEC-2 or closed form) or .s1p")
-    s.add_argument("--bands", default="40m,30m,20m,17m,15m,12m,10m", help="bands to cover, e.g. 80m,40m,20m")
-    s.add_argument("--power", type=_watts, default=100.0, help="transmitter power for the ratings, W")
-    s.add_argument("--inductors", type=int, default=7, help="inductor relays")
-    s.add_argument("--capacitors", type=int, default=7, help="capacitor relays")
-    s.add_argument("--tolerance", type=float, default=0.05, help="part tolerance as a fraction (0.05 = 5 %%)")
+    s.add_argument("--bands", default="40m,30m,20m,17m,15m,12m,10m",
+                   help="bands to cover, e.g. 80m,40m,20m (default 40m,30m,20m,17m,15m,12m,10m)")
+    s.add_argument("--power", type=_watts, default=100.0, help="transmitter power for the ratings in W (default 100)")
+    s.add_argument("--inductors", type=int, default=7, help="inductor relays, 2 to 10 (default 7)")
+    s.add_argument("--capacitors", type=int, default=7, help="capacitor relays, 2 to 10 (default 7)")
+    s.add_argument("--tolerance", type=float, default=0.05,
+                   help="part tolerance as a fraction, 0 to 0.25 (default 0.05 = 5 %%)")
     s.add_argument("--design-swr", type=float, default=1.3,
-                   help="SWR the best state must reach for a frequency to count as covered")
-    s.add_argument("--boxes", type=int, default=4, help="drawn boxes each candidate is scored on")
-    s.add_argument("--points", type=int, default=31, help="frequencies per band")
-    s.add_argument("--seed", type=int, default=1)
+                   help="SWR the best state must reach for a frequency to count as covered, 1.05 to 2 (default 1.3)")
+    s.add_argument("--boxes", type=int, default=4, help="drawn boxes each candidate is scored on, 1 to 50 (default 4)")
+    s.add_argument("--points", type=int, default=31, help="frequencies per band, 3 to 401 (default 31)")
+    s.add_argument("--seed", type=_seed, default=1,
+                   help="random seed for the drawn boxes and the optimiser (default 1)")
     s.add_argument("--network", help="the bank you have now, for comparison (default: the shipped one)")
     s.add_argument("--out", help="write the proposal as a network JSON (for simulate, score and design --network)")
     s.add_argument("--into-config", metavar="CONFIG",
                    help="also write the proposal into this board config's network section (a .bak is kept): "
                         "what `deploy --config` takes")
     s.add_argument("--plot", help="coverage map (.png, .svg or .pdf)")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     s.set_defaults(fn=cmd_design)
 
     _more_commands(sub)

@@ -124,7 +124,11 @@ def cmd_deploy(a: argparse.Namespace) -> int:
 
 def cmd_calibrate(a: argparse.Namespace) -> int:
     from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.cli.station import check_link_options
 
+    check_link_options(a)
+    if not 1 <= a.samples <= 64:
+        raise InputError(f"--samples must be 1 to 64 readings, got {a.samples}")
     if a.rehearse:
         return _rehearse_calibration(a)
     if not a.port:
@@ -179,15 +183,16 @@ def _rehearse_calibration(a: argparse.Namespace) -> int:
 
 def add_board_commands(sub) -> None:
     s = sub.add_parser("fit-box", help="fit the box's effective element values from the logbook")
-    s.add_argument("--db", required=True)
+    s.add_argument("--db", required=True, help="the SQLite logbook that `feedmatch log` writes (its tunes' readings)")
     s.add_argument("--network", help="nominal network JSON (default: shipped)")
     s.add_argument("--write", metavar="CONFIG", help="write the correction into this board config")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
     s.set_defaults(fn=cmd_fit_box)
 
     s = sub.add_parser("deploy", help="copy the firmware and the board config to a board (mpremote)")
     s.add_argument("--port", required=True, help="serial device of the board, or a directory (for tests)")
-    s.add_argument("--board", choices=["rp2040", "esp32"], default="rp2040")
+    s.add_argument("--board", choices=["rp2040", "esp32"], default="rp2040",
+                   help="the board's chip: rp2040 (Raspberry Pi Pico) or esp32 (default rp2040)")
     s.add_argument("--config", help="board config JSON (default: the shipped one for --board)")
     s.add_argument("--compile", action="store_true", help="precompile with mpy-cross to save RAM")
     s.add_argument("--dry-run", action="store_true", help="print the plan only")
@@ -196,9 +201,10 @@ def add_board_commands(sub) -> None:
 
     s = sub.add_parser("calibrate", help="guided detector calibration into a dummy load")
     s.add_argument("--port", help="the board's serial port")
-    s.add_argument("--baud", type=int, default=115200)
-    s.add_argument("--timeout", type=float, default=2.0, help="seconds to wait for each answer (default 2)")
-    s.add_argument("--powers", default="1,2,5,10,25,50,100", help="transmit powers to step through, W")
+    s.add_argument("--baud", type=int, default=115200, help="serial speed in bit/s (default 115200)")
+    s.add_argument("--timeout", type=float, default=2.0, help="seconds to wait for each answer (default 2; 0.1 to 120)")
+    s.add_argument("--powers", default="1,2,5,10,25,50,100",
+                   help="transmit powers to step through, W (default 1,2,5,10,25,50,100)")
     s.add_argument("--config", help="board config JSON to update (a backup is kept)")
     s.add_argument("--rehearse", action="store_true",
                    help="practise on the virtual board with a dummy load (no --port; nothing real changes)")

@@ -10,16 +10,35 @@ from feedmatch.errors import BoardRefused, InputError, LinkError
 from feedmatch.outpaths import output_dir, output_file
 
 
-def _link(a: argparse.Namespace):
+def check_link_options(a: argparse.Namespace) -> None:
+    """--timeout and --baud within their ranges, before any port is opened (one line, exit 2)."""
     import math
-
-    from feedmatch.board.link import BoardLink
 
     if not (math.isfinite(a.timeout) and 0.1 <= a.timeout <= 120):
         raise InputError(f"--timeout must be 0.1 to 120 s, got {a.timeout:g}")
     if not 300 <= a.baud <= 4_000_000:
         raise InputError(f"--baud must be 300 to 4000000 bit/s, got {a.baud}")
+
+
+def _link(a: argparse.Namespace):
+    from feedmatch.board.link import BoardLink
+
+    check_link_options(a)
     return BoardLink(a.port, a.baud, timeout=a.timeout).open()
+
+
+def _check_wait(a: argparse.Namespace) -> None:
+    import math
+
+    if not (math.isfinite(a.wait) and 1.0 <= a.wait <= 600.0):
+        raise InputError(f"--wait must be 1 to 600 s, got {a.wait:g}")
+
+
+def _check_full_power(a: argparse.Namespace) -> None:
+    import math
+
+    if not (math.isfinite(a.rig_full_power) and 0 < a.rig_full_power <= 10000):
+        raise InputError(f"--rig-full-power must be above 0 and up to 10000 W, got {a.rig_full_power:g}")
 
 
 def _add_port(s) -> None:
@@ -151,6 +170,7 @@ def cmd_tune(a) -> int:
     from feedmatch.cli.output import emit_json
     from feedmatch.rf import bands
 
+    _check_wait(a)
     f = bands.parse_freq(a.freq) if a.freq else 0.0
     deadline = time.monotonic() + a.wait
     with _link(a) as ln:
@@ -204,8 +224,7 @@ def cmd_selftest(a) -> int:
     from feedmatch.board.selftest import run_selftest
     from feedmatch.cli.output import emit_json
 
-    if not 1.0 <= a.wait <= 600.0:
-        raise InputError(f"--wait must be 1 to 600 s, got {a.wait:g}")
+    _check_wait(a)
     with _link(a) as ln:
         res = run_selftest(ln, a.wait, say=(lambda t: None) if a.json else
                            (lambda t: sys.stderr.write(f"feedmatch: {t}\n")))
@@ -586,6 +605,8 @@ def cmd_virtual_board(a) -> int:
     if a.rig:
         from feedmatch.board.rigctl import RigClient, parse_hostport
 
+        _check_full_power(a)
+
         RigClient(*parse_hostport(a.rig)).open().close()  # an unreachable rigctld is one line, now
     if a.dir:
         output_dir(a.dir, "--dir")
@@ -687,15 +708,13 @@ def _carrier_policy(a):
 
 def cmd_follow(a) -> int:
     import datetime as dt
-    import math
     import signal
 
     from feedmatch.board.follow import Follower
     from feedmatch.board.keying import KeyerLock
     from feedmatch.board.rigctl import RigClient, parse_hostport
 
-    if not (math.isfinite(a.rig_full_power) and 0 < a.rig_full_power <= 10000):
-        raise InputError(f"--rig-full-power must be above 0 and up to 10000 W, got {a.rig_full_power:g}")
+    _check_full_power(a)
     host, port = parse_hostport(a.rig)
     policy, notes = _carrier_policy(a)
 
@@ -879,7 +898,8 @@ def add_commands(sub) -> None:
     s.add_argument("--image", help="with --emulate: the MicroPython .uf2 image for the Raspberry Pi Pico")
     s.add_argument("--rig", metavar="HOST:PORT",
                    help="a rigctld radio keys the station: its PTT, frequency and RF power become the carrier")
-    s.add_argument("--rig-full-power", type=float, default=100.0, help="W at RF power level 1.0 (with --rig)")
+    s.add_argument("--rig-full-power", type=float, default=100.0,
+                   help="the radio's power in W at RF power level 1.0 (with --rig; default 100)")
     s.add_argument("--fault", metavar="SPEC",
                    help="damage the simulated box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
     s.add_argument("--heap", type=int, metavar="KB",
@@ -908,7 +928,7 @@ def add_commands(sub) -> None:
     s.add_argument("--station", help="station JSON: its segments, region, antenna, network and board limits")
     s.add_argument("--antenna", help="antenna JSON or .s1p: key only where the box can match it")
     s.add_argument("--rig-full-power", type=float, default=100.0,
-                   help="the radio's power in W at RF power level 1.0 (to set --tune-carrier)")
+                   help="the radio's power in W at RF power level 1.0 (to set --tune-carrier; default 100)")
     s.add_argument("--curve", metavar="DB", help="logbook whose measured antenna gives presets where nothing "
                    "is stored (computed on the box's element values, switched cold, confirmed by the first carrier)")
     s.set_defaults(fn=cmd_follow)
@@ -920,12 +940,13 @@ def add_commands(sub) -> None:
     s = sub.add_parser("tune", help="tune now (a carrier must be keyed) and print the result")
     _add_port(s)
     s.add_argument("--freq", help="frequency hint in Hz or a band name")
-    s.add_argument("--wait", type=float, default=15.0, help="seconds to wait for the result")
+    s.add_argument("--wait", type=float, default=15.0, help="seconds to wait for the result (default 15; 1 to 600)")
     s.set_defaults(fn=cmd_tune)
 
     s = sub.add_parser("selftest", help="step each relay under a tune carrier and name any that misbehaves")
     _add_port(s)
-    s.add_argument("--wait", type=float, default=20.0, help="seconds to wait for the tune that comes first")
+    s.add_argument("--wait", type=float, default=20.0,
+                   help="seconds to wait for the tune that comes first (default 20; 1 to 600)")
     s.add_argument("--write", action="store_true",
                    help="mark a stuck element failed in the board's config (the search then works around it)")
     s.set_defaults(fn=cmd_selftest)
@@ -990,7 +1011,8 @@ def add_commands(sub) -> None:
     s.set_defaults(fn=cmd_report)
 
     s = sub.add_parser("demo", help="the main job on the built-in simulated station")
-    s.add_argument("--out", default="demo-out")
+    s.add_argument("--out", default="demo-out",
+                   help="directory for the demo's logbook, plots and CSV (default demo-out)")
     s.add_argument("--python", action="store_true", help="firmware under CPython")
     s.add_argument("--station", help="station JSON (default: built-in)")
     s.set_defaults(fn=cmd_demo)
