@@ -260,3 +260,53 @@ def test_score_plots_are_written(tmp_path):
     for n in ("smith_model.png", "measurements.png", "match_range.png"):
         assert (tmp_path / "pl" / n).stat().st_size > 5000
     assert "model" in r.stdout and "success" in r.stdout
+
+
+def _recall(hint, leak=0.1, f=24.94e6):
+    from fmlogic import search
+
+    return search.make("recall", NET.firmware_bank(), f, 1.5, 60, hint, leak)
+
+
+def test_a_stored_best_effort_that_reads_as_stored_is_kept_without_a_search():
+    # A leaky coupler (20 dB) at 12 m: a state that reads SWR 1.35 cannot prove 1.5, so the
+    # box stored it as its best effort.  Back on that frequency the same state reads the same:
+    # searching again would only walk the relays under the carrier back to it.
+    from fmlogic import controller
+    from fmlogic.swr import gamma_from_swr
+
+    st = (11, 5, 1)
+    s = _recall(st + (1.35, 0))
+    g = gamma_from_swr(1.35)
+    assert g > s.accept_g  # the premise: not a lock
+    assert s.propose() == st
+    s.observe_gamma(g + 0.005)  # within a reading's noise of what was stored
+    assert s.done and s.n == 1
+    outcome, final, through, _swr, _keep, note = controller.conclude(s)
+    assert outcome == controller.BEST and final == st and not through and "cannot prove" in note
+    # Asked for by the operator, or a state only predicted: the search goes on.
+    s = _recall(st + (1.35, 0))
+    s.retry_best = True
+    assert s.propose() == st
+    s.observe_gamma(g)
+    assert not s.done and s.propose() != st
+    # A reading clearly worse than stored (the antenna changed) searches too.
+    s = _recall(st + (1.35, 0))
+    s.propose()
+    s.observe_gamma(g + 0.1)
+    assert not s.done
+
+
+def test_a_zero_reading_draws_the_contrast_reading_unless_the_detector_was_seen_alive():
+    from fmlogic import search
+
+    st = (5, 18, 1)
+    s = _recall(st + (1.1, 0), leak=0.02, f=14.2e6)
+    assert s.propose() == st
+    s.observe_gamma(0.0)
+    assert not s.done and s.propose() != st  # the contrast state: a dead detector reads zero too
+    s = _recall(st + (1.1, 0), leak=0.02, f=14.2e6)
+    s.ref_alive = True  # the controller saw the reflected detector read a reflection lately
+    s.propose()
+    s.observe_gamma(0.0)
+    assert s.done and s.n == 1 and s.result()[0] == st and s.result()[0] != search.BYPASS

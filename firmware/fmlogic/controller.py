@@ -27,6 +27,11 @@ VERSION = "0.1.0"
 _COLLECT = sys.implementation.name == "micropython"
 _RECORDS_BYTES = 900
 _KEEP_BEST_SWR = 3.0  # a best effort worse than this is not worth recalling
+# How long a reflected detector that read a reflection is trusted to read one: a zero
+# reading of a recalled state within it is a match (an operating session's band changes),
+# after it the contrast reading checks the detector again.  Engineering judgement: a
+# detector that fails mid-session shows at the next cold tune or after this time.
+_REF_TRUST_MS = 600000
 WAIT_RF = "wait-rf"
 SEEK = "seek"
 LOCKED = "locked"
@@ -61,6 +66,8 @@ class Controller:
         self.manual = False  # the operator set relays or bypass: no automatic tunes until asked
         self.preset_f = 0.0  # a preset waits for its confirming reading on the next carrier
         self.preset_hint = None  # a preset the host computed (no memory here): the confirming recall starts there
+        self.ref_seen = None  # ticks_ms of the reflected detector's last reading above its floor
+        self.preset_measured = False  # ... and whether its SWR was read (memory) or predicted (host)
         self.rig = None  # (freq_hz, mode) the host last said the radio is on
         self.frames_bad = 0
         self.hot_refusals = 0
@@ -176,6 +183,8 @@ class Controller:
         self.raw = c
         self.fwd, self.ref = self.meter.powers(c[0], c[1])
         self.rf_w = self.meter.rf_present_w(c[0], c[1])
+        if self.ref > 0.0 and self.fwd > 0.0:
+            self.ref_seen = self.board.ticks_ms()
         return self.fwd, self.ref
 
     def _swr(self):
@@ -279,8 +288,10 @@ class Controller:
     # -- tuning -----------------------------------------------------------------
     def _start_tune(self, f, why):
         hint = self.mem.lookup(f) if f > 0 else None
+        measured = hint is not None
         if hint is None and self.preset_f > 0.0:
             hint = self.preset_hint
+            measured = self.preset_measured
         name = self.t["strategy"]
         if name == "recall" and hint is None:
             name = "model"
@@ -289,6 +300,16 @@ class Controller:
             hint = dmg.reduced(hint[:3]) + (hint[3],)
         strat = search.make(name, dmg.bank if dmg is not None else self.bank, f if f > 0 else 14.0e6,
                             self.t["target_swr"], self.t["budget"], hint[:4] if hint else None, self.cp)
+        # Asked for (the host's request, the button), or a state the host computed (its SWR a
+        # prediction, never read): a best effort is searched again; an automatic tune or a
+        # preset's confirmation keeps a stored best effort that reads as it was stored.
+        strat.retry_best = why in ("request", "button") or not measured
+        # A zero first reading of a stored or preset state is a match, not a dead reflected
+        # detector, when that detector read a reflection lately: no contrast reading (two
+        # relay changes under the carrier).  A cold tune still checks.
+        rs = self.ref_seen
+        strat.ref_alive = (hint is not None and rs is not None
+                           and self.board.ticks_diff(self.board.ticks_ms(), rs) < _REF_TRUST_MS)
         before = self._state_list()
         swr0 = self._swr()
         self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
@@ -506,6 +527,7 @@ class Controller:
         before = self._state_list()
         self.preset_f = float(f)
         self.preset_hint = hint
+        self.preset_measured = src == "memory"
         self.manual = False
         self.freq = float(f)
         self.lock_bin = self.mem.bin_of(f)

@@ -123,6 +123,10 @@ class Strategy:
         self._levels(0.0)
         self.budget = budget
         self.hint = memory_hint
+        # Recall: search again from a best effort that reads as stored (an operator's tune).
+        self.retry_best = False
+        # The controller: the reflected detector read a reflection lately (no contrast reading).
+        self.ref_alive = False
         self.seen = {}
         self.order = []
         self.n = 0
@@ -212,7 +216,7 @@ class Strategy:
             self._finish()
             return
         self._record(state, g)
-        if g <= 0.0 and self._all_zero():
+        if g <= 0.0 and not self.ref_alive and self._all_zero():
             # Nothing reflected at all, on the first reading: a perfect match or
             # a dead reflected detector.  One reading of a state that no load can
             # share a match with tells them apart; without a reading left for it,
@@ -1000,6 +1004,15 @@ class Recall(ModelFit):
             stored = gamma_from_swr(hint[3]) if len(hint) > 3 and hint[3] >= 1.0 else 2.0
             if g <= self.accept_g + _REPEAT and stored <= self.accept_g:
                 # The state was a lock here and reads so again, within a reading's noise.
+                self.confirmed = True
+                return
+            if not self.retry_best and stored <= self.target_g and g <= stored + _REPEAT:
+                # A best effort that read the target but could not prove it (the
+                # coupler's bounds), reading as it did: the same antenna through the
+                # same state, so a search would walk the relays under the carrier only
+                # to come back to it.  It ends best-effort with its bound, as before;
+                # a tune the operator asks for searches again (retry_best), and a
+                # stored state above target is still a start, not an answer.
                 self.confirmed = True
                 return
             if g <= _NEAR:
