@@ -1002,8 +1002,11 @@ class Recall(ModelFit):
             st = (hint[0], hint[1], hint[2])
             g = yield from self._measure(st)
             stored = gamma_from_swr(hint[3]) if len(hint) > 3 and hint[3] >= 1.0 else 2.0
-            if g <= self.accept_g + _REPEAT and stored <= self.accept_g:
-                # The state was a lock here and reads so again, within a reading's noise.
+            if g <= self.accept_g + _REPEAT and stored <= self.accept_g and (self.lock_g < 0.0 or g <= self.lock_g):
+                # The state was a lock here and reads so again, within a reading's
+                # noise, and the reading proves the target (a reading within noise
+                # of the lock level but above it would end best-effort on a state
+                # a few local readings can usually better).
                 self.confirmed = True
                 return
             if not self.retry_best and stored <= self.target_g and g <= stored + _REPEAT:
