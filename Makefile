@@ -40,7 +40,8 @@ test: $(STAMP) sysdeps
 bench: $(STAMP)
 	$(BIN)/python host/benchmarks/run_bench.py
 
-# Refresh the README's example outputs from real runs (tests/test_readme.py checks them).
+# Refresh the README's example outputs from real runs, and their cache tests/readme_runs.json
+# (tests/test_readme.py checks the README against it while the files the runs executed are unchanged).
 readme: $(STAMP)
 	$(BIN)/python -m tests.readme_examples --write
 

@@ -5,11 +5,23 @@ directory, command by command; each command's output must match what the
 README shows after it.  Numbers are compared to 3 significant digits, so a
 last-digit change between numpy builds is not a drift, but any other change is.
 
-    python -m tests.readme_examples --write     rewrite those outputs in README.md
+The runs take minutes, so `--write` also keeps them in CACHE, keyed by a hash
+of every source file they executed (each module the runs imported, found with
+Python's -X importtime, in this checkout), the package data, the NEC-2 engine's
+build files and the commands themselves.  The check compares the README with
+the cache while that key still holds; when any of those files or commands
+changed, it runs the examples for real (and says to refresh the cache).
+
+    python -m tests.readme_examples --write     rewrite the outputs in README.md and the cache
+    python -m tests.readme_examples --live      check by running the examples, whatever the cache
 """
 
 from __future__ import annotations
 
+import hashlib
+import importlib.util
+import json
+import os
 import re
 import shlex
 import subprocess
@@ -23,6 +35,13 @@ BIN = Path(sys.executable).parent
 # Commands that need nothing but this checkout (no board, no running demo, not the bench).
 RUNNABLE = ("simulate", "loads", "score", "antenna")
 _NUM = re.compile(r"[-+]?\d+(?:\.\d+)?(?:e[-+]?\d+)?")
+CACHE = Path(__file__).resolve().parent / "readme_runs.json"
+# Read by the runs but never imported: in the key whatever the import trace says.
+DATA_DIRS = ("host/feedmatch/data", "third_party/necpp")
+# The checkout's own sources; installed packages (numpy, matplotlib...) are not in the key
+# (numbers are compared to 3 significant digits, so a rebuilt numpy is not a drift).
+OWN = ("host/", "firmware/", "third_party/")
+_IMPORT = re.compile(r"^import time:\s+\d+ \|\s+\d+ \|\s*(\S+)\s*$")
 
 
 def blocks(text: str) -> list[tuple[int, int, list[str]]]:
@@ -53,14 +72,79 @@ def steps(body: list[str]) -> list[tuple[str, list[str]]]:
     return out
 
 
-def run(cmd: str, cwd: Path) -> list[str]:
+def run(cmd: str, cwd: Path, modules: set[str] | None = None) -> list[str]:
+    """The command's output lines; with modules, the names of every module it (and any
+    worker process it started) imported are added to that set."""
     argv = shlex.split(cmd)
     argv = [str(ROOT / a) if a.startswith("host/") else a for a in argv]
+    env = dict(os.environ, PYTHONPROFILEIMPORTTIME="1") if modules is not None else None
     r = subprocess.run([str(BIN / argv[0]), *argv[1:]], capture_output=True, text=True, cwd=str(cwd),
-                       timeout=600)
+                       timeout=600, env=env)
     if r.returncode != 0:
         raise AssertionError(f"README command failed: {cmd}\n{r.stderr}")
-    return (r.stdout + r.stderr).rstrip("\n").split("\n")
+    err = r.stderr
+    if modules is not None:
+        kept = []
+        for ln in err.split("\n"):
+            m = _IMPORT.match(ln)
+            if m:
+                modules.add(m.group(1))
+            elif not ln.startswith("import time: self [us]"):
+                kept.append(ln)
+        err = "\n".join(kept)
+    return (r.stdout + err).rstrip("\n").split("\n")
+
+
+def _module_files(modules: set[str]) -> set[str]:
+    """The files of this checkout that hold those modules (paths relative to ROOT)."""
+    out = set()
+    for name in sorted(modules):
+        try:
+            spec = importlib.util.find_spec(name)
+        except (ImportError, ValueError):
+            continue
+        origin = Path(spec.origin).resolve() if spec is not None and spec.origin else None
+        if origin is not None and origin.is_file() and ROOT in origin.parents:
+            rel = origin.relative_to(ROOT).as_posix()
+            if rel.startswith(OWN):
+                out.add(rel)
+    return out
+
+
+def _data_files() -> set[str]:
+    out = set()
+    for d in DATA_DIRS:
+        for p in (ROOT / d).rglob("*"):
+            if p.is_file() and "__pycache__" not in p.parts:
+                out.add(p.relative_to(ROOT).as_posix())
+    return out
+
+
+def cache_key(files: list[str], commands: list[str]) -> str:
+    """sha256 over each file's path and content (a missing file counts as such) and the commands."""
+    h = hashlib.sha256()
+    for f in sorted(files):
+        p = ROOT / f
+        h.update(f.encode() + b"\0" + (hashlib.sha256(p.read_bytes()).digest() if p.is_file() else b"missing"))
+    for c in commands:
+        h.update(b"$ " + c.encode() + b"\n")
+    return h.hexdigest()
+
+
+def _commands(text: str) -> list[str]:
+    return [cmd for _a, _b, body in blocks(text) for cmd, _shown in steps(body)]
+
+
+def cached_runs(text: str) -> dict[str, list[str]] | None:
+    """The cached output of each README command while the cache's key holds, else None."""
+    try:
+        doc = json.loads(CACHE.read_text())
+    except (OSError, ValueError):
+        return None
+    cmds = _commands(text)
+    if not isinstance(doc, dict) or doc.get("key") != cache_key(doc.get("files", []), cmds):
+        return None
+    return doc["runs"]
 
 
 def _norm(line: str) -> tuple[str, list[float]]:
@@ -80,7 +164,22 @@ def same(shown: list[str], got: list[str]) -> str | None:
     return None
 
 
+def check_cached(text: str) -> list[str] | None:
+    """Problems found against the cached runs; None when the cache does not hold."""
+    runs = cached_runs(text)
+    if runs is None:
+        return None
+    problems = []
+    for _a, _b, body in blocks(text):
+        for cmd, shown in steps(body):
+            diff = same(shown, runs[cmd])
+            if diff:
+                problems.append(f"$ {cmd}\n{diff}")
+    return problems
+
+
 def check_all() -> list[str]:
+    """Problems found by running every example for real."""
     problems = []
     for _a, _b, body in blocks(README.read_text()):
         with tempfile.TemporaryDirectory() as d:
@@ -92,21 +191,36 @@ def check_all() -> list[str]:
 
 
 def write() -> None:
+    """Run every example, put its output into README.md, and keep the runs in CACHE."""
     lines = README.read_text().split("\n")
+    modules: set[str] = set()
+    runs: dict[str, list[str]] = {}
     for a, b, body in reversed(blocks("\n".join(lines))):
         new = []
         with tempfile.TemporaryDirectory() as d:
             for cmd, _shown in steps(body):
+                out = run(cmd, Path(d), modules)
+                runs[cmd] = out
                 new.append("$ " + cmd)
-                new += run(cmd, Path(d))
+                new += out
         lines[a:b] = new
-    README.write_text("\n".join(lines))
+    text = "\n".join(lines)
+    README.write_text(text)
+    cmds = _commands(text)
+    files = sorted(_module_files(modules) | _data_files()
+                   | {a for c in cmds for a in shlex.split(c) if a.startswith("host/")})
+    CACHE.write_text(json.dumps({"note": "written by `make readme` (tests/readme_examples.py): the README "
+                                         "examples' output, valid while these files and commands are unchanged",
+                                 "key": cache_key(files, cmds), "files": files,
+                                 "runs": {c: runs[c] for c in cmds}}, indent=1) + "\n")
 
 
 if __name__ == "__main__":
     if "--write" in sys.argv:
         write()
     else:
-        bad = check_all()
+        bad = None if "--live" in sys.argv else check_cached(README.read_text())
+        if bad is None:
+            bad = check_all()
         print("\n\n".join(bad) or "README examples match")
         sys.exit(1 if bad else 0)
