@@ -1009,13 +1009,15 @@ class Recall(ModelFit):
                 # a few local readings can usually better).
                 self.confirmed = True
                 return
-            if not self.retry_best and stored <= self.target_g and g <= stored + _REPEAT:
-                # A best effort that read the target but could not prove it (the
-                # coupler's bounds), reading as it did: the same antenna through the
-                # same state, so a search would walk the relays under the carrier only
-                # to come back to it.  It ends best-effort with its bound, as before;
-                # a tune the operator asks for searches again (retry_best), and a
-                # stored state above target is still a start, not an answer.
+            if (not self.retry_best and self.accept_g < stored <= self.target_g
+                    and g <= stored + _REPEAT):
+                # A best effort (stored above the accept level: not a lock) that read
+                # the target but could not prove it (the coupler's bounds), reading as
+                # it did: the same antenna through the same state, so a search would
+                # walk the relays under the carrier only to come back to it.  It ends
+                # best-effort with its bound, as before; a tune the operator asks for
+                # searches again (retry_best), and a stored state above target is
+                # still a start, not an answer.
                 self.confirmed = True
                 return
             if g <= _NEAR:
