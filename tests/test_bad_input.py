@@ -201,7 +201,7 @@ def test_the_shipped_closed_form_antenna_runs_with_the_default_sweep():
 def test_a_band_name_that_disagrees_with_the_counted_frequency_is_reported():
     # 40 m is 7.000-7.300 MHz in ITU Region 2 (ITU Radio Regulations, Article 5), the
     # edges the project's band table uses.
-    from feedmatch.cli.station import _freq_disagrees
+    from feedmatch.cli.board import _freq_disagrees
 
     assert "outside 40m" in _freq_disagrees("40m", 7.15e6, 14.175e6)
     assert _freq_disagrees("40m", 7.15e6, 7.04e6) == ""

@@ -225,6 +225,6 @@ def test_log_says_each_tune_it_logs_with_no_sentinel_as_a_number():
     ({"swr_before": 999.0, "swr_after": 1.3, "before": [0, 0, 1, 1], "after": [3, 4, 0, 0]}, False),
 ])
 def test_a_tune_that_ended_worse_is_told_apart_from_reading_noise(rec, worse):
-    from feedmatch.cli.station import ended_worse
+    from feedmatch.cli.board import ended_worse
 
     assert ended_worse(rec) is worse

@@ -319,3 +319,32 @@ def _plot_measured(path: str, pts, model) -> None:
             ax.axvspan(b.low_hz / 1e6, b.high_hz / 1e6, color="0.93")
     fig.savefig(path, dpi=110, bbox_inches="tight")
     plt.close(fig)
+
+
+def _parser_antenna(sub) -> None:
+    s = sub.add_parser("antenna", help="antenna impedance over frequency (NEC-2 or closed form, or as the box "
+                       "measured it from the logbook)")
+    s.add_argument("--antenna", help="antenna JSON or .s1p (with --logbook: the model drawn beside the measurement)")
+    s.add_argument("--logbook", metavar="DB", help="the antenna as the box measured it from its logged tunes")
+    s.add_argument("--since", help="with --logbook: tunes from this ISO date or time on, e.g. 2026-11-01")
+    s.add_argument("--until", help="with --logbook: tunes before this ISO date or time")
+    s.add_argument("--network", help="with --logbook: nominal network JSON where the logbook has no element values")
+    s.add_argument("--sweep", help="start:stop:points in Hz (default: 1.8e6:30e6:300, within the model's range)")
+    s.add_argument("--plot", help="plot of R, X and SWR (.png, .svg or .pdf)")
+    s.add_argument("--s1p", help="export the sweep as a Touchstone one-port")
+    s.add_argument("--exact", action="store_true",
+                   help="solve NEC-2 at every frequency instead of sampling adaptively and interpolating")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    s.set_defaults(fn=run_antenna)
+
+
+# The commands of this module: name -> the function that adds its parser.
+_PARSERS = {
+    "antenna": _parser_antenna,
+}
+
+
+def add_parser(sub, name: str) -> None:
+    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
+    `name`; it sets fn, which runs the command."""
+    _PARSERS[name](sub)

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import argparse
 import math
+import sys
+import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -220,3 +222,97 @@ def run_coupler(a: argparse.Namespace, out: TextIO, on_prompt: Callable[[float],
     print(f"wrote detector.coupler into {cfg_path} (previous copy {cfg_path}.bak); deploy it with "
           "feedmatch deploy", file=out)
     return 0
+
+
+def cmd_calibrate(a: argparse.Namespace) -> int:
+    from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.cli.common import check_link_options
+
+    check_link_options(a)
+    if not 1 <= a.samples <= 64:
+        raise InputError(f"--samples must be 1 to 64 readings, got {a.samples}")
+    if a.rehearse:
+        return _rehearse_calibration(a)
+    if not a.port:
+        raise InputError("give --port (the board's serial port), or --rehearse to practise on the virtual board")
+    if not a.config:
+        raise InputError("give --config: the board config JSON the calibration goes into")
+    if getattr(a, "coupler", False):
+        from feedmatch.cli.calibrate import run_coupler
+
+        return run_coupler(a, sys.stdout)
+    return run_calibrate(a, sys.stdin, sys.stdout)
+
+
+def _rehearse_calibration(a: argparse.Namespace) -> int:
+    """The calibration dialogue against the virtual station with a 50 ohm dummy
+    load: each power is keyed for you at 14.2 MHz when it is asked for.  The
+    result goes into --config if given, else into a scratch copy of the
+    station's board config (its path is printed); nothing real is touched."""
+    import json
+    import time
+
+    from feedmatch.cli.calibrate import run_calibrate
+    from feedmatch.rf.antenna import FixedLoad
+    from feedmatch.sim.station import load_station
+    from feedmatch.sim.virtual import VirtualStation
+
+    if a.port:
+        raise InputError("--rehearse runs its own virtual board; leave out --port")
+    st = load_station(a.station)
+    st.antenna = FixedLoad(50.0, 0.0)  # the dummy load on the antenna port
+    work = Path(tempfile.mkdtemp(prefix="feedmatch-rehearsal-"))
+    if not a.config:
+        a.config = str(work / "board_config.json")
+        Path(a.config).write_text(json.dumps(st.board_config, indent=2))
+    vs = VirtualStation(st, work / "flash")
+    a.port = vs.start()
+    print(f"rehearsal: virtual board on {a.port}, dummy load on the antenna port; each power is keyed "
+          "for you at 14.2 MHz")
+    try:
+        time.sleep(1.0)  # the firmware boots
+        key = lambda p: (vs.key(p, 14.2e6), time.sleep(0.2))  # noqa: E731
+        if getattr(a, "coupler", False):
+            from feedmatch.cli.calibrate import run_coupler
+
+            return run_coupler(a, sys.stdout, on_prompt=key)
+        return run_calibrate(a, sys.stdin, sys.stdout, on_prompt=key)
+    finally:
+        vs.key(0)
+        vs.stop()
+        print(f"rehearsal config: {a.config}")
+
+
+def _parser_calibrate(sub) -> None:
+    s = sub.add_parser("calibrate", help="guided detector calibration into a dummy load")
+    s.add_argument("--port", help="the board's serial port")
+    s.add_argument("--baud", type=int, default=115200, help="serial speed in bit/s (default 115200)")
+    s.add_argument("--timeout", type=float, default=2.0, help="seconds to wait for each answer (default 2; 0.1 to 120)")
+    s.add_argument("--powers", default="1,2,5,10,25,50,100",
+                   help="transmit powers to step through, W (default 1,2,5,10,25,50,100)")
+    s.add_argument("--config", help="board config JSON to update (a backup is kept)")
+    s.add_argument("--rehearse", action="store_true",
+                   help="practise on the virtual board with a dummy load (no --port; nothing real changes)")
+    s.add_argument("--station", help="with --rehearse: station JSON (default: the built-in demo station)")
+    s.add_argument("--samples", type=int, default=16,
+                   help="detector readings averaged at each power (default 16; the board takes 1 to 64)")
+    s.add_argument("--yes", action="store_true", help="take each power as confirmed (scripts and tests)")
+    s.add_argument("--reflected", action="store_true",
+                   help="second pass with the box reversed (transmitter on ANT, dummy load on TX): "
+                        "calibrates the reflected detector on its own")
+    s.add_argument("--coupler", action="store_true",
+                   help="third pass, dummy load on ANT and a steady carrier at tune power: the box steps "
+                        "through its own states and the coupler's complex error is fitted (detector.coupler)")
+    s.set_defaults(fn=cmd_calibrate)
+
+
+# The commands of this module: name -> the function that adds its parser.
+_PARSERS = {
+    "calibrate": _parser_calibrate,
+}
+
+
+def add_parser(sub, name: str) -> None:
+    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
+    `name`; it sets fn, which runs the command."""
+    _PARSERS[name](sub)

@@ -7,6 +7,7 @@ import json
 from pathlib import Path
 from typing import Any
 
+from feedmatch.cli.common import seed_number, watts
 from feedmatch.errors import InputError
 from feedmatch.outpaths import output_file
 from feedmatch.plots import PLOT_SUFFIXES
@@ -29,6 +30,10 @@ def run_design(a: argparse.Namespace) -> int:
     from feedmatch.rf.network import load_network
     from feedmatch.sim.design import DesignSpec, antenna_uncertainty, design, relay_count
 
+    if not 1 <= a.boxes <= 50:
+        raise InputError(f"--boxes must be 1 to 50, got {a.boxes}")
+    if not 3 <= a.points <= 401:
+        raise InputError(f"--points must be 3 to 401 frequencies per band, got {a.points}")
     names = [b.strip() for b in a.bands.split(",") if b.strip()]
     if not names:
         raise InputError("--bands needs at least one band, e.g. 40m,20m")
@@ -194,3 +199,41 @@ def _put_network(path: str, net: dict) -> None:
     if errs:
         raise InputError(f"the proposal does not fit a board config: {errs[0]}")
     write_json_with_backup(Path(path), cfg)
+
+
+def _parser_design(sub) -> None:
+    s = sub.add_parser("design", help="propose element values for an antenna and its bands")
+    s.add_argument("--antenna", required=True, help="antenna JSON (NEC-2 or closed form) or .s1p")
+    s.add_argument("--bands", default=DEFAULT_BANDS,
+                   help="bands to cover, e.g. 80m,40m,20m (default 40m,30m,20m,17m,15m,12m,10m)")
+    s.add_argument("--power", type=watts, default=100.0, help="transmitter power for the ratings in W (default 100)")
+    s.add_argument("--inductors", type=int, default=7, help="inductor relays, 2 to 10 (default 7)")
+    s.add_argument("--capacitors", type=int, default=7, help="capacitor relays, 2 to 10 (default 7)")
+    s.add_argument("--tolerance", type=float, default=0.05,
+                   help="part tolerance as a fraction, 0 to 0.25 (default 0.05 = 5 %%)")
+    s.add_argument("--design-swr", type=float, default=1.3,
+                   help="SWR the best state must reach for a frequency to count as covered, 1.05 to 2 (default 1.3)")
+    s.add_argument("--boxes", type=int, default=4, help="drawn boxes each candidate is scored on, 1 to 50 (default 4)")
+    s.add_argument("--points", type=int, default=31, help="frequencies per band, 3 to 401 (default 31)")
+    s.add_argument("--seed", type=seed_number, default=1,
+                   help="random seed for the drawn boxes and the optimiser (default 1)")
+    s.add_argument("--network", help="the bank you have now, for comparison (default: the shipped one)")
+    s.add_argument("--out", help="write the proposal as a network JSON (for simulate, score and design --network)")
+    s.add_argument("--into-config", metavar="CONFIG",
+                   help="also write the proposal into this board config's network section (a .bak is kept): "
+                        "what `deploy --config` takes")
+    s.add_argument("--plot", help="coverage map (.png, .svg or .pdf)")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    s.set_defaults(fn=run_design)
+
+
+# The commands of this module: name -> the function that adds its parser.
+_PARSERS = {
+    "design": _parser_design,
+}
+
+
+def add_parser(sub, name: str) -> None:
+    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
+    `name`; it sets fn, which runs the command."""
+    _PARSERS[name](sub)

@@ -9,6 +9,7 @@ from typing import Any
 
 from fmlogic.search import NAMES as STRATEGY_NAMES  # the firmware's own list
 
+from feedmatch.cli.common import seed_number, watts
 from feedmatch.errors import InputError
 from feedmatch.outpaths import output_dir
 from feedmatch.rf.detector import DetectorModel
@@ -127,3 +128,48 @@ def _print_table(out: list[dict[str, Any]], target: float, n_loads: int, n_boxes
               f"{s['median_tune_ms']:8.0f} {s['median_swr']:6.2f} {s['median_swr_over_oracle']:8.3f} "
               f"{s['hot_switches']:4d}")
     print("(median/p95/max: measurements per tune; relays: relay operations; SWR: true final SWR)")
+
+
+def _parser_score(sub) -> None:
+    s = sub.add_parser("score", help="bench-test search strategies against the oracle")
+    s.add_argument("--strategy", default="all", help="grid, model, recall or all (default all)")
+    s.add_argument("--loads", help="loads CSV (freq_hz,r_ohm,x_ohm); default: 2000 generated")
+    s.add_argument("--network", help="network JSON (default: shipped)")
+    s.add_argument("--target", type=float, default=1.5, help="SWR a tune aims for (default 1.5)")
+    s.add_argument("--budget", type=int, default=80, help="most measurements one tune may take (default 80)")
+    s.add_argument("--settle-ms", type=float, default=10.0,
+                   help="relay settling time in ms charged per switch (default 10)")
+    s.add_argument("--power", type=watts, default=10.0, help="tune carrier power in W (default 10)")
+    s.add_argument("--seed", type=seed_number, default=1, help="random seed for the detector noise (default 1)")
+    s.add_argument("--ideal-detector", action="store_true", help="noiseless, perfectly calibrated detectors")
+    s.add_argument("--directivity", type=float, metavar="DB",
+                   help="flat coupler directivity in dB (default: frequency-dependent, 25 dB at 28 MHz)")
+    s.add_argument("--skip-bad", action="store_true", help="skip malformed rows of --loads instead of refusing")
+    s.add_argument("--boxes", type=int, default=0,
+                   help="score on N drawn non-ideal boxes (default 0: the ideal box the model describes)")
+    s.add_argument("--tolerance", type=float, default=0.05,
+                   help="with --boxes: part tolerance as a fraction (default 0.05 = 5 %%)")
+    s.add_argument("--strays", default="default", choices=["default", "none"],
+                   help="with --boxes: the drawn boxes' stray capacitances (default) or none")
+    s.add_argument("--fitted", action="store_true",
+                   help="with --boxes: give the strategies each box's fitted element values")
+    s.add_argument("--workers", type=int, help="processes to score in (default: one per core)")
+    s.add_argument("--fault", metavar="SPEC",
+                   help="score on a damaged box, e.g. L3:stuck-out,C5:stuck-in,L6:drift=-30%%,side:stuck-ant")
+    s.add_argument("--mark-failed", action="store_true",
+                   help="with --fault: the box's config marks its stuck elements failed (as selftest --write does)")
+    s.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    s.add_argument("--plots", help="directory for PNG plots")
+    s.set_defaults(fn=run_score_job)
+
+
+# The commands of this module: name -> the function that adds its parser.
+_PARSERS = {
+    "score": _parser_score,
+}
+
+
+def add_parser(sub, name: str) -> None:
+    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
+    `name`; it sets fn, which runs the command."""
+    _PARSERS[name](sub)

@@ -38,7 +38,7 @@ from feedmatch.sim.fitbox import Trace
 
 READING_SIGMA = 0.015        # |gamma| per reading: ADC noise and the model's own error (as the firmware's _sig)
 GAIN_SIGMA = 0.035           # forward/reflected gain mismatch, 0.3 dB (as the firmware's _sig)
-ELEMENT_SIGMA_LEARNED = 0.02  # fit-box's values: within 1.9 % on drawn boxes from 400 tunes (cli/board.py)
+ELEMENT_SIGMA_LEARNED = 0.02  # fit-box's values: within 1.9 % on drawn boxes from 400 tunes (cli/fitbox.py)
 ELEMENT_SIGMA_NOMINAL = 0.05  # the parts' tolerance when nothing was learned
 LEAK_CAL_HZ = 14.2e6         # `feedmatch calibrate` measures the leakage here
 LEAK_FLOOR = 0.01            # 40 dB: the directivity cap of the detector model
