@@ -494,10 +494,6 @@ class Controller:
         """Set the relays from memory for a frequency, with no RF present: the
         radio changed band and has not transmitted yet, the safest moment to
         switch.  The lookup is the memory's own (the bins live here only)."""
-        if self.tune is not None:
-            return False, {"why": "busy"}
-        if self.state == FAULT:
-            return False, {"why": "fault", "msg": self.why}
         f = a.get("freq_hz")
         if not isinstance(f, (int, float)) or isinstance(f, bool) or f <= 0 or f > 1e9:
             return False, {"why": "bad-args", "msg": "freq_hz"}
@@ -546,8 +542,6 @@ class Controller:
         (fmlogic.selftest: the plan, the gate, the readings); the host diagnoses.
         Reference: l/c/sh when given, else the tuned state, else memory's state
         for this frequency, else all relays released on the antenna side."""
-        if self.tune is not None:
-            return False, {"why": "busy"}
         ref = None
         if "l" in a or "c" in a or "sh" in a:
             ref = (a.get("l"), a.get("c"), a.get("sh", 1))
@@ -595,115 +589,121 @@ class Controller:
         return [_r3(swr_from_gamma(lo)), _r3(swr_from_gamma(hi))]
 
     def _handle(self, word, a):
-        if word == "status":
-            return True, self._status()
-        if word == "tune":
-            if self.tune is not None:
-                return False, {"why": "busy"}
-            if self.state == FAULT:
-                return False, {"why": "fault", "msg": self.why}
-            f = a.get("freq_hz", 0.0)
-            if not isinstance(f, (int, float)) or f < 0 or f > 1e9:
-                return False, {"why": "bad-args", "msg": "freq_hz"}
-            self.tune_req = {"t": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
-            self.manual = False
-            return True, {"accepted": True, "seq": self.rec.seq}
-        if word == "set":
-            if self.tune is not None:
-                return False, {"why": "busy"}
-            l_, c_, sh = a.get("l"), a.get("c"), a.get("sh", 1)
-            for v, top in ((l_, self.bank.l_max), (c_, self.bank.c_max), (sh, 1)):
-                if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
-                    return False, {"why": "bad-args", "msg": "l/c/sh out of range"}
-            if not self._switch((l_, c_, sh), False):
-                return False, {"why": "hot", "msg": "power above hot-switch limit"}
-            self.mem.set_last(self.freq, self.relays, False)
-            self.mem.flush()
-            self.manual = True
-            self._set_state(WAIT_RF, "set by host")
-            return True, {"relays": self._state_list()}
-        if word == "bypass":
-            if self.tune is not None:
-                return False, {"why": "busy"}
-            on = a.get("on", True)
-            if not isinstance(on, bool):
-                return False, {"why": "bad-args", "msg": "on must be true or false"}
-            if not self._switch(self.relays, on):
-                return False, {"why": "hot", "msg": "power above hot-switch limit"}
-            self.mem.set_last(self.freq, self.relays, on)
-            self.mem.flush()
-            self.manual = on
-            self._set_state(THROUGH if on else WAIT_RF, "bypass by host" if on else "back in line by host")
-            return True, {"relays": self._state_list()}
-        if word == "rig":
-            # What the radio is on, as the host's rig control reads it: kept in records.
-            f = a.get("freq_hz")
-            mode = a.get("mode", "")
-            if not isinstance(f, (int, float)) or f <= 0 or f > 1e9 or not isinstance(mode, str):
-                return False, {"why": "bad-args", "msg": "freq_hz and mode"}
-            self.rig = (float(f), mode[:12])
-            return True, {}
-        if word == "preset":
-            return self._preset(a)
-        if word == "mem-list":
-            start = a.get("start", 0)
-            if not isinstance(start, int) or start < 0:
-                return False, {"why": "bad-args", "msg": "start"}
-            items = self.mem.listing()
-            return True, {"bin_hz": self.mem.bin_hz, "total": len(items), "start": start,
-                          "entries": items[start:start + 12]}
-        if word == "mem-put":
-            return self._mem_put(a)
-        if word == "mem-clear":
-            self.mem.clear()
-            return True, {"entries": 0}
-        if word == "cfg-get":
-            sec = a.get("section")
-            if sec is None:
-                return True, {"sections": [k for k in self.cfg if isinstance(self.cfg[k], dict)]}
-            if sec not in self.cfg:
-                return False, {"why": "bad-args", "msg": "no such section"}
-            return True, {"section": sec, "value": self.cfg[sec]}
-        if word == "cfg-set":
-            return self._cfg_set(a)
-        if word == "cal-read":
-            n = a.get("n", 1)
-            if not isinstance(n, int) or not 1 <= n <= 64:
-                return False, {"why": "bad-args", "msg": "n must be 1..64"}
-            sf = sr = 0.0
-            for _ in range(n):
-                c = self.board.read_detectors()
-                sf += c[0]
-                sr += c[1]
-            self._read()
-            return True, {"fwd_counts": sf / n, "ref_counts": sr / n, "fwd_w": _r3(self.fwd),
-                          "ref_w": _r3(self.ref), "freq_hz": self.board.count_freq()}
-        if word == "records":
-            since = a.get("since", 0)
-            if not isinstance(since, int) or since < 0:
-                return False, {"why": "bad-args", "msg": "since"}
-            # As many records as fit in a short frame (at least one, its trace dropped if it
-            # alone is too long): short frames survive a noisy line better.
-            cand = self.rec.since(since, 6)
-            recs = []
-            size = 80
-            for r in cand:
+        """Answer one request through the table (REQUESTS below the class): the guards its
+        entry names first (refused during a tune, refused in a fault), then its function."""
+        entry = REQUESTS.get(word)
+        if entry is None:
+            return False, {"why": "unknown-request", "msg": word[:16]}
+        fn, guards = entry
+        if guards & _NOT_TUNING and self.tune is not None:
+            return False, {"why": "busy"}
+        if guards & _NOT_IN_FAULT and self.state == FAULT:
+            return False, {"why": "fault", "msg": self.why}
+        return fn(self, a)
+
+    # -- the requests (one function each; the table is REQUESTS) --------------------
+    def _q_status(self, a):
+        return True, self._status()
+
+    def _q_tune(self, a):
+        f = a.get("freq_hz", 0.0)
+        if not isinstance(f, (int, float)) or f < 0 or f > 1e9:
+            return False, {"why": "bad-args", "msg": "freq_hz"}
+        self.tune_req = {"t": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
+        self.manual = False
+        return True, {"accepted": True, "seq": self.rec.seq}
+
+    def _q_set(self, a):
+        l_, c_, sh = a.get("l"), a.get("c"), a.get("sh", 1)
+        for v, top in ((l_, self.bank.l_max), (c_, self.bank.c_max), (sh, 1)):
+            if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
+                return False, {"why": "bad-args", "msg": "l/c/sh out of range"}
+        if not self._switch((l_, c_, sh), False):
+            return False, {"why": "hot", "msg": "power above hot-switch limit"}
+        self.mem.set_last(self.freq, self.relays, False)
+        self.mem.flush()
+        self.manual = True
+        self._set_state(WAIT_RF, "set by host")
+        return True, {"relays": self._state_list()}
+
+    def _q_bypass(self, a):
+        on = a.get("on", True)
+        if not isinstance(on, bool):
+            return False, {"why": "bad-args", "msg": "on must be true or false"}
+        if not self._switch(self.relays, on):
+            return False, {"why": "hot", "msg": "power above hot-switch limit"}
+        self.mem.set_last(self.freq, self.relays, on)
+        self.mem.flush()
+        self.manual = on
+        self._set_state(THROUGH if on else WAIT_RF, "bypass by host" if on else "back in line by host")
+        return True, {"relays": self._state_list()}
+
+    def _q_rig(self, a):
+        # What the radio is on, as the host's rig control reads it: kept in records.
+        f = a.get("freq_hz")
+        mode = a.get("mode", "")
+        if not isinstance(f, (int, float)) or f <= 0 or f > 1e9 or not isinstance(mode, str):
+            return False, {"why": "bad-args", "msg": "freq_hz and mode"}
+        self.rig = (float(f), mode[:12])
+        return True, {}
+
+    def _q_mem_list(self, a):
+        start = a.get("start", 0)
+        if not isinstance(start, int) or start < 0:
+            return False, {"why": "bad-args", "msg": "start"}
+        items = self.mem.listing()
+        return True, {"bin_hz": self.mem.bin_hz, "total": len(items), "start": start,
+                      "entries": items[start:start + 12]}
+
+    def _q_mem_clear(self, a):
+        self.mem.clear()
+        return True, {"entries": 0}
+
+    def _q_cfg_get(self, a):
+        sec = a.get("section")
+        if sec is None:
+            return True, {"sections": [k for k in self.cfg if isinstance(self.cfg[k], dict)]}
+        if sec not in self.cfg:
+            return False, {"why": "bad-args", "msg": "no such section"}
+        return True, {"section": sec, "value": self.cfg[sec]}
+
+    def _q_cal_read(self, a):
+        n = a.get("n", 1)
+        if not isinstance(n, int) or not 1 <= n <= 64:
+            return False, {"why": "bad-args", "msg": "n must be 1..64"}
+        sf = sr = 0.0
+        for _ in range(n):
+            c = self.board.read_detectors()
+            sf += c[0]
+            sr += c[1]
+        self._read()
+        return True, {"fwd_counts": sf / n, "ref_counts": sr / n, "fwd_w": _r3(self.fwd),
+                      "ref_w": _r3(self.ref), "freq_hz": self.board.count_freq()}
+
+    def _q_records(self, a):
+        since = a.get("since", 0)
+        if not isinstance(since, int) or since < 0:
+            return False, {"why": "bad-args", "msg": "since"}
+        # As many records as fit in a short frame (at least one, its trace dropped if it
+        # alone is too long): short frames survive a noisy line better.
+        cand = self.rec.since(since, 6)
+        recs = []
+        size = 80
+        for r in cand:
+            n = len(json.dumps(r)) + 2
+            if recs and size + n > _RECORDS_BYTES:
+                break
+            if size + n > link.MAX_LINE - 40:
+                r = dict(r)
+                r.pop("trace", None)
                 n = len(json.dumps(r)) + 2
-                if recs and size + n > _RECORDS_BYTES:
-                    break
-                if size + n > link.MAX_LINE - 40:
-                    r = dict(r)
-                    r.pop("trace", None)
-                    n = len(json.dumps(r)) + 2
-                recs.append(r)
-                size += n
-            more = len(cand) > len(recs) or (len(cand) == 6 and cand[-1]["seq"] < self.rec.seq)
-            return True, {"records": recs, "more": more, "last": self.rec.seq}
-        if word == "selftest":
-            return self._selftest(a)
-        if word == "ping":
-            return True, {"pong": True}
-        return False, {"why": "unknown-request", "msg": word[:16]}
+            recs.append(r)
+            size += n
+        more = len(cand) > len(recs) or (len(cand) == 6 and cand[-1]["seq"] < self.rec.seq)
+        return True, {"records": recs, "more": more, "last": self.rec.seq}
+
+    def _q_ping(self, a):
+        return True, {"pong": True}
 
     def _mem_put(self, a):
         """Stored states written into the memory (the host's memory --import):
@@ -713,10 +713,6 @@ class Controller:
         state without it), save (false: keep in RAM until the last frame, one
         flash write for the whole import).  Every entry is checked before any is
         stored; no relay moves."""
-        if self.tune is not None:
-            return False, {"why": "busy"}
-        if self.state == FAULT:
-            return False, {"why": "fault", "msg": self.why}
         w = a.get("bin_hz")
         flags = (a.get("rebin", False), a.get("replace", False), a.get("save", True))
         for v in flags:
@@ -738,8 +734,6 @@ class Controller:
                       "max_entries": self.mem.max_entries, "saved": not self.mem.dirty}
 
     def _cfg_set(self, a):
-        if self.tune is not None:
-            return False, {"why": "busy"}
         path = a.get("path")
         if not isinstance(path, str) or path.count(".") != 1:
             return False, {"why": "bad-args", "msg": "path must be section.key"}
@@ -764,6 +758,31 @@ class Controller:
             self.advice = None
             self._set_state(WAIT_RF, "config fixed")
         return True, {"path": path, "value": self.cfg[sec][key]}
+
+
+# Guards a request's entry names: refused while a tune is under way ("busy"), refused
+# while the box is in a fault ("fault"), checked in that order before its function.
+_NOT_TUNING = 1
+_NOT_IN_FAULT = 2
+# The requests the link takes: word -> (function, guards). A new request is one entry
+# here and one function of the Controller (docs/protocol.md describes each).
+REQUESTS = {
+    "status": (Controller._q_status, 0),
+    "tune": (Controller._q_tune, _NOT_TUNING | _NOT_IN_FAULT),
+    "set": (Controller._q_set, _NOT_TUNING),
+    "bypass": (Controller._q_bypass, _NOT_TUNING),
+    "rig": (Controller._q_rig, 0),
+    "preset": (Controller._preset, _NOT_TUNING | _NOT_IN_FAULT),
+    "mem-list": (Controller._q_mem_list, 0),
+    "mem-put": (Controller._mem_put, _NOT_TUNING | _NOT_IN_FAULT),
+    "mem-clear": (Controller._q_mem_clear, 0),
+    "cfg-get": (Controller._q_cfg_get, 0),
+    "cfg-set": (Controller._cfg_set, _NOT_TUNING),
+    "cal-read": (Controller._q_cal_read, 0),
+    "records": (Controller._q_records, 0),
+    "selftest": (Controller._selftest, _NOT_TUNING),
+    "ping": (Controller._q_ping, 0),
+}
 
 
 TRACE_MAX = 40
