@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from typing import Any
 
 import numpy as np
@@ -92,6 +93,9 @@ def run_antenna(a: argparse.Namespace) -> int:
     if a.plot:
         _plot(a.plot, f, z, swr, ant.describe())
     if a.json:
+        for w in (a.s1p, a.plot):
+            if w:
+                sys.stderr.write(f"wrote {w}\n")  # stdout is the JSON's alone
         emit_json({"antenna": ant.describe(), "method": method, "bands": rows, "resonances": res,
                    "warnings": notes, "segment_check": check,
                    "sweep": {"freq_hz": f.tolist(), "r_ohm": z.real.tolist(), "x_ohm": z.imag.tolist()}})
@@ -227,6 +231,9 @@ def run_measured(a: argparse.Namespace) -> int:
         if zm is not None:
             out["model"] = {"antenna": model.describe(), "r_ohm": [round(v, 3) for v in zm.real],
                             "x_ohm": [round(v, 3) for v in zm.imag]}
+        for w in (a.s1p, a.plot):
+            if w:
+                sys.stderr.write(f"wrote {w}\n")  # stdout is the JSON's alone
         emit_json(out)
         return 0
     print(f"antenna as the box measured it: {cur['tunes']} tunes, {cur['first'][:19]} .. {cur['last'][:19]} UTC")

@@ -91,12 +91,15 @@ def run_score_job(a: argparse.Namespace) -> int:
         if faults:
             out[-1]["faults"] = faults.spec()
     progress.close()
+    written = []
     if a.plots:
         from feedmatch.plots import score_plots
 
-        for f in score_plots(a.plots, out, net, a.target):
-            sys.stderr.write(f"feedmatch: wrote {f}\n")
+        written = score_plots(a.plots, out, net, a.target)
     if a.json:
+        # "wrote" lines go where the other commands put them: stdout, stderr under --json.
+        for f in written:
+            sys.stderr.write(f"wrote {f}\n")
         if len(out) == 1 and not boxes_json:
             emit_json(out[0])
         else:
@@ -108,6 +111,8 @@ def run_score_job(a: argparse.Namespace) -> int:
     if faults:
         print(f"damaged box: {faults.spec()} (the oracle is the best state it still reaches)")
     _print_table(out, a.target, len(loads), len(box_list))
+    for f in written:
+        print(f"wrote {f}")
     return 0
 
 
