@@ -327,11 +327,16 @@ _FUZZ_STATE = {}
     hs.binary(max_size=80),
     hs.builds(lambda w, o: link.encode("Q", 1, w, o),
               hs.sampled_from(["status", "tune", "set", "bypass", "mem-list", "cfg-set", "cfg-get",
-                               "cal-read", "records", "zap", "mem-clear"]),
+                               "cal-read", "records", "zap", "mem-clear", "mem-put"]),
               hs.dictionaries(hs.sampled_from(["l", "c", "sh", "on", "path", "value", "since", "n",
-                                               "freq_hz", "section", "start"]),
+                                               "freq_hz", "section", "start", "bin_hz", "entries", "rebin",
+                                               "save"]),
                               hs.one_of(hs.integers(-5, 300), hs.floats(allow_nan=True), hs.text(max_size=5),
-                                        hs.booleans(), hs.none()), max_size=4)),
+                                        hs.booleans(), hs.none(),
+                                        hs.lists(hs.lists(hs.one_of(hs.integers(-5, 30_000_000),
+                                                                    hs.floats(allow_nan=True), hs.booleans()),
+                                                          max_size=7), max_size=3)),
+                              max_size=4)),
 ), max_size=6))
 def test_fuzz_command_handler_never_crashes(tmp_path_factory, chunks):
     if "ctl" not in _FUZZ_STATE:
