@@ -77,6 +77,7 @@ def test_the_virtual_board_runs_on_the_chip_sized_heap_and_single_precision(tmp_
                     break
                 except Exception:
                     assert time.monotonic() < deadline, "the board never answered"
-            assert s["state"] != "fault" and s["board_id"] == st.board_config["board_id"]
+            assert s["state"] != "fault", (s["why"], s.get("file"))
+            assert s["board_id"] == st.board_config["board_id"]
     finally:
         vs.stop()

@@ -9,6 +9,8 @@
 # that escapes everything (a hang the watchdog resets, a crash in the loop)
 # still cannot loop more than FAIL_LIMIT times before the box comes up in safe
 # mode, and stays there until a deploy clears the count.
+import gc
+
 from fmlogic import link, memory
 
 FAIL_LIMIT = 3
@@ -187,6 +189,10 @@ def start(d, make_board, run=True):
             except Exception:
                 pass
             raise RuntimeError("%d starts in a row failed%s" % (tries, ("; last: " + last) if last else ""))
+        # The controller is the largest module to compile from source: a collection first
+        # gives its parse tree one unfragmented heap (the unix port at 256 KB and a Pico
+        # without mpy-cross compile it on the board).
+        gc.collect()
         from fmlogic.controller import Controller, read_config
 
         memory.STAGE[0] = "config.json"

@@ -43,10 +43,24 @@ ADVICE_CONFIG = ("re-deploy the board config (feedmatch deploy --port PORT --con
                  "the relays stay through until then")
 
 
+class Tune:
+    """A tune under way (one object a tune, made at its start; None between tunes)."""
+
+    def __init__(self, search, freq_hz, started_ms, before, swr_before, hinted, strategy, preset):
+        self.search = search          # the strategy's search object (fmlogic.search)
+        self.freq_hz = freq_hz        # counted (or asked for) when it started; 0 if unknown
+        self.started_ms = started_ms  # board ticks_ms at the start: the time limit counts from here
+        self.before = before          # relays before it, as in the record: [l, c, shunt, bypass]
+        self.swr_before = swr_before  # the SWR read before it (-1: none)
+        self.hinted = hinted          # started from a stored or preset state
+        self.strategy = strategy      # the strategy's name, as in the record
+        self.preset = preset          # it confirms a preset
+
+
 class Controller:
     def __init__(self, board, cfg, d="", boot=None, cfg_note=None):
         self.board = board
-        self.d = d
+        self.dir = d  # the flash directory the memory, records and config live in
         self.raw_cfg = cfg if isinstance(cfg, dict) else {}
         self.reader = link.LineReader()
         self.ev_seq = 0
@@ -112,9 +126,9 @@ class Controller:
             self.advice = ADVICE_CONFIG
         jn = memory.journal_take(d)
         if jn is not None:
-            self._record(jn.get("freq_hz", 0.0), jn.get("before"), jn.get("before"),
-                         jn.get("swr_before", -1.0), -1.0, jn.get("n", 0), 0, "reset",
-                         "board reset during tune", False, jn.get("strategy", ""))
+            self._record(jn.get("freq_hz", 0.0), jn.get("before"), jn.get("before"), "reset",
+                         "board reset during tune", swr_before=jn.get("swr_before", -1.0), n=jn.get("n", 0),
+                         strategy=jn.get("strategy", ""))
         last = self.mem.last_state()
         if last is not None and not errs:
             self.pending_restore = last
@@ -135,11 +149,11 @@ class Controller:
         self.dmg = selftest.damage_from(m, self.bank)
         self.meter = fcfg.meter_from(m)
         self.cp = coupler.from_config(m["detector"], self.meter.ref)
-        self.p = m["power"]
-        self.t = m["tune"]
+        self.power = m["power"]  # the board config's power limits (W)
+        self.tuning = m["tune"]  # ... and its tune settings (target, budget, times in ms)
         if not hasattr(self, "mem"):
-            self.mem = memory.Memory(self.d, m["memory"]["bin_hz"], m["memory"]["max_entries"])
-            self.rec = memory.Records(self.d, m["records"]["keep"])
+            self.mem = memory.Memory(self.dir, m["memory"]["bin_hz"], m["memory"]["max_entries"])
+            self.rec = memory.Records(self.dir, m["records"]["keep"])
         else:
             self.mem.bin_hz = float(m["memory"]["bin_hz"])
             self.mem.set_max(m["memory"]["max_entries"])
@@ -197,7 +211,7 @@ class Controller:
         if want == self.relays and bypass == self.bypass:
             return True
         self._read()
-        if not self.rf_w <= self.p["hot_switch_w"]:
+        if not self.rf_w <= self.power["hot_switch_w"]:
             # Above the limit, or not a number (a detector fault): hold.
             self.hot_refusals += 1
             return False
@@ -221,16 +235,16 @@ class Controller:
         req = self.tune_req
         if fwd <= 0.0:
             self.freq = 0.0
-            if self.rf_w > self.p["min_tune_w"]:
-                held = "; relays held" if self.rf_w > self.p["hot_switch_w"] else ""
+            if self.rf_w > self.power["min_tune_w"]:
+                held = "; relays held" if self.rf_w > self.power["hot_switch_w"] else ""
                 self._set_state(self.state, "reverse power from the antenna side" + held +
                                 ": check the wiring and nearby transmitters")
             elif self.why.startswith("reverse power "):
                 self._set_state(self.state, "reverse power gone")
-            if req is not None and self.board.ticks_diff(now, req["t"]) > self.t["rf_wait_ms"]:
+            if req is not None and self.board.ticks_diff(now, req["asked_ms"]) > self.tuning["rf_wait_ms"]:
                 self.tune_req = None
-                self._record(req.get("freq_hz", 0.0), self._state_list(), self._state_list(),
-                             -1.0, -1.0, 0, 0, "refused", "no RF within wait time", False, "")
+                self._record(req.get("freq_hz", 0.0), self._state_list(), self._state_list(), "refused",
+                             "no RF within wait time")
             return
         f = self.board.count_freq()
         if f <= 0.0 and req is not None:
@@ -243,44 +257,44 @@ class Controller:
                 self._set_state(WAIT_RF, "recovered after an internal error")
             return
         if self.board.tune_button():
-            req = self.tune_req = {"t": now, "freq_hz": f, "why": "button"}
+            req = self.tune_req = {"asked_ms": now, "freq_hz": f, "why": "button"}
             self.manual = False
-        in_window = self.p["min_tune_w"] <= fwd <= self.p["max_tune_w"]
+        in_window = self.power["min_tune_w"] <= fwd <= self.power["max_tune_w"]
         if req is not None:
-            if fwd > self.p["max_tune_w"]:
-                if fwd > self.p["hot_switch_w"]:
-                    self._set_state(self.state, "hold: reduce power to %.0f W to tune" % self.p["max_tune_w"])
+            if fwd > self.power["max_tune_w"]:
+                if fwd > self.power["hot_switch_w"]:
+                    self._set_state(self.state, "hold: reduce power to %.0f W to tune" % self.power["max_tune_w"])
                 return
             if in_window:
                 self.tune_req = None
                 self._start_tune(f, req.get("why", "request"))
             return
-        if self.preset_f > 0.0 and fwd >= self.p["min_tune_w"] and not self.manual:
+        if self.preset_f > 0.0 and fwd >= self.power["min_tune_w"] and not self.manual:
             # The relays were set from memory before the carrier came: one reading
             # confirms them.  In the tune window that is a recall (it starts at the
             # stored state and searches on if it does not hold); above it, the
             # reading alone, and nothing switches.
             fp = f if f > 0 else self.preset_f
-            if in_window and self.t["auto"]:
+            if in_window and self.tuning["auto"]:
                 self._start_tune(fp, "confirm preset")
                 return
             self.preset_f = 0.0
             swr = self._swr()
             bd = self._bound()
             # Confirmed only where the reading proves the target (the coupler's bounds).
-            ok = bd is not None and bd[1] <= self.t["target_swr"]
+            ok = bd is not None and bd[1] <= self.tuning["target_swr"]
             st = self._state_list()
-            self._record(fp, st, st, swr, swr, 1, 0, LOCKED if ok else BEST,
+            self._record(fp, st, st, LOCKED if ok else BEST,
                          "preset confirmed" if ok else "preset not proven: tune at lower power",
-                         ok, "preset", None, True, bd)
+                         swr_before=swr, swr_after=swr, n=1, mem=ok, strategy="preset", preset=True, swr_bound=bd)
             self._set_state(LOCKED if ok else BEST, "preset confirmed" if ok else "preset not proven")
             return
-        if not self.t["auto"] or not in_window or self.manual:
+        if not self.tuning["auto"] or not in_window or self.manual:
             return
         swr = self._swr()
         fbin = self.mem.bin_of(f) if f > 0 else None
         moved = fbin is not None and self.lock_bin is not None and abs(fbin - self.lock_bin) > 1
-        if swr > self.t["retune_swr"] or (moved and swr > self.t["target_swr"]):
+        if swr > self.tuning["retune_swr"] or (moved and swr > self.tuning["target_swr"]):
             if self.state == BEST and not moved and self.lock_bin == fbin:
                 return  # already did our best on this bin; wait for a request
             self._start_tune(f, "auto: SWR %.2f" % swr)
@@ -292,14 +306,14 @@ class Controller:
         if hint is None and self.preset_f > 0.0:
             hint = self.preset_hint
             measured = self.preset_measured
-        name = self.t["strategy"]
+        name = self.tuning["strategy"]
         if name == "recall" and hint is None:
             name = "model"
         dmg = self.dmg
         if dmg is not None and hint is not None:
             hint = dmg.reduced(hint[:3]) + (hint[3],)
         strat = search.make(name, dmg.bank if dmg is not None else self.bank, f if f > 0 else 14.0e6,
-                            self.t["target_swr"], self.t["budget"], hint[:4] if hint else None, self.cp)
+                            self.tuning["target_swr"], self.tuning["budget"], hint[:4] if hint else None, self.cp)
         # Asked for (the host's request, the button), or a state the host computed (its SWR a
         # prediction, never read): a best effort is searched again; an automatic tune or a
         # preset's confirmation keeps a stored best effort that reads as it was stored.
@@ -312,13 +326,12 @@ class Controller:
                            and self.board.ticks_diff(self.board.ticks_ms(), rs) < _REF_TRUST_MS)
         before = self._state_list()
         swr0 = self._swr()
-        self.tune = {"s": strat, "f": f, "t0": self.board.ticks_ms(), "before": before,
-                     "swr0": swr0, "hint": hint is not None, "why": why, "name": name,
-                     "fwd": self.fwd, "preset": self.preset_f > 0.0}
+        self.tune = Tune(strat, f, self.board.ticks_ms(), before, swr0, hint is not None, name,
+                         self.preset_f > 0.0)
         self.preset_f = 0.0
         # Inside long work the search feeds the watchdog and stops at the time limit.
         strat.guard = self._guard
-        memory.journal_write(self.d, {"freq_hz": f, "before": before, "swr_before": swr0,
+        memory.journal_write(self.dir, {"freq_hz": f, "before": before, "swr_before": swr0,
                                       "strategy": name})
         self._set_state(SEEK, why)
 
@@ -326,13 +339,13 @@ class Controller:
         b = self.board
         b.wdt_feed()
         tn = self.tune
-        return tn is not None and b.ticks_diff(b.ticks_ms(), tn["t0"]) > self.t["time_limit_ms"]
+        return tn is not None and b.ticks_diff(b.ticks_ms(), tn.started_ms) > self.tuning["time_limit_ms"]
 
     def _seek_step(self):
         tn = self.tune
-        s = tn["s"]
+        s = tn.search
         b = self.board
-        if b.ticks_diff(b.ticks_ms(), tn["t0"]) > self.t["time_limit_ms"]:
+        if b.ticks_diff(b.ticks_ms(), tn.started_ms) > self.tuning["time_limit_ms"]:
             self._end_tune("time limit")
             return
         st = s.propose()
@@ -344,12 +357,12 @@ class Controller:
         if not self._switch(st, byp):
             self._end_tune("power above hot-switch limit", abort=True)
             return
-        b.sleep_ms(self.t["settle_ms"])
+        b.sleep_ms(self.tuning["settle_ms"])
         fwd, ref = self._read()
         if fwd <= 0.0:
             self._end_tune("carrier lost", abort=True)
             return
-        if fwd > self.p["max_tune_w"]:
+        if fwd > self.power["max_tune_w"]:
             self._end_tune("power rose above tune window", abort=True)
             return
         s.observe(fwd, ref)
@@ -359,8 +372,8 @@ class Controller:
     def _end_tune(self, why, abort=False):
         tn = self.tune
         self.tune = None
-        s = tn["s"]
-        f = tn["f"]
+        s = tn.search
+        f = tn.freq_hz
         outcome, final, byp, best_swr, keep, note = conclude(s, abort)
         if outcome == LOCKED:
             why = note
@@ -374,17 +387,18 @@ class Controller:
         if not switched:
             why = why + "; relays held (power above hot-switch limit)"
         after_swr = best_swr if (switched and best_swr > 0) else -1.0
-        dur = self.board.ticks_diff(self.board.ticks_ms(), tn["t0"])
+        dur = self.board.ticks_diff(self.board.ticks_ms(), tn.started_ms)
         if keep and switched:
             self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)
         self.mem.set_last(f, self.relays, self.bypass)
         self.mem.flush()
         self.lock_bin = self.mem.bin_of(f) if f > 0 else None
-        memory.journal_take(self.d)
-        hit = tn["hint"] and s.n == 1 and outcome == LOCKED
-        self._record(f, tn["before"], self._state_list(), tn["swr0"], after_swr, s.n, dur,
-                     outcome, why, hit, tn["name"], _trace(s, self.dmg), tn["preset"],
-                     bound(s) if switched and outcome != FAULT else None)
+        memory.journal_take(self.dir)
+        hit = tn.hinted and s.n == 1 and outcome == LOCKED
+        self._record(f, tn.before, self._state_list(), outcome, why, swr_before=tn.swr_before,
+                     swr_after=after_swr, n=s.n, ms=dur, mem=hit, strategy=tn.strategy,
+                     trace=_trace(s, self.dmg), preset=tn.preset,
+                     swr_bound=bound(s) if switched and outcome != FAULT else None)
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
         elif outcome == FAULT:
@@ -398,12 +412,14 @@ class Controller:
     def _state_list(self):
         return [self.relays[0], self.relays[1], self.relays[2], 1 if self.bypass else 0]
 
-    def _record(self, f, before, after, swr0, swr1, n, dur, outcome, why, hit, strat, trace=None,
-                preset=False, swr_bound=None):
+    def _record(self, f, before, after, outcome, why, swr_before=-1.0, swr_after=-1.0, n=0, ms=0,
+                mem=False, strategy="", trace=None, preset=False, swr_bound=None):
+        """One record (the keywords are its fields; -1 is an SWR not read): into the
+        record store and out on the link as an event."""
         rec = {"boot": self.boot, "t_ms": self.board.ticks_ms(), "freq_hz": f,
-               "before": before, "after": after, "swr_before": _r3(swr0), "swr_after": _r3(swr1),
-               "n": n, "ms": dur, "outcome": outcome, "why": why, "mem": hit,
-               "strategy": strat, "board_id": self.cfg["board_id"], "uid": self.uid}
+               "before": before, "after": after, "swr_before": _r3(swr_before), "swr_after": _r3(swr_after),
+               "n": n, "ms": ms, "outcome": outcome, "why": why, "mem": mem,
+               "strategy": strategy, "board_id": self.cfg["board_id"], "uid": self.uid}
         if trace:
             rec["trace"] = trace
         if swr_bound is not None:
@@ -531,8 +547,8 @@ class Controller:
         self.mem.flush()
         # Each preset is a record too (no reading: there is no RF), so the
         # logbook holds every one, confirmed by a carrier or not.
-        self._record(float(f), before, self._state_list(), -1.0, hint[3], 0, 0, "preset",
-                     "preset from " + src, src == "memory", "preset")
+        self._record(float(f), before, self._state_list(), "preset", "preset from " + src,
+                     swr_after=hint[3], mem=src == "memory", strategy="preset")
         self._set_state(WAIT_RF, "preset from %s for %.4f MHz" % (src, f / 1e6))
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
                       "bin_hz": self.mem.bin_hz, "bin": b, "source": src}
@@ -552,9 +568,9 @@ class Controller:
         if not isinstance(side, bool):
             return False, {"why": "bad-args", "msg": "side must be true or false"}
         fwd, _ = self._read()
-        if not self.p["min_tune_w"] <= fwd <= self.p["max_tune_w"]:
+        if not self.power["min_tune_w"] <= fwd <= self.power["max_tune_w"]:
             return False, {"why": "no-carrier", "msg": "key a carrier of %g to %g W" %
-                           (self.p["min_tune_w"], self.p["max_tune_w"])}
+                           (self.power["min_tune_w"], self.power["max_tune_w"])}
         f = self.board.count_freq()
         if ref is None:
             if self.state in (LOCKED, BEST) and not self.bypass:
@@ -609,7 +625,7 @@ class Controller:
         f = a.get("freq_hz", 0.0)
         if not isinstance(f, (int, float)) or f < 0 or f > 1e9:
             return False, {"why": "bad-args", "msg": "freq_hz"}
-        self.tune_req = {"t": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
+        self.tune_req = {"asked_ms": self.board.ticks_ms(), "freq_hz": float(f), "why": "request"}
         self.manual = False
         return True, {"accepted": True, "seq": self.rec.seq}
 
@@ -749,7 +765,7 @@ class Controller:
         errs = fcfg.validate(new)
         if errs:
             return False, {"why": "invalid", "msg": errs[0][:120]}
-        memory.atomic_write(self.d, CONFIG, json.dumps(new).encode())
+        memory.atomic_write(self.dir, CONFIG, json.dumps(new).encode())
         self.raw_cfg = new
         self.cfg = fcfg.merged(new)
         self._apply_cfg()

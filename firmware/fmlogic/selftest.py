@@ -277,9 +277,9 @@ def run(ctl, ref, side):
     why = ""
     before = ctl.relays
     byp = ctl.bypass
-    lo = ctl.p["min_tune_w"]
-    hi = ctl.p["max_tune_w"]
-    settle = ctl.t["settle_ms"]
+    lo = ctl.power["min_tune_w"]
+    hi = ctl.power["max_tune_w"]
+    settle = ctl.tuning["settle_ms"]
     for st in states:
         if not ctl._switch(st, False):
             why = "power above hot-switch limit"
