@@ -1,15 +1,18 @@
-"""The hub's socket on a shared computer, and many tools at once.
+"""The hub: one process owns a serial port, every other feedmatch process attaches.
 
 Who may talk to whom: the hub socket lives in a directory only its user can
 enter, and each end asks the kernel who is at the other (SO_PEERCRED, socket(7)).
 The other-user cases need root (to become another user); they skip otherwise.
-"""
+Many tools at once, commands beside a running logger, a killed owner, and the
+typed errors the hub's start gives (busy, owned)."""
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import socket
+import sqlite3
 import subprocess
 import threading
 import time
@@ -26,7 +29,16 @@ from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 from fmlogic import link as frames
 
-from .conftest import BIN
+from .conftest import BIN, run_cli
+
+
+def _rows(db):
+    con = sqlite3.connect(db)
+    con.row_factory = sqlite3.Row
+    rows = con.execute("SELECT * FROM tunes ORDER BY seq").fetchall()
+    con.close()
+    return rows
+
 
 NOBODY = 65534  # Debian's "nobody" (base-passwd)
 
@@ -219,3 +231,93 @@ def test_a_logger_keeps_no_queue_of_the_events_it_handled():
         ln.pump()
     assert len(ln.events) == ln.events.maxlen <= 1000 and ln.events[-1][1] == {"n": 2999}
     ln.ser.close()
+
+
+def test_commands_attach_to_the_logger_that_owns_the_port(tmp_path):
+    # One owner of the serial port: while `log` runs, status, tune and memory reach the
+    # board through its hub with their usual output, and every record lands once.
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--carrier", "10@14.2e6",
+                          "--dir", str(tmp_path / "flash")], stdout=subprocess.PIPE,
+                         stderr=subprocess.DEVNULL, text=True)
+    lg = None
+    db = tmp_path / "station.sqlite"
+    try:
+        pty = p.stdout.readline().strip()
+        lg = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(db), "--json"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        from feedmatch.board.hub import hub_alive, hub_path
+
+        assert _wait(lambda: hub_alive(hub_path(pty)), 10), "the logger owns the port through a hub"
+        r = run_cli("status", "--port", pty)
+        assert r.returncode == 0 and "board hollow-oak-1" in r.stdout, r.stderr
+        r = run_cli("tune", "--port", pty, "--freq", "14.2e6", "--json", timeout=60)
+        assert r.returncode == 0 and json.loads(r.stdout)["outcome"] == "locked", r.stderr
+        r = run_cli("memory", "--port", pty, "--json")
+        assert r.returncode == 0 and json.loads(r.stdout)["entries"]
+        r = run_cli("deploy", "--port", pty)  # mpremote needs the port to itself: said, not hung
+        assert r.returncode == 2 and "in use by a running feedmatch log" in r.stderr
+        time.sleep(4.0)  # the logger's next status poll
+        lg.send_signal(signal.SIGTERM)
+        out, _err = lg.communicate(timeout=20)
+    finally:
+        if lg is not None and lg.poll() is None:
+            lg.kill()
+        p.send_signal(signal.SIGINT)
+        p.wait(10)
+    seqs = [r["seq"] for r in _rows(str(db))]
+    assert seqs == sorted(set(seqs)) and len(seqs) >= 2  # the boot tune and the asked one, once each
+    assert json.loads(out)["added"] == len(seqs)
+
+
+def test_a_killed_owner_leaves_no_one_locked_out(tmp_path):
+    # SIGKILL gives the owner no chance to remove its socket: the next commands see a
+    # dead hub, open the port themselves, and a new logger takes over.
+    from feedmatch.board.hub import hub_alive, hub_path
+
+    p = subprocess.Popen([str(BIN / "feedmatch"), "virtual-board", "--dir", str(tmp_path / "flash")],
+                         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    procs = []
+    try:
+        pty = p.stdout.readline().strip()
+        for _ in range(2):
+            lg = subprocess.Popen([str(BIN / "feedmatch"), "log", "--port", pty, "--db", str(tmp_path / "s.sqlite")],
+                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            procs.append(lg)
+            assert _wait(lambda: hub_alive(hub_path(pty)), 15)
+            lg.send_signal(signal.SIGKILL)
+            lg.wait(10)
+            assert hub_path(pty).exists() and not hub_alive(hub_path(pty))  # stale
+            r = run_cli("status", "--port", pty)
+            assert r.returncode == 0 and "board hollow-oak-1" in r.stdout, r.stderr
+    finally:
+        for q in procs:
+            if q.poll() is None:
+                q.kill()
+        p.send_signal(signal.SIGINT)
+        p.wait(10)
+
+
+def test_the_hub_says_busy_and_owned_by_type(board):
+    """The errors a hub's start gives are typed where they arise: PortBusy while another
+    program holds the port open, PortOwned where another feedmatch process's hub runs
+    (then ensure_hub attaches instead of failing)."""
+    from feedmatch.board.hub import ensure_hub
+    from feedmatch.errors import PortBusy, PortOwned
+
+    _vs, pty = board
+    with serial.Serial(pty, 115200, timeout=0.1, exclusive=True):
+        with pytest.raises(PortBusy, match="busy"):
+            LinkHub(pty).start()
+    path = hub_path(pty)
+    other = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)  # another process's hub, listening
+    other.bind(str(path))
+    other.listen(4)
+    try:
+        with pytest.raises(PortOwned, match="already owns"):
+            LinkHub(pty).start()
+        assert ensure_hub(pty) is None  # attach to the owner, never a second owner
+        with serial.Serial(pty, 115200, timeout=0.1, exclusive=True):
+            pass  # the refused start let the port go again
+    finally:
+        other.close()
+        path.unlink()
