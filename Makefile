@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench lint mpy clean readme sysdeps
+.PHONY: demo test test-slow test-all bench lint mpy clean readme sysdeps
 
 NECPP  := third_party/necpp
 
@@ -34,7 +34,15 @@ sysdeps:
 	        >/dev/null 2>&1 || echo "note: apt-get could not install libhamlib-utils/chromium; those tests skip"; \
 	    else echo "note: rigctld, ampctld or chromium missing and apt-get not usable here; those tests skip"; fi; }
 
+# The tests; the slow ones (marked slow: the emulated RP2040, the real browser, the wheel
+# build, NEC-2 at every frequency) apart in test-slow. CI (.ci/run) runs both; test-all is one run of all.
 test: $(STAMP) sysdeps
+	$(BIN)/python -m pytest -q -m "not slow"
+
+test-slow: $(STAMP) sysdeps
+	$(BIN)/python -m pytest -q -m slow
+
+test-all: $(STAMP) sysdeps
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)

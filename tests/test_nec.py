@@ -161,6 +161,7 @@ def test_engine_answer_does_not_depend_on_wire_or_frequency_order(f_mhz):
     assert nec.engine_fixed(), f"necpp {nec.engine()} is not the fixed build"
 
 
+@pytest.mark.slow  # NEC-2 at every frequency of two sweeps: make test-slow (CI runs it after make test)
 @pytest.mark.parametrize("name", ["demo", "coil"])
 def test_adaptive_sweep_matches_solving_every_frequency(name):
     # The demo vertical over real ground, and the coil example whose coil and top hat make a

@@ -133,6 +133,7 @@ def test_read_only_by_default_and_logbook_alone(tmp_path):
     assert run_cli("serve", "--http-port", "8").returncode == 2  # neither a board nor a logbook
 
 
+@pytest.mark.slow  # a real browser: make test-slow (CI runs it after make test)
 @pytest.mark.skipif(CHROMIUM is None, reason="Debian's chromium is not installed (`make test` installs it "
                     "where it may run apt-get)")
 def test_the_page_in_a_real_browser_shows_the_box_and_follows_a_tune(served, tmp_path):
@@ -221,6 +222,7 @@ CanvasRenderingContext2D.prototype.clearRect = function (...a) {
 _TAB10 = [(31, 119, 180), (255, 127, 14), (44, 160, 44)]
 
 
+@pytest.mark.slow  # a real browser: make test-slow (CI runs it after make test)
 @pytest.mark.skipif(CHROMIUM is None, reason="Debian's chromium is not installed (`make test` installs it "
                     "where it may run apt-get)")
 def test_the_page_charts_read_at_a_glance(tmp_path):

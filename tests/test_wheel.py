@@ -15,6 +15,8 @@ import pytest
 
 from .conftest import BIN, ROOT
 
+pytestmark = pytest.mark.slow  # builds and installs a wheel: make test-slow (CI runs it after make test)
+
 
 @pytest.fixture(scope="module")
 def installed(tmp_path_factory) -> dict:
