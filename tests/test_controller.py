@@ -578,3 +578,32 @@ def test_mem_put_decides_alike_under_the_unix_port(micropython):
     for out in outs:
         assert out[:len(want)] == want
     assert len(outs) == 2 or not FLOAT32.parent.exists()  # the float32 port where ../shared has it
+
+
+def test_the_request_table_is_the_protocol_and_its_guards_hold(tmp_path):
+    """REQUESTS is every request the link takes (docs/protocol.md lists the same words);
+    during a tune each entry marked not-while-tuning answers busy before its function runs,
+    and in a fault each marked not-in-fault answers fault; the others still answer."""
+    import re
+
+    from fmlogic import controller as fctl
+
+    from .conftest import ROOT
+
+    doc = (ROOT / "docs" / "protocol.md").read_text()
+    section = doc[doc.index("## Requests"):doc.index("## Events")]
+    assert set(fctl.REQUESTS) == set(re.findall(r"^\| `([a-z-]+)` \|", section, re.M))
+    _m, _b, ctl = _setup(tmp_path)
+    ctl.tune = object()  # a tune under way (its object is never looked at by the guards)
+    for word, (_fn, guards) in fctl.REQUESTS.items():
+        ok, reply = ctl._handle(word, {})
+        if guards & fctl._NOT_TUNING:
+            assert (ok, reply) == (False, {"why": "busy"}), word
+        else:
+            assert reply.get("why") != "busy", word
+    ctl.tune = None
+    ctl.state, ctl.why = FAULT, "test fault"
+    for word, (_fn, guards) in fctl.REQUESTS.items():
+        if guards & fctl._NOT_IN_FAULT:
+            assert ctl._handle(word, {}) == (False, {"why": "fault", "msg": "test fault"}), word
+    assert ctl._handle("no-such", {}) == (False, {"why": "unknown-request", "msg": "no-such"})
