@@ -156,6 +156,8 @@ def test_coupler_calibration_rehearsed_on_the_virtual_board(tmp_path):
     assert "reflected port leakage" in r.stdout and "wrote detector.coupler" in r.stdout
     c = json.loads(cfg.read_text())
     assert validate(c) == [] and len(c["detector"]["coupler"]) == 6
+    # The element scales measured with it, which fit-box --coupler holds in its refinement.
+    assert len(c["detector"]["coupler_scales"]) == 14 and all(0.8 < s < 1.2 for s in c["detector"]["coupler_scales"])
     # The demo station's coupler: 25 dB at 28 MHz, 20 dB per decade better below
     # (feedmatch.rf.detector): about 31 dB at 14.2 MHz, |d| 0.028; the fit sees the
     # input strays too, so only its order is checked.

@@ -238,3 +238,119 @@ def test_fit_box_on_thin_logbooks_refuses_to_write():
 
     z, refused = agreement(35, 60)
     assert len(z) >= 8 and all(refused)
+
+
+def _model_traces(net, dr, df, k, n, seed):
+    """Logged tunes as the error-box model itself reads them (fmlogic.coupler's
+    m = k |G + d_r| / |1 + d_f G|), raw and rounded to 1e-3 like the record's trace."""
+    import numpy as np
+    from feedmatch.rf.network import StateTable
+    from feedmatch.sim.fitbox import Trace
+    from feedmatch.sim.loads import smith_loads
+
+    rng = random.Random(seed)
+    tab = StateTable(net)
+    out = []
+    for ld in smith_loads(n, seed=seed, gamma_max=0.9):
+        g = tab.gamma(ld.freq_hz, ld.z)
+        sts = [(rng.randrange(1 << net.n_l), rng.randrange(1 << net.n_c), rng.randrange(2)) for _ in range(8)]
+        m = [k * abs(complex(g[sh, l, c]) + dr) / abs(1 + df * complex(g[sh, l, c])) for l, c, sh in sts]
+        out.append(Trace(ld.freq_hz, np.asarray(sts), np.round(np.asarray(m), 3)))
+    return out
+
+
+def test_refinement_from_traces_recovers_the_error_box():
+    # The logged tunes' loads are unknowns (two numbers each, as fit-box fits them) and
+    # the error box is shared: Engen's multi-state least squares (IEEE T-MTT 28(12), 1980)
+    # with the loads as unknown standards.  Readings from the model, exact parts: the
+    # fit returns the box's d_r, d_f and k without a prior.
+    from feedmatch.rf.network import load_network
+    from feedmatch.sim.coupler_cal import refine_from_traces, refine_refusal
+
+    net = load_network()
+    dr = cmath.rect(0.12, math.radians(130.0))
+    df = cmath.rect(0.09, math.radians(-40.0))
+    k = 10 ** (-0.3 / 20)
+    res = refine_from_traces(net, _model_traces(net, dr, df, k, 60, 5), None)
+    assert abs(complex(*res["d_r"]) - dr) < 0.01 and abs(complex(*res["d_f"]) - df) < 0.015
+    assert res["k"] == pytest.approx(k, rel=0.01)
+    assert res["rms"] < 0.002 and res["d_r_sigma"] < 0.02 and res["d_f_sigma"] < 0.02
+    # The truth inside the stated bound (err: three sigma), and fit to write.
+    assert abs(complex(*res["d_r"]) - dr) <= res["err"] and refine_refusal(res) is None
+    assert validate({"detector": {"coupler": res["config"]}}) == []
+
+
+def test_refinement_refuses_what_the_data_cannot_support():
+    from feedmatch.sim.coupler_cal import refine_refusal
+
+    good = {"rms": 0.01, "d_r_sigma": 0.005, "d_f_sigma": 0.008, "traces": 200}
+    assert refine_refusal(good) is None
+    assert "unexplained" in refine_refusal(dict(good, rms=0.05))
+    assert "more tunes" in refine_refusal(dict(good, d_f_sigma=0.04))
+    assert "more tunes" in refine_refusal(dict(good, d_r_sigma=float("nan")))
+
+
+def test_refinement_on_the_plant_agrees_between_two_logbooks():
+    # One drawn box (5 % parts, strays, a 20-25 dB coupler with its own phase per port):
+    # two logbooks of independent tunes made with the calibration's terms give refined
+    # leakage vectors that agree within their combined stated uncertainty (three sigma).
+    from feedmatch.bench.coupler import _boxes
+    from feedmatch.sim.coupler_cal import calibrate_box, refine_from_traces, traces_from_results
+    from feedmatch.sim.loads import smith_loads
+    from feedmatch.sim.scorer import ScoreConfig, score
+
+    net, box, det = _boxes(20, 25, 1, 8100)[0]
+    fit = calibrate_box(net, box.network, det, seed=box.seed)
+    runs = []
+    for seed in (61, 62):
+        res = score(smith_loads(120, seed=seed), box.network, net,
+                    ScoreConfig(strategy="model", detector=det, seed=seed, learned=fit.learned()), det=det,
+                    workers=1)
+        runs.append(refine_from_traces(net, traces_from_results(res, fit.learned()), fit))
+    a, b = runs
+    for key in ("d_r", "d_f"):
+        d = abs(complex(*a[key]) - complex(*b[key]))
+        assert d <= 3 * math.hypot(a[key + "_sigma"], b[key + "_sigma"]), (key, d, a[key + "_sigma"])
+    assert a["rms"] < 0.05 and b["rms"] < 0.05
+
+
+def test_fit_box_coupler_refines_and_writes_the_board_config(tmp_path):
+    # fit-box --coupler on a logbook of tunes read through a known error box: the
+    # calibration's terms in the config are the prior (here 0.04 off, stated err 0.1),
+    # the refined ones go back into detector.coupler; a thin logbook is one line, exit 2.
+    import json
+
+    from feedmatch.board import deploy
+    from feedmatch.logbook.store import Logbook
+    from feedmatch.rf.network import load_network
+
+    from .conftest import run_cli
+
+    net = load_network()
+    dr = cmath.rect(0.1, math.radians(70.0))
+    df = cmath.rect(0.08, math.radians(200.0))
+    k = 10 ** (0.2 / 20)
+    book = Logbook(tmp_path / "log.sqlite")
+    for i, t in enumerate(_model_traces(net, dr, df, k, 50, 9)):
+        flat = [int(x) for row in zip(t.states[:, 0], t.states[:, 1], t.states[:, 2],
+                                      (t.gamma * 1000 + 0.5).astype(int)) for x in row]
+        book.add({"board_id": "hilltop", "seq": i + 1, "freq_hz": t.freq_hz, "trace": flat, "outcome": "locked"})
+    book.close()
+    cfg = json.loads((deploy.CONFIGS / "rp2040.json").read_text())
+    p0 = dr + 0.03 - 0.03j
+    cfg.setdefault("detector", {})["coupler"] = [p0.real, p0.imag, df.real, df.imag, 1.0, 0.1]
+    cfg["detector"]["coupler_scales"] = [1.0] * (net.n_l + net.n_c)
+    cfgp = tmp_path / "board.json"
+    cfgp.write_text(json.dumps(cfg))
+    r = run_cli("fit-box", "--db", str(tmp_path / "log.sqlite"), "--coupler", "--write", str(cfgp))
+    assert r.returncode == 0, r.stderr
+    assert "+-" in r.stdout and "wrote detector.coupler" in r.stdout
+    got = json.loads(cfgp.read_text())["detector"]["coupler"]
+    assert abs(complex(got[0], got[1]) - dr) < 0.01 and abs(complex(got[2], got[3]) - df) < 0.015
+    assert got[4] == pytest.approx(k, rel=0.01) and got[5] < 0.1
+    assert (tmp_path / "board.json.bak").exists()
+    thin = Logbook(tmp_path / "thin.sqlite")
+    thin.add({"board_id": "hilltop", "seq": 1, "freq_hz": 7.1e6, "trace": [1, 2, 0, 500] * 5})
+    thin.close()
+    r = run_cli("fit-box", "--db", str(tmp_path / "thin.sqlite"), "--coupler", "--write", str(cfgp))
+    assert r.returncode == 2 and "at least 20" in r.stderr and len(r.stderr.strip().splitlines()) == 1

@@ -39,6 +39,11 @@ DEFAULTS = {
         # (feedmatch calibrate --coupler): [d_r re, d_r im, d_f re, d_f im,
         # gain ratio k, error bound]; null until learned (fmlogic.coupler).
         "coupler": None,
+        # The element scales (fitted over nominal, inductors then capacitors)
+        # the same calibration measured with it; the firmware leaves them to
+        # the host, whose refinement from logged tunes (fit-box --coupler)
+        # holds them.  null until learned.
+        "coupler_scales": None,
     },
     "power": {
         "min_tune_w": 2.0,
@@ -225,6 +230,13 @@ def validate(cfg):
                 or not 0.5 <= cp[4] <= 2.0 or not 0.0 <= cp[5] <= 0.2):
             errs.append("detector.coupler must be null or [d_r re, d_r im, d_f re, d_f im, k, err] "
                         "with |d| < 0.6, k in 0.5..2, err in 0..0.2")
+    cs = det.get("coupler_scales")
+    if cs is not None:
+        li, ci = net.get("inductors_uh"), net.get("capacitors_pf")
+        n_el = len(li) + len(ci) if isinstance(li, list) and isinstance(ci, list) else len(cs or [])
+        if (not isinstance(cs, list) or len(cs) != n_el or not all(_is_num(x) and 0.5 <= x <= 2.0 for x in cs)):
+            errs.append("detector.coupler_scales must be null or one scale in 0.5..2 per element "
+                        "(inductors, then capacitors)")
     p = m["power"]
     if not errs:
         if p["min_tune_w"] >= p["max_tune_w"]:

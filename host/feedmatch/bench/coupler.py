@@ -6,7 +6,10 @@ verticals, per directivity band.
 cold:    the box knows what the dummy-load passes measure: |d_r|, |d_f|.
 learned: the box knows the error box the multi-state calibration fits
          (sim.coupler_cal: the dummy load and the network's own states).
-Neither ever sees the plant's leakage vectors, the true element values, the
+learned_log: the calibration's terms refined from the box's own logbook:
+         the traces of up to 200 tunes it made with them (sim.coupler_cal.
+         refine_from_traces), the loads unknown, as fit-box fits.
+None ever sees the plant's leakage vectors, the true element values, the
 true load or the optimum.  Success counts loads whose true best is at or
 below SWR 1.4 and ends at true SWR <= 1.5; a false lock is a tune that ends
 `locked` above 1.5, over every tune.
@@ -19,6 +22,7 @@ from dataclasses import replace
 from typing import Any
 
 BANDS = ((15, 20), (20, 25), (25, 30))
+MODES = ("cold", "learned", "learned_log")
 MATCHABLE_SWR = 1.4
 
 
@@ -39,22 +43,38 @@ def _boxes(lo: float, hi: float, n: int, seed0: int):
 
 
 def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
-    from feedmatch.sim.coupler_cal import calibrate_box
+    from feedmatch.sim.coupler_cal import calibrate_box, refine_from_traces, traces_from_results
     from feedmatch.sim.loads import smith_loads, vertical_loads
     from feedmatch.sim.scorer import ScoreConfig, run_parallel, summarise
 
     n_boxes = 3 if quick else 8
     sm = smith_loads(60 if quick else 150, seed=41)
     vl = [ld for ld in vertical_loads(80 if quick else 200, seed=42) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
-    out: dict[str, Any] = {"coupler_matchable_swr": MATCHABLE_SWR}
+    # The logbook each box keeps after its calibration: tunes on other loads than the ones
+    # scored (other seeds), verticals and the Smith chart, across the bands.
+    n_log = 100 if quick else 200
+    logl = [ld for ld in vertical_loads(n_log, seed=43) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
+    logl = (logl[: n_log // 2] + smith_loads(n_log, seed=44))[:n_log]
+    out: dict[str, Any] = {"coupler_matchable_swr": MATCHABLE_SWR, "coupler_log_tunes": len(logl)}
+    errs: dict[str, list[float]] = {"learned": [], "learned_log": []}
     for lo, hi in BANDS:
         boxes = _boxes(lo, hi, n_boxes, 6100 + 100 * lo)
         fits = [calibrate_box(net, box.network, det, seed=box.seed) for net, box, det in boxes]
-        for mode in ("cold", "learned"):
+        jobs = [(logl, box.network, net, ScoreConfig(strategy="model", detector=det, seed=900 + k,
+                                                     learned=fit.learned()), det)
+                for k, ((net, box, det), fit) in enumerate(zip(boxes, fits))]
+        logs = run_parallel(jobs, 2)
+        refined = []
+        for (net, _box, _det), fit, res in zip(boxes, fits, logs):
+            rf = refine_from_traces(net, traces_from_results(res, fit.learned()), fit)
+            refined.append(tuple(rf["config"]))
+            errs["learned"].append(fit.err)
+            errs["learned_log"].append(rf["err"])
+        for mode in MODES:
             jobs = []
-            for k, ((net, box, det), fit) in enumerate(zip(boxes, fits)):
-                cfg = ScoreConfig(strategy="model", detector=det, seed=k,
-                                  learned=fit.learned() if mode == "learned" else None)
+            for k, ((net, box, det), fit, rfd) in enumerate(zip(boxes, fits, refined)):
+                lrn = {"cold": None, "learned": fit.learned(), "learned_log": rfd}[mode]
+                cfg = ScoreConfig(strategy="model", detector=det, seed=k, learned=lrn)
                 jobs.append((sm, box.network, net, cfg, det))
                 jobs.append((vl, box.network, net, cfg, det))
             parts = run_parallel(jobs, 2)
@@ -72,4 +92,7 @@ def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
             out[f"{key}_false_lock_rate"] = round(s_all["false_lock_rate"], 4)
             locked = sum(1 for r in smith + vert if r["outcome"] == "locked")
             out[f"{key}_lock_rate"] = round(locked / max(len(smith) + len(vert), 1), 4)
+    # The error bound each learning step states (median over the boxes, |gamma|).
+    for mode, v in errs.items():
+        out[f"coupler_{mode}_median_err"] = round(sorted(v)[len(v) // 2], 4)
     return out

@@ -210,7 +210,8 @@ def run_coupler(a: argparse.Namespace, out: TextIO, on_prompt: Callable[[float],
         raise InputError(f"the readings do not fit a coupler (residual {fit.rms:.3f}): check the dummy load "
                          "and the carrier; the config is unchanged")
     cfg.setdefault("detector", {})
-    cfg["detector"] = dict(cfg["detector"], coupler=list(fit.learned()))
+    cfg["detector"] = dict(cfg["detector"], coupler=list(fit.learned()),
+                           coupler_scales=[round(v, 4) for v in fit.scales])
     errs = fcfg.validate(cfg)
     if errs:
         raise InputError(f"the coupler calibration does not validate: {errs[0]}")
