@@ -310,3 +310,28 @@ def test_a_zero_reading_draws_the_contrast_reading_unless_the_detector_was_seen_
     s.propose()
     s.observe_gamma(0.0)
     assert s.done and s.n == 1 and s.result()[0] == st and s.result()[0] != search.BYPASS
+
+
+def test_a_recalled_state_reading_the_target_short_of_proof_gets_a_short_local_search_only():
+    # A computed preset (its SWR predicted, never read) reads SWR 1.4 where a leaky coupler
+    # cannot prove 1.5: a few neighbours may prove one, then the tune ends best-effort
+    # instead of walking the relays under the carrier through a cold search.
+    from fmlogic import controller, search
+    from fmlogic.swr import gamma_from_swr
+
+    def run(asked):
+        s = _recall((11, 5, 1, 1.3, 0))
+        s.retry_best = True  # not a stored best effort
+        s.asked = asked
+        g = gamma_from_swr(1.4)
+        assert s.accept_g < g <= s.target_g
+        while not s.done and s.n < 40:
+            s.propose()
+            s.observe_gamma(g + 0.001 * s.n)  # every neighbour reads no better
+        return s
+
+    s = run(False)
+    assert s.done and s.n == 1 + search._CONFIRM_LOCAL
+    outcome, final, _t, _swr, _keep, note = controller.conclude(s)
+    assert outcome == controller.BEST and final == (11, 5, 1) and "cannot prove" in note
+    assert run(True).n > 1 + search._CONFIRM_LOCAL  # the operator's tune searches on

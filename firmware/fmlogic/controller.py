@@ -317,7 +317,8 @@ class Controller:
         # Asked for (the host's request, the button), or a state the host computed (its SWR a
         # prediction, never read): a best effort is searched again; an automatic tune or a
         # preset's confirmation keeps a stored best effort that reads as it was stored.
-        strat.retry_best = why in ("request", "button") or not measured
+        strat.asked = why in ("request", "button")
+        strat.retry_best = strat.asked or not measured
         # A zero first reading of a stored or preset state is a match, not a dead reflected
         # detector, when that detector read a reflection lately: no contrast reading (two
         # relay changes under the carrier).  A cold tune still checks.

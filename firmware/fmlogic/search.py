@@ -53,6 +53,9 @@ _PROBE_BELOW = 0.7
 _HOPELESS_EXTRA = const(10)
 # How far a stored lock's reading may come back above the accept level (noise).
 _REPEAT = 0.02
+# Readings a recalled or preset state that reads the target may spend on its neighbours for a
+# proof (the coupler's bounds) before the tune ends best-effort: relay changes under the carrier.
+_CONFIRM_LOCAL = const(6)
 # A hunt probe aims two hyperbolic units short of its hypothesis: a reading
 # there of tanh(1) = 0.76 is a hit; below this, the fit can take over.
 _HIT = 0.86
@@ -125,6 +128,9 @@ class Strategy:
         self.hint = memory_hint
         # Recall: search again from a best effort that reads as stored (an operator's tune).
         self.retry_best = False
+        # ... and a tune the operator asked for (no cap on the local search from a hint).
+        self.asked = False
+        self._cap = 0  # readings after which the search ends (0: the budget only)
         # The controller: the reflected detector read a reflection lately (no contrast reading).
         self.ref_alive = False
         self.seen = {}
@@ -338,7 +344,7 @@ class Strategy:
             g = yield state
         elif self._lost is not None:
             self._revive(state, g)
-        if self._satisfied():
+        if self._satisfied() or (self._cap and self.n >= self._cap):
             raise _Stop()
         return g
 
@@ -1021,8 +1027,16 @@ class Recall(ModelFit):
                 self.confirmed = True
                 return
             if g <= _NEAR:
+                short = g <= self.target_g and not self.asked
+                if short:
+                    # The state reads the target, short of proof (the coupler's bounds):
+                    # a few local readings may prove a neighbour; past them the search
+                    # would walk the relays under the carrier for a proof it rarely
+                    # finds.  It then ends best-effort with its bound; a tune the
+                    # operator asks for searches on.
+                    self._cap = self.n + _CONFIRM_LOCAL
                 yield from self._local()
-                if self.best_g <= self.accept_g:
+                if self.best_g <= self.accept_g or short:
                     return
             # The stored state led to no lock: the cold search, as if from
             # nothing (a model fitted to the readings around a wrong valley
