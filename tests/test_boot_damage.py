@@ -24,7 +24,7 @@ from .conftest import FIRMWARE
 from .fakes import FakeBoard, board_config, make_model
 
 FILES = ["config.json", "board.uid", "boot.cnt", "boot.try", "mem.dat", "mem.bak", "mem.last", "rec/0.log", "rec.top",
-         "tune.jnl", "fault.txt"]
+         "rec/q/9", "tune.jnl", "fault.txt"]
 DAMAGES = ["missing", "empty", "cut", "random", "half", "huge"]
 HUGE = 1 << 20  # 1 MB: more than the heap the unix-port run gets (and most of a Pico's flash)
 
@@ -70,14 +70,17 @@ for d in DIRS:
 
 
 def _lived(tmp_path):
-    """A board directory after a few tunes: every file it keeps is there."""
+    """A board directory after a few tunes: every file it keeps is there (9 records:
+    8 moved into rec/0.log, the 9th still in rec/q; the memory saved whole twice, as
+    after many changes, and its last change held by a record only)."""
     d = tmp_path / "lived"
     d.mkdir()
     (d / "config.json").write_text(json.dumps(board_config()))
     m = make_model()
     b = FakeBoard(m)
     ctl = Controller(b, board_config(), str(d))
-    for f in (7.1e6, 14.2e6, 3.6e6):
+    for i, f in enumerate((7.1e6, 14.2e6, 21.2e6) * 3):
+        memory.SAVE_EVERY = 1 if i < 2 else 32
         m.key(10.0, f)
         seq = ctl.rec.seq
         for _ in range(400):
@@ -87,9 +90,10 @@ def _lived(tmp_path):
         m.key(0.0, 0.0)
         for _ in range(3):
             ctl.step()
-    assert ctl.rec.seq >= 3 and (d / "mem.bak").exists()
+    assert ctl.rec.seq == 9 and (d / "mem.bak").exists() and (d / "rec" / "q" / "9").exists()
+    assert ctl.mem.nlog >= 1  # a change only a record holds
     memory.journal_write(str(d), {"freq_hz": 7.1e6, "before": [0, 0, 1, 1], "swr_before": 3.0,
-                                  "strategy": "model"})
+                                  "strategy": "model", "seq": ctl.rec.seq + 1})
     (d / "boot.try").write_text("1\n")
     (d / "fault.txt").write_text("boot 1: nothing (test)\n")
     return d, ctl.rec.seq
@@ -163,7 +167,7 @@ def test_every_damaged_file_ends_in_a_working_start_alike_on_both_ports(damaged,
             assert a["kind"] == "Controller" and a["state"] != "fault", what
         else:
             assert a["kind"] == "Controller" and a["state"] != "fault", what
-        if name in ("board.uid", "mem.dat", "rec/0.log") and kind not in ("missing",):
+        if name in ("board.uid", "mem.dat", "rec/0.log", "rec/q/9") and kind not in ("missing",):
             assert a["warn"] >= 1, what  # the damage is said, not swallowed
 
 

@@ -45,8 +45,16 @@ def _backfill(ctl, book, key):
 def _damage(d, rnd):
     """One of the things a box's flash meets, at a random moment."""
     segs = sorted((d / "rec").glob("*.log"), key=lambda p: int(p.stem)) if (d / "rec").exists() else []
-    kind = rnd.choice(["cut", "random", "empty", "gone", "all-gone", "top-gone", "top-random", "none"])
-    if kind in ("cut", "random", "empty", "gone") and segs:
+    q = sorted((d / "rec" / "q").glob("*"), key=lambda p: int(p.name)) if (d / "rec" / "q").exists() else []
+    kind = rnd.choice(["cut", "random", "empty", "gone", "all-gone", "top-gone", "top-random", "none",
+                       "q-gone", "q-random"])
+    if kind in ("q-gone", "q-random") and q:
+        # A record still in its own file (rec/q, not yet moved into its segment).
+        if kind == "q-gone":
+            q[-1].unlink()
+        else:
+            q[-1].write_bytes(bytes(rnd.getrandbits(8) for _ in range(40)))
+    elif kind in ("cut", "random", "empty", "gone") and segs:
         p = segs[-1]
         raw = p.read_bytes()
         if kind == "cut":
@@ -81,7 +89,7 @@ def test_damage_at_random_moments_loses_and_doubles_nothing(tmp_path):
     cfg["records"] = {"keep": 60}
     kinds = []
     freqs = [3.6e6, 7.1e6, 10.12e6, 14.2e6, 18.1e6, 21.2e6]
-    for _session in range(14):
+    for _session in range(18):
         b = FakeBoard(m)
         ctl = Controller(b, cfg, str(d))
         key = board_key({"board_id": ctl.cfg["board_id"], "uid": ctl.uid})
@@ -115,6 +123,7 @@ def test_damage_at_random_moments_loses_and_doubles_nothing(tmp_path):
     lost = [k for k in produced if held.get(k) != produced[k]]
     doubled = [k for k in held if k not in produced]
     assert len(produced) > 40 and set(kinds) - {"none"}, kinds
+    assert {"q-gone", "q-random"} & set(kinds), kinds  # the records waiting in rec/q were hit too
     assert lost == [] and doubled == [], (lost, doubled, kinds)
     # The logbook says where history went missing.
     notes = [n[3] for n in book.notes()]
@@ -130,7 +139,11 @@ def test_records_ram_does_not_grow_and_old_segments_go_whole(tmp_path):
     names = sorted(int(p.stem) for p in (tmp_path / "rec").glob("*.log"))
     # keep 120 = 3 segments of 50, plus the one being written
     assert names == list(range(1000 // memory.SEG - 3, 1000 // memory.SEG + 1))
-    assert set(vars(r)) == {"d", "keep", "seq", "first", "cur", "lost", "note", "floor_lost", "err"}
+    assert set(vars(r)) == {"d", "keep", "seq", "first", "cur", "lost", "note", "floor_lost", "err", "npend",
+                            "tail"}
+    # At most a batch waits in files of its own (rec/q), and no record stays in RAM.
+    assert r.npend < memory.BATCH and r.tail is None
+    assert len(list((tmp_path / "rec" / "q").iterdir())) == r.npend
     got = r.since(0, 3)
     assert [x["seq"] for x in got] == [names[0] * memory.SEG, names[0] * memory.SEG + 1,
                                        names[0] * memory.SEG + 2]
@@ -180,3 +193,75 @@ def test_after_a_restart_what_was_just_learned_is_not_the_first_to_go(tmp_path):
     again.store(21.2e6, (9, 9, 0), 1.1, 9)
     assert again.lookup(14.2e6)[:3] == (7, 8, 0) and again.lookup(21.2e6)[:3] == (9, 9, 0)
     assert again.lookup(3.5e6) is None and again.lookup(3.6e6) is None  # the two oldest went
+
+
+def _tune(ctl, m, f):
+    m.key(10.0, f)
+    seq = ctl.rec.seq
+    for _ in range(400):
+        ctl.step()
+        if ctl.rec.seq > seq:
+            break
+    m.key(0.0, 0.0)
+    for _ in range(3):
+        ctl.step()
+
+
+def test_a_tune_end_writes_its_record_and_a_reset_loses_no_memory_change(tmp_path):
+    """The memory's changes ride in the tune records (saved whole every SAVE_EVERY
+    changes): a reset at any point after a record puts back every change and the last
+    state, in the same order, so the memory equals the one that never reset."""
+    cfg = board_config()
+    m = make_model()
+    ctl = Controller(FakeBoard(m), cfg, str(tmp_path))
+    freqs = [7.1e6, 7.15e6, 14.2e6, 14.25e6, 21.2e6, 10.12e6]
+    for f in freqs:
+        _tune(ctl, m, f)
+        if ctl.rec.seq == 1:
+            ctl.mem.whole = True  # one whole save early on: the later changes ride in records only
+            ctl.mem.flush(ctl.rec.seq)
+    assert ctl.mem.nlog >= 3 and ctl.mem.upto == 1
+    # No mem.last, no new mem.dat at a tune's end: the records hold them.
+    assert not (tmp_path / "mem.last").exists()
+    again = Controller(FakeBoard(m), cfg, str(tmp_path))
+    assert again.mem.entries == ctl.mem.entries and again.mem.n == ctl.mem.n
+    assert again.mem.last == ctl.mem.last and again.mem.nlog == ctl.mem.nlog
+    # The SAVE_EVERY-th change saves the whole memory; the next start replays nothing.
+    for i in range(memory.SAVE_EVERY):
+        if again.mem.nlog == 0:
+            break
+        _tune(again, m, 3.55e6 + i * 30e3)
+    third = Controller(FakeBoard(m), cfg, str(tmp_path))
+    assert third.mem.entries == again.mem.entries and third.mem.last == again.mem.last
+
+
+def test_a_lost_record_file_never_gives_its_number_again(tmp_path):
+    """A record still in rec/q that disappears: the tune journal's number keeps it used."""
+    cfg = board_config()
+    m = make_model()
+    ctl = Controller(FakeBoard(m), cfg, str(tmp_path))
+    for f in (7.1e6, 14.2e6, 21.2e6):
+        _tune(ctl, m, f)
+    top = ctl.rec.seq
+    (tmp_path / "rec" / "q" / str(top)).unlink()
+    again = Controller(FakeBoard(m), cfg, str(tmp_path))
+    assert again.rec.seq == top and again.rec.lost == (top, top)
+    assert any("missing" in w for w in again.warnings)
+    _tune(again, m, 7.1e6)
+    assert again.rec.seq == top + 1
+    # And a reset between the move into the segment and the removal of the small files:
+    # the copies are recognised, nothing is read twice.
+    (tmp_path / "b").mkdir()
+    r = memory.Records(str(tmp_path / "b"), 200)
+    r.load()
+    for i in range(memory.BATCH + 2):
+        r.add({"freq_hz": float(i)})
+    q = tmp_path / "b" / "rec" / "q"
+    kept = {p.name: p.read_bytes() for p in q.iterdir()}
+    r.settle()
+    for name, raw in kept.items():
+        (q / name).write_bytes(raw)  # as if the removals never happened
+    r2 = memory.Records(str(tmp_path / "b"), 200)
+    r2.load()
+    assert r2.seq == memory.BATCH + 2 and r2.npend == 0 and not list(q.iterdir())
+    assert [x["seq"] for x in r2.since(0, 100)] == list(range(1, memory.BATCH + 3))

@@ -110,6 +110,7 @@ class Controller:
         self.rec.load()
         if self.rec.note:
             self.warnings.append(self.rec.note)
+        self._replay()
         if self.rec.floor_lost and had_uid and self.boot > 1:
             # The record store and its floor are gone but the board had a history:
             # its numbers would start again at 1 under the same identity, so it takes
@@ -126,6 +127,20 @@ class Controller:
             self.advice = ADVICE_CONFIG
         jn = memory.journal_take(d)
         if jn is not None:
+            # The journal's number is a floor: a tune under way (seq: the number its
+            # record was to take) or ended ("done": the number its record took). A
+            # record lost from rec/q after it went out is not given again.
+            done = jn.get("done")
+            s = jn.get("seq")
+            if isinstance(done, int):
+                jn = None
+            elif isinstance(s, int):
+                if self.rec.seq >= s:
+                    jn = None  # the tune ended in its record before the journal was marked
+                done = s - 1
+            if isinstance(done, int) and self.rec.floor(done):
+                self.warnings.append(self.rec.note)
+        if jn is not None:
             self._record(jn.get("freq_hz", 0.0), jn.get("before"), jn.get("before"), "reset",
                          "board reset during tune", swr_before=jn.get("swr_before", -1.0), n=jn.get("n", 0),
                          strategy=jn.get("strategy", ""))
@@ -141,6 +156,36 @@ class Controller:
             ev["lost"] = [self.rec.lost[0], self.rec.lost[1]]
         self._event("boot", ev)
 
+    def _replay(self):
+        """The last state and the memory changes the records hold beyond the saved
+        copies (fmlogic.memory: a tune's end writes its record, not the memory)."""
+        mem = self.mem
+        tail = self.rec.tail
+        self.rec.tail = None  # read once: RAM holds no record after the start
+        if tail is None:
+            return
+        lst = tail.get("lst")
+        if tail.get("seq", 0) > mem.last_seq and isinstance(lst, list) and len(lst) == 5:
+            try:
+                mem.last = tuple(int(x) for x in lst)
+            except (TypeError, ValueError):
+                pass
+        m0 = tail.get("m0")
+        if mem.dat_ok:
+            if not isinstance(m0, int) or m0 <= mem.upto:
+                return  # the saved copy holds every change
+            s = m0 - 1
+        else:
+            # The backup copy (or none): its changes since, as far as the store reaches.
+            s = max(mem.upto, self.rec.seq - 4 * memory.SAVE_SPAN)
+        while s < self.rec.seq:
+            got = self.rec.since(s, 4, b'"mset"')
+            if not got:
+                break
+            for r in got:
+                mem.replay(r)
+            s = got[-1]["seq"]
+
     # -- configuration --------------------------------------------------------------
     def _apply_cfg(self):
         m = self.cfg
@@ -154,6 +199,7 @@ class Controller:
         if not hasattr(self, "mem"):
             self.mem = memory.Memory(self.dir, m["memory"]["bin_hz"], m["memory"]["max_entries"])
             self.rec = memory.Records(self.dir, m["records"]["keep"])
+            self.mem.room = self.rec._drop_oldest
         else:
             self.mem.bin_hz = float(m["memory"]["bin_hz"])
             self.mem.set_max(m["memory"]["max_entries"])
@@ -333,7 +379,7 @@ class Controller:
         # Inside long work the search feeds the watchdog and stops at the time limit.
         strat.guard = self._guard
         memory.journal_write(self.dir, {"freq_hz": f, "before": before, "swr_before": swr0,
-                                      "strategy": name})
+                                        "strategy": name, "seq": self.rec.seq + 1})
         self._set_state(SEEK, why)
 
     def _guard(self):
@@ -392,14 +438,17 @@ class Controller:
         if keep and switched:
             self.mem.store(f, final, best_swr, self.board.ticks_ms() // 1000)
         self.mem.set_last(f, self.relays, self.bypass)
-        self.mem.flush()
         self.lock_bin = self.mem.bin_of(f) if f > 0 else None
-        memory.journal_take(self.dir)
         hit = tn.hinted and s.n == 1 and outcome == LOCKED
+        # The record carries the memory's change and the last state: written first,
+        # it is all a tune's end writes, but for the whole memory now and then.
         self._record(f, tn.before, self._state_list(), outcome, why, swr_before=tn.swr_before,
                      swr_after=after_swr, n=s.n, ms=dur, mem=hit, strategy=tn.strategy,
                      trace=_trace(s, self.dmg), preset=tn.preset,
                      swr_bound=bound(s) if switched and outcome != FAULT else None)
+        self.mem.flush(self.rec.seq)
+        # Marked ended with its record's number (one small write, as its removal was).
+        memory.journal_write(self.dir, {"done": self.rec.seq})
         if outcome == "aborted":
             self._set_state(WAIT_RF, why)
         elif outcome == FAULT:
@@ -431,7 +480,19 @@ class Controller:
         if self.rig is not None:
             rec["rig_hz"] = self.rig[0]
             rec["rig_mode"] = self.rig[1]
+        mem_ = self.mem
+        # What the memory holds beyond its saved copy (fmlogic.memory, put back at boot):
+        # the last state, the change this tune made, the first record with an unsaved one.
+        if mem_.last is not None:
+            rec["lst"] = list(mem_.last)
+        if mem_.change is not None:
+            rec["mset"] = list(mem_.change)
+        m0 = mem_.m0 or (self.rec.seq + 1 if mem_.change is not None else 0)
+        if m0:
+            rec["m0"] = m0
         self.rec.add(rec)
+        if self.rec.err is None:
+            mem_.logged(rec["seq"])
         self._event("record", rec)
 
     def _set_state(self, st, why):
@@ -545,11 +606,11 @@ class Controller:
         self.freq = float(f)
         self.lock_bin = self.mem.bin_of(f)
         self.mem.set_last(f, self.relays, False)
-        self.mem.flush()
         # Each preset is a record too (no reading: there is no RF), so the
-        # logbook holds every one, confirmed by a carrier or not.
+        # logbook holds every one, confirmed by a carrier or not; it holds the last state.
         self._record(float(f), before, self._state_list(), "preset", "preset from " + src,
                      swr_after=hint[3], mem=src == "memory", strategy="preset")
+        self.mem.flush(self.rec.seq)
         self._set_state(WAIT_RF, "preset from %s for %.4f MHz" % (src, f / 1e6))
         return True, {"preset": True, "relays": self._state_list(), "stored_swr": hint[3],
                       "bin_hz": self.mem.bin_hz, "bin": b, "source": src}
@@ -638,7 +699,7 @@ class Controller:
         if not self._switch((l_, c_, sh), False):
             return False, {"why": "hot", "msg": "power above hot-switch limit"}
         self.mem.set_last(self.freq, self.relays, False)
-        self.mem.flush()
+        self.mem.flush(self.rec.seq)
         self.manual = True
         self._set_state(WAIT_RF, "set by host")
         return True, {"relays": self._state_list()}
@@ -650,7 +711,7 @@ class Controller:
         if not self._switch(self.relays, on):
             return False, {"why": "hot", "msg": "power above hot-switch limit"}
         self.mem.set_last(self.freq, self.relays, on)
-        self.mem.flush()
+        self.mem.flush(self.rec.seq)
         self.manual = on
         self._set_state(THROUGH if on else WAIT_RF, "bypass by host" if on else "back in line by host")
         return True, {"relays": self._state_list()}
@@ -673,7 +734,7 @@ class Controller:
                       "entries": items[start:start + 12]}
 
     def _q_mem_clear(self, a):
-        self.mem.clear()
+        self.mem.clear(self.rec.seq)
         return True, {"entries": 0}
 
     def _q_cfg_get(self, a):
@@ -746,7 +807,7 @@ class Controller:
             return False, {"why": "bad-entry", "msg": err}
         stored, kept = self.mem.put_many(ents, float(w), flags[1])
         if flags[2]:
-            self.mem.flush()
+            self.mem.flush(self.rec.seq)
         return True, {"stored": stored, "kept": kept, "entries": self.mem.n,
                       "max_entries": self.mem.max_entries, "saved": not self.mem.dirty}
 

@@ -1,7 +1,8 @@
 # Persistent memory of good states per frequency bin, and the tune records.
 #
 # Memory file (text, ours):
-#   line 1: "FMMEM 2 <generation> <count>"
+#   line 1: "FMMEM 3 <generation> <count> <upto>" (upto: the highest record number
+#           whose memory change this copy holds; format 2 had no upto)
 #   then one line per entry: "<bin> <l> <c> <shunt> <swr*1000> <t>"
 #   optional:                "last <bin> <l> <c> <shunt> <bypass>"
 #   last line:               "crc <CRC-16 of every line before it>"
@@ -9,9 +10,17 @@
 # Written atomically: the new copy goes to mem.new, the previous good copy is
 # kept as mem.bak, then mem.new is renamed into mem.dat.  At load the valid
 # copy with the highest generation wins, so power loss at any point leaves a
-# good memory (at worst the previous one).  Writes happen only on change, and a
-# copy that fails its check is never moved into the backup slot.  Copies are
-# read a line at a time (no buffer the size of the file).
+# good memory (at worst the previous one).  A copy that fails its check is never
+# moved into the backup slot.  Copies are read a line at a time (no buffer the
+# size of the file).
+#
+# A change learned in a tune is not saved by itself: the tune's record carries
+# it ("mset": bin, l, c, shunt, swr*1000, t) and the last state ("lst"), and the
+# whole memory is saved only every SAVE_EVERY changes (or SAVE_SPAN records
+# after the first unsaved one).  At boot the changes in the records after the
+# copy's `upto` are put back in order, so a reset loses nothing the records
+# hold, and a tune's end costs one small record write instead of a rewrite of
+# the memory and of mem.last (the flash's wear and time, hardware_notes/flash.md).
 #
 # Records: see Records below (segment files on flash, nothing kept in RAM).
 import json
@@ -81,6 +90,13 @@ def atomic_write(d, name, data, bak=None, new=None):
     os.rename(newp, path)
 
 
+# A whole save rewrites about 9 KB (3 sectors) at 400 entries; 32 changes between
+# saves make it about 0.15 sector erases a change, and SAVE_SPAN bounds the records
+# a boot reads to put the unsaved changes back (a few dozen lines, most skipped
+# unparsed: only lines carrying "mset" are parsed).
+SAVE_EVERY = 32
+SAVE_SPAN = 100
+
 # How far either side of a frequency a stored state is still worth a first
 # reading: 2 % (an operator's step within a band, or a move to its other end on
 # the narrow bands), at least one bin.
@@ -109,6 +125,13 @@ class Memory:
         self.cap = 0
         self.tmax = 0  # the newest time stamp held (stamps never go back, see store)
         self.wbuf = bytearray(512)
+        self.change = None  # the last store's (bin, l, c, shunt, milli, t) until a record holds it
+        self.nlog = 0       # changes held by records only (not in the saved copy)
+        self.m0 = 0         # the first record holding such a change (0: none)
+        self.upto = 0       # the highest record number whose change the saved copy holds
+        self.whole = False  # a change no record holds (clear, a smaller limit): save whole
+        self.last_seq = 0   # the record number when mem.last was written
+        self.room = None    # called on a full flash to free room (the oldest records go); True if it did
         self.set_max(max_entries)
 
     def set_max(self, max_entries):
@@ -133,6 +156,7 @@ class Memory:
             for e in old:
                 self._put(e[5], e[0], e[1], e[2], int(e[3] * 1000 + 0.5), e[4])
             self.dirty = True
+            self.whole = True
 
     @property
     def entries(self):
@@ -214,6 +238,7 @@ class Memory:
             self.n = 0
             self.next_ins = 0
             self.last = None
+            self.upto = 0
             if _parse_mem(_join(self.d, name), self) is False:
                 errors.append(name)
                 continue
@@ -229,10 +254,43 @@ class Memory:
             self.load_error = "damaged copy ignored: " + ",".join(errors)
         last = _read_last(_join(self.d, LAST))
         if last is not None:
-            self.last = last  # newer than any last line in a memory copy
+            self.last = last[:5]  # newer than any last line in a memory copy
+            self.last_seq = last[5]
         self.dirty = False
         self.last_dirty = False
+        self.change = None
+        self.nlog = 0
+        self.m0 = 0
+        self.whole = False
         return found
+
+    def replay(self, r):
+        """Put back a memory change a record holds (records after the saved copy's
+        upto, in order: the same _put the tune made, so the same entries and the
+        same eviction)."""
+        ms = r.get("mset")
+        seq = r.get("seq", 0)
+        if seq <= self.upto or not isinstance(ms, list) or len(ms) != 6:
+            return False
+        try:
+            b, l, c, sh, milli, t = [int(x) for x in ms]
+        except (TypeError, ValueError):
+            return False
+        self._put(b, l, c, sh, milli, t)
+        self.nlog += 1
+        if not self.m0:
+            self.m0 = seq
+        self.dirty = True
+        return True
+
+    def logged(self, seq):
+        """A record numbered seq now holds the last state and the last change."""
+        self.last_dirty = False
+        if self.change is not None:
+            self.change = None
+            self.nlog += 1
+            if not self.m0:
+                self.m0 = seq
 
     def lookup(self, f_hz):
         """The stored (l, c, shunt, swr, t) nearest to f_hz within REACH, or None;
@@ -269,6 +327,7 @@ class Memory:
             t = self.tmax
         self.tmax = t
         self._put(b, state[0], state[1], state[2], milli, t)
+        self.change = (b, state[0], state[1], 1 if state[2] else 0, milli, t)
         self.dirty = True
         return True
 
@@ -283,29 +342,37 @@ class Memory:
             return None
         return self.last
 
-    def clear(self):
+    def clear(self, seq=0):
         self.n = 0
         self.dirty = True
-        self.flush()
+        self.whole = True
+        self.change = None
+        self.flush(seq)
 
-    def flush(self):
-        """Save what changed: the entries to mem.dat (a new copy, the previous one kept
-        as mem.bak), the last state to its own small file (a note, not a copy of the
-        memory: a band change costs a few bytes of flash, not the whole memory)."""
+    def flush(self, seq=0):
+        """Save what no record holds (seq: the highest record number now): the last
+        state to its own small file (a note of a few bytes, not a copy of the memory),
+        the entries to mem.dat (a new copy, the previous one kept as mem.bak) when a
+        change is in no record, or every SAVE_EVERY changes the records hold."""
         if self.d is None:
             self.dirty = self.last_dirty = False
+            self.change = None
             return False
         wrote = False
         if self.last_dirty and self.last is not None:
             try:
-                body = "last %d %d %d %d %d" % self.last
+                body = "last %d %d %d %d %d %d" % (self.last + (seq,))
                 _write_sync(_join(self.d, LAST), ("%s*%04X\n" % (body, crc16(body.encode()))).encode())
                 self.last_dirty = False
+                self.last_seq = seq
                 wrote = True
             except OSError as e:
                 self.load_error = "not saved: " + _oserr(e)
         if not self.dirty:
             return wrote
+        if (not self.whole and self.change is None and self.nlog < SAVE_EVERY
+                and (not self.m0 or seq - self.m0 < SAVE_SPAN)):
+            return wrote  # every change since the saved copy is in a record
         self.gen += 1
         cur = _join(self.d, MEM)
         if _mem_ok(cur, self.wbuf) is False:
@@ -313,6 +380,23 @@ class Memory:
             # under a running board): it never becomes the backup (the good backup
             # stays), so a second fault loses at most this change.
             _remove(cur)
+        for _ in range(3):
+            ok = self._save(cur, seq)
+            # A full flash: the memory matters more than the oldest records.
+            if ok is not False or self.room is None or not self.room():
+                break
+        if not ok:
+            return wrote
+        self.dirty = False
+        self.whole = False
+        self.change = None
+        self.nlog = 0
+        self.m0 = 0
+        return True
+
+    def _save(self, cur, seq):
+        """Write the whole memory as mem.new, keep the copy in place as mem.bak and
+        rename: True when done, False on a full flash, None on another error."""
         newp = _join(self.d, NEW)
         buf = self.wbuf
         mv = memoryview(buf)
@@ -320,7 +404,7 @@ class Memory:
             # Written in 512-byte blocks from one buffer, the CRC in the last line: no
             # buffer the size of the memory (on a fragmented heap that is what fails).
             with open(newp, "wb") as f:
-                head = ("FMMEM 2 %d %d\n" % (self.gen, self.n)).encode()
+                head = ("FMMEM 3 %d %d %d\n" % (self.gen, self.n, seq)).encode()
                 crc = crc16(head)
                 k = len(head)
                 buf[0:k] = head
@@ -345,13 +429,14 @@ class Memory:
                 os.rename(cur, _join(self.d, BAK))
             os.rename(newp, cur)
             self.dat_ok = True
+            self.upto = seq
+            return True
         except OSError as e:
             # A full or failing flash: the memory stays right in RAM and is written
             # at the next change; the tune it belongs to goes on.
             self.load_error = "not saved: " + _oserr(e)
-            return wrote
-        self.dirty = False
-        return True
+            _remove(newp)
+            return False if (e.args and e.args[0] == 28) else None
 
     def put_many(self, ents, from_bin_hz, replace):
         """Entries [freq_hz, l, c, shunt, swr, t_s] (as listing() gives them, checked
@@ -373,6 +458,7 @@ class Memory:
             stored += 1
         if stored:
             self.dirty = True
+            self.whole = True  # no record holds these: the next flush saves the whole memory
         return stored, kept
 
     def listing(self):
@@ -444,9 +530,9 @@ def _mem_ok(p, buf):
         with open(p, "rb") as f:
             first = f.readline(80)
             head = first.split()
-            if len(head) < 4 or head[0] != b"FMMEM" or head[1] not in (b"1", b"2"):
+            if len(head) < 4 or head[0] != b"FMMEM" or head[1] not in (b"1", b"2", b"3"):
                 return False
-            v2 = head[1] == b"2"
+            v2 = head[1] != b"1"  # formats 2 and 3: the CRC in the last line
             crc = crc16(first) if v2 else 0xFFFF
             left = size - len(first) - (9 if v2 else 0)
             want = -1 if v2 else int(head[4], 16)
@@ -468,7 +554,8 @@ def _mem_ok(p, buf):
 
 
 def _read_last(p):
-    """The last state from its file ("last <bin> <l> <c> <shunt> <bypass>*<crc>"), or None."""
+    """The last state from its file ("last <bin> <l> <c> <shunt> <bypass> [<record no.>]*<crc>")
+    as (bin, l, c, shunt, bypass, record no.), or None."""
     try:
         with open(p, "rb") as f:
             raw = f.read(64)
@@ -479,9 +566,9 @@ def _read_last(p):
         if star < 0 or int(raw[star + 1:star + 5], 16) != crc16(raw[:star]):
             return None
         p_ = raw[:star].split()
-        if len(p_) != 6 or p_[0] != b"last":
+        if len(p_) not in (6, 7) or p_[0] != b"last":
             return None
-        return (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]))
+        return (int(p_[1]), int(p_[2]), int(p_[3]), int(p_[4]), int(p_[5]), int(p_[6]) if len(p_) == 7 else 0)
     except (ValueError, IndexError):
         return None
 
@@ -500,11 +587,13 @@ def _parse_mem(p, into):
         try:
             first = f.readline(80)
             head = first.decode().split()
-            if head[0] != "FMMEM" or head[1] not in ("1", "2"):
+            if head[0] != "FMMEM" or head[1] not in ("1", "2", "3"):
                 return False
-            v2 = head[1] == "2"
-            if len(head) != (4 if v2 else 5):
+            v2 = head[1] != "1"
+            if len(head) != (5 if head[1] != "2" else 4):
                 return False
+            if head[1] == "3" and into is not None:
+                into.upto = int(head[4])
             gen = int(head[2])
             count = int(head[3])
             want = -1 if v2 else int(head[4], 16)
@@ -547,9 +636,20 @@ def _parse_mem(p, into):
 # before the segment's first record: a number is never given twice, even when
 # a segment is damaged or lost (the count then jumps to a fresh segment and
 # the gap is said on the link).
+#
+# A new record first goes to a file of its own, rec/q/<seq> (a few hundred
+# bytes: littlefs keeps it inside its directory block, a small commit and no
+# sector erase), and every BATCH records those move into their segment in one
+# append.  An append to a littlefs file copies the file's partly written last
+# sector into a fresh, erased one, so appending each record costs a sector
+# erase; in batches it costs one for BATCH records.  A reset between the
+# append and the removal of the small files leaves copies that the next load
+# recognises (numbers not above the segment's last) and removes.
 SEG = 50
 RDIR = "rec"
+QDIR = "q"
 TOP = "rec.top"
+BATCH = 8
 
 
 class Records:
@@ -565,9 +665,17 @@ class Records:
         self.note = None    # what load found damaged, in words
         self.floor_lost = False  # neither segments nor rec.top: a wiped store (or a new board)
         self.err = None     # the last write failure, in words
+        self.npend = 0      # records in rec/q, not yet in their segment
+        self.tail = None    # the newest record found at load (its last state, its memory log)
 
     def _seg(self, n):
         return _join(_join(self.d, RDIR), "%d.log" % n)
+
+    def _qdir(self):
+        return _join(_join(self.d, RDIR), QDIR)
+
+    def _pend(self, seq):
+        return _join(self._qdir(), "%d" % seq)
 
     def load(self, write=True):
         """Find where the numbers stand (reads the newest segment only); write
@@ -576,8 +684,13 @@ class Records:
         top = _read_int(_join(self.d, TOP))
         seq = 0
         clean = True
+        last = -1
+        damaged = None  # the damaged newest segment's last safe number
+        self.tail = None
+        keep = [None]
         if hi >= 0:
-            last, clean = _scan(self._seg(hi))
+            last, clean = _scan(self._seg(hi), keep)
+            self.tail = keep[0]
             if clean and last >= hi * SEG:
                 seq = last
                 self.cur = hi
@@ -585,10 +698,43 @@ class Records:
                 # A damaged or empty newest segment: which of its numbers went out
                 # is unknown, so none of them is given again.
                 seq = (hi + 1) * SEG - 1
-                self.note = "rec/%d.log damaged: its records after %d may be lost" % (hi, max(last, hi * SEG - 1))
-                self.lost = (max(last, hi * SEG - 1) + 1, seq)
+                damaged = max(last, hi * SEG - 1)  # said below, after the records waiting in rec/q
             self.first = lo
-        if top is not None and top > seq and top // SEG > hi:
+        # Records not yet moved into their segment: newer than any in a segment,
+        # except copies a reset left after the move (not above the segment's last).
+        used = hi
+        self.npend = 0
+        pend = _pending(self._qdir())
+        for s in pend:
+            if s <= last:
+                if write:
+                    _remove(self._pend(s))
+                continue
+            r = _read_record(self._pend(s))
+            if r is None or r["seq"] != s:
+                # A damaged record file: its number may have gone out on the link.
+                if write:
+                    _remove(self._pend(s))
+                if s > seq:
+                    self.lost = (seq + 1, s) if self.lost is None else (self.lost[0], s)
+                    if self.note is None:
+                        self.note = "rec/q/%d damaged: record %d may be lost" % (s, s)
+                    seq = s
+                    self.cur = -1
+                used = max(used, s // SEG)
+                continue
+            self.npend += 1
+            used = max(used, s // SEG)
+            if damaged is not None and s == damaged + 1:
+                damaged = s  # the damaged segment's next records were safe in rec/q
+            if s > seq:
+                seq = s
+                self.tail = r
+                self.cur = s // SEG
+        if damaged is not None and damaged < (hi + 1) * SEG - 1:
+            self.note = "rec/%d.log damaged: its records after %d may be lost" % (hi, damaged)
+            self.lost = (damaged + 1, (hi + 1) * SEG - 1) if self.lost is None else (damaged + 1, self.lost[1])
+        if top is not None and top > seq and top // SEG > used:
             # Numbers were reserved for a segment that is not there (lost, or a power
             # cut before its first record): they are skipped too.
             self.lost = (seq + 1, top) if self.lost is None else (self.lost[0], top)
@@ -596,7 +742,7 @@ class Records:
                 self.note = "rec/%d.log missing: records %d-%d may be lost" % (top // SEG, seq + 1, top)
             seq = top
             self.cur = -1
-        if top is None and hi < 0:
+        if top is None and hi < 0 and not pend:
             legacy = _legacy_seq(_join(self.d, "rec.log"))
             if legacy > 0:
                 seq = legacy  # records of an older firmware: their numbers stay used
@@ -611,6 +757,17 @@ class Records:
             self._reserve(want)
         return clean
 
+    def floor(self, s):
+        """Numbers up to s went out (the tune journal says so): none is given again,
+        and those no store holds are said lost.  True when some were."""
+        if s <= self.seq:
+            return False
+        self.lost = (self.seq + 1, s) if self.lost is None else (self.lost[0], s)
+        self.note = "records %d-%d missing from the store" % (self.seq + 1, s)
+        self.seq = s
+        self.cur = -1
+        return True
+
     def _reserve(self, top):
         try:
             _write_sync(_join(self.d, TOP), ("%d\n" % top).encode())
@@ -624,11 +781,40 @@ class Records:
             os.mkdir(_join(self.d, RDIR))
         except OSError:
             pass  # it exists
+        try:
+            os.mkdir(self._qdir())
+        except OSError:
+            pass
         nkeep = (self.keep + SEG - 1) // SEG
         while self.first <= n - nkeep - 1:
             _remove(self._seg(self.first))
             self.first += 1
         self.cur = n
+
+    def settle(self):
+        """Move the records waiting in rec/q into their segments: one append per
+        segment, then the small files go (see above for a reset in between)."""
+        pend = _pending(self._qdir())
+        i = 0
+        while i < len(pend):
+            n = pend[i] // SEG
+            j = i
+            while j < len(pend) and pend[j] // SEG == n:
+                j += 1
+            try:
+                with open(self._seg(n), "ab") as f:
+                    for s in pend[i:j]:
+                        raw = _read(self._pend(s))
+                        if raw and raw.endswith(b"\n"):
+                            f.write(raw)
+            except OSError as e:
+                self.err = "records not moved: %s" % _oserr(e)
+                return False
+            for s in pend[i:j]:
+                _remove(self._pend(s))
+            i = j
+        self.npend = 0
+        return True
 
     def _drop_oldest(self):
         """Room on a full flash: the oldest segment goes (never the one being written)."""
@@ -647,20 +833,25 @@ class Records:
         if n != self.cur:
             self._open_segment(n)
         line = _record_line(rec)
-        for _ in range(4):
+        for k in range(4):
             try:
-                with open(self._seg(n), "ab") as f:
-                    f.write(line)
+                _write_sync(self._pend(self.seq), line)
                 self.err = None
+                self.npend += 1
                 break
             except OSError as e:
                 self.err = "record %d not stored: %s" % (self.seq, _oserr(e))
-                if not self._drop_oldest():
+                if k == 0 and e.args and e.args[0] == 2:
+                    self._open_segment(n)  # its directory went: made again
+                elif not self._drop_oldest():
                     break
+        if self.npend >= BATCH:
+            self.settle()
         return rec
 
-    def since(self, seq, limit):
-        """Up to limit records numbered above seq, oldest first, read from flash."""
+    def since(self, seq, limit, need=None):
+        """Up to limit records numbered above seq, oldest first, read from flash
+        (with need, only those whose line holds those bytes)."""
         out = []
         want = seq + 1
         n = want // SEG
@@ -680,11 +871,23 @@ class Records:
                         break
                     if _line_seq(line) < want:
                         continue  # not parsed: only its number is read
+                    if need is not None and line.find(need) < 0:
+                        continue
                     r = _parse_record(line)
                     if r is not None and r["seq"] >= want:
                         out.append(r)
                         want = r["seq"] + 1
             n += 1
+        if len(out) < limit and self.npend:
+            for s in _pending(self._qdir()):
+                if len(out) >= limit:
+                    break
+                if s < want:
+                    continue
+                r = _read_record(self._pend(s), need)
+                if r is not None and r["seq"] == s:
+                    out.append(r)
+                    want = s + 1
         return out
 
     def count(self):
@@ -697,6 +900,10 @@ def highest_seq(d):
     """The highest record number written whole in d's record store (read only;
     the host's look at a board's flash)."""
     lo, hi = _segments(_join(d, RDIR))
+    for s in reversed(_pending(_join(_join(d, RDIR), QDIR))):
+        r = _read_record(_join(_join(_join(d, RDIR), QDIR), "%d" % s))
+        if r is not None and r["seq"] == s:
+            return s
     n = hi
     while n >= lo and n >= 0:
         last = _scan(_join(_join(d, RDIR), "%d.log" % n))[0]
@@ -751,8 +958,37 @@ def _read_int(p):
     return v if v >= 0 else None
 
 
-def _scan(p):
-    """(last good record number, clean?) of a segment, a line at a time; -1 if none."""
+def _pending(qdir):
+    """The numbers of the records waiting in rec/q, in order (at most a few: BATCH)."""
+    try:
+        names = os.listdir(qdir)
+    except OSError:
+        return []
+    out = []
+    for name in names:
+        try:
+            out.append(int(name))
+        except ValueError:
+            pass
+    out.sort()
+    return out
+
+
+def _read_record(p, need=None):
+    """The record in a file of its own (rec/q/<seq>), or None when missing or damaged."""
+    try:
+        with open(p, "rb") as f:
+            line = f.readline(4096)
+    except OSError:
+        return None
+    if not line.endswith(b"\n") or (need is not None and line.find(need) < 0):
+        return None
+    return _parse_record(line)
+
+
+def _scan(p, keep=None):
+    """(last good record number, clean?) of a segment, a line at a time; -1 if none.
+    keep (a list of one): the record numbered last goes in keep[0]."""
     last = -1
     clean = True
     try:
@@ -767,11 +1003,14 @@ def _scan(p):
                 break
             empty = False
             r = _line_seq(line) if line.endswith(b"\n") else -1
-            if r < 0 or _parse_record(line) is None:
+            rec = _parse_record(line) if r >= 0 else None
+            if rec is None:
                 clean = False
                 continue
             if r > last:
                 last = r
+                if keep is not None:
+                    keep[0] = rec
     return (last, clean and not empty)
 
 
@@ -794,7 +1033,9 @@ def _legacy_seq(p):
 
 
 def _record_line(rec):
-    b = ("%d " % rec["seq"] + json.dumps(rec)).encode()
+    # Compact (no blanks after , and :): a tune's record stays under the 512 bytes
+    # littlefs keeps inside a directory block (see BATCH), about 60 bytes less.
+    b = ("%d " % rec["seq"] + json.dumps(rec, separators=(",", ":"))).encode()
     return b + ("*%04X\n" % crc16(b)).encode()
 
 

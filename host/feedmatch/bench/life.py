@@ -38,6 +38,10 @@ XIP_PENALTY = 56
 # Loads a vertical and its neighbours present (ohm, ohm, Hz): band changes and returns.
 LOADS = [(10.8, -364.5, 7.15e6), (36.0, 2.0, 3.6e6), (639.7, 1021.7, 29.35e6), (3.0, -40.0, 14.2e6),
          (300.0, 200.0, 21.2e6), (16.4, -200.9, 10.12e6), (7.92, -434.78, 7.05e6), (120.0, -80.0, 18.1e6)]
+# Each round of the loads one memory bin (25 kHz) higher, over 40 bins: every tune stores a
+# new bin, so the memory changes at every tune and its whole saves (every
+# fmlogic.memory.SAVE_EVERY changes) fall inside the run: the flash figures are the worst case.
+DRIFT_HZ = 25e3
 
 
 def life_config(keep: int = 2000) -> dict[str, Any]:
@@ -114,7 +118,7 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
             pending_heap = None
         elif p[0] == "TUNE":
             last_tune = {"i": int(p[1]), "state": p[2], "records": int(p[3]), "flash_end_us": int(p[4]),
-                         "journal_us": int(p[5])}
+                         "journal_us": int(p[5]), "gen": int(p[6]) if len(p) > 7 else 0}
             tunes.append(last_tune)
         elif p[0] == "ERR":
             errors.append(line)
@@ -137,7 +141,7 @@ def _chip_files(work: Path, tunes: int) -> dict[str, bytes]:
     subprocess.run([mpy, "-march=armv6m", "-o", str(out), str(EMU_DATA / "life_chip.py")], check=True)
     files["life_chip.mpy"] = out.read_bytes()
     files["life.json"] = json.dumps({"cfg": life_config(), "tunes": tunes, "report_every": 10,
-                                     "loads": LOADS}).encode()
+                                     "loads": LOADS, "drift": DRIFT_HZ}).encode()
     return files
 
 
@@ -196,7 +200,7 @@ def run_unix(tunes: int, heap_kib: int = 256, every: int = 100, micropython: str
             (work / name).parent.mkdir(parents=True, exist_ok=True)
             (work / name).write_bytes(data)
         (work / "life.json").write_text(json.dumps({"cfg": life_config(), "tunes": tunes, "report_every": every,
-                                                    "loads": LOADS}))
+                                                    "loads": LOADS, "drift": DRIFT_HZ}))
         env = dict(os.environ, MICROPYPATH=f"{fw}:.frozen")
         t0 = time.monotonic()
         r = subprocess.run([mp, "-X", f"heapsize={heap_kib}K", "-c", "import life_chip"], cwd=work,
@@ -245,6 +249,12 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
         out["tune_end_flash_ms"] = round(statistics.median(ends), 1)
         out["tune_end_flash_ms_max"] = round(max(ends), 1)
         out["tune_journal_flash_ms"] = round(statistics.median(t["journal_us"] / 1000 for t in tn), 1)
+        # Whole saves of the memory inside the run (its generation steps), and what the
+        # tunes with one cost: the average above includes them.
+        saves = [t for k, t in enumerate(tn) if k and t["gen"] > tn[k - 1]["gen"]]
+        out["flash_memory_saves"] = len(saves)
+        if saves:
+            out["flash_erases_memory_save_tune"] = round(statistics.mean(t["erases"] for t in saves), 1)
     done = c["done"] or (0, len(c["tunes"]))
     out["life_chip_tunes_ok"] = done[0]
     out["life_chip_tunes"] = len(c["tunes"])

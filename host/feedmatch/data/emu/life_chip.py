@@ -5,7 +5,11 @@
 # after every tune.  Input: life.json; output lines (parsed by bench/life.py):
 #   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
 #   HEAP <tune> <bytes free>, then mem_info's lines (its "max free sz")
-#   TUNE <i> <state> <new records> <end-of-tune flash us> <journal us> MARK
+#   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation> MARK
+# (the end of a tune: its record, the memory's save when due, the journal marked ended).
+# With "drift" in life.json each round of loads moves up one memory bin (cycling over
+# 40 bins), so every tune learns a new bin: the memory changes at every tune and its
+# whole saves come at the firmware's own pace (the worst case for the flash).
 #   ERR <i> <what>
 #   DONE <tunes without an error> <errors>
 # The MARK on each TUNE line makes run_rp2_xip.mjs print its flash counters.
@@ -160,7 +164,13 @@ def run():
     ctl.mem.flush = timed(ctl.mem.flush, 0)
     ctl.rec.add = timed(ctl.rec.add, 0)
     memory.journal_take = timed(memory.journal_take, 0)
-    memory.journal_write = timed(memory.journal_write, 1)
+    jw_start = timed(memory.journal_write, 1)
+    jw_end = timed(memory.journal_write, 0)
+
+    def journal_write(d_, obj):
+        return (jw_end if "done" in obj else jw_start)(d_, obj)
+
+    memory.journal_write = journal_write
     ok = 0
     errors = 0
     every = spec["report_every"]
@@ -173,6 +183,8 @@ def run():
         ld = loads[i % len(loads)]
         board.zl = complex(ld[0], ld[1])
         board.f = ld[2] / 1e6
+        if spec.get("drift"):
+            board.f += ((i // len(loads)) % 40) * spec["drift"] / 1e6
         board.p = 10.0
         flash[0] = flash[1] = 0
         seq = ctl.rec.seq
@@ -197,7 +209,7 @@ def run():
             errors += 1
             print("ERR %d %s" % (i, repr(e)[:60]))
             board.p = 0.0
-        print("TUNE %d %s %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1]))
+        print("TUNE %d %s %d %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1], ctl.mem.gen))
     gc.collect()
     print("HEAP %d %d" % (spec["tunes"], gc.mem_free()))
     largest_free()
