@@ -54,3 +54,14 @@ def free_port() -> int:
     port = s.getsockname()[1]
     s.close()
     return port
+
+
+def logbook_rows(db) -> list:
+    """Every tune row of a logbook, in record order (sqlite3.Row: by column name)."""
+    import sqlite3
+
+    con = sqlite3.connect(db)
+    con.row_factory = sqlite3.Row
+    rows = con.execute("SELECT * FROM tunes ORDER BY seq").fetchall()
+    con.close()
+    return rows

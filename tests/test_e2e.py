@@ -19,17 +19,9 @@ from feedmatch.logbook.logger import Logger
 from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 
-from .conftest import BIN, run_cli
+from .conftest import BIN, logbook_rows, run_cli
 
 BANDS_MATCHABLE = {"40m", "30m", "20m", "17m", "15m", "12m", "10m"}
-
-
-def _rows(db):
-    con = sqlite3.connect(db)
-    con.row_factory = sqlite3.Row
-    rows = con.execute("SELECT * FROM tunes ORDER BY seq").fetchall()
-    con.close()
-    return rows
 
 
 from feedmatch.sim.demo import _wait  # noqa: E402
@@ -53,7 +45,7 @@ def demo(tmp_path_factory):
 
 def test_demo_tunes_every_band_and_logs_every_record(demo):
     out, res = demo
-    rows = _rows(res["db"])
+    rows = logbook_rows(res["db"])
     assert res["violations"] == []
     assert {r["band"] for r in rows} == BANDS_MATCHABLE
     seqs = [r["seq"] for r in rows]
@@ -67,7 +59,7 @@ def test_demo_tunes_every_band_and_logs_every_record(demo):
 
 def test_demo_report_figures_match_the_records(demo):
     out, res = demo
-    rows = _rows(res["db"])
+    rows = logbook_rows(res["db"])
     for b in res["report"]["bands"]:
         rs = [r for r in rows if r["band"] == b["band"]]
         ok = [r for r in rs if r["outcome"] == "locked"]
@@ -172,7 +164,7 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
             pass
     finally:
         vs.stop()
-    rows = _rows(db)
+    rows = logbook_rows(db)
     seqs = [r["seq"] for r in rows]
     assert seqs == list(range(1, want + 1))  # every record exactly once
     assert any(r["outcome"] == "reset" for r in rows)
@@ -208,7 +200,7 @@ def test_operator_commands_over_the_pty(tmp_path):
                               stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         def logged():
             try:
-                return db.exists() and len(_rows(str(db))) >= 1
+                return db.exists() and len(logbook_rows(str(db))) >= 1
             except sqlite3.Error:
                 return False  # the logger is creating it
         assert _wait(logged, 20)
@@ -216,7 +208,7 @@ def test_operator_commands_over_the_pty(tmp_path):
         out, err = lg.communicate(timeout=20)
         assert lg.returncode == 0, err
         summary = json.loads(out)
-        assert summary["added"] == len(_rows(str(db))) >= 1 and summary["db"] == str(db), summary
+        assert summary["added"] == len(logbook_rows(str(db))) >= 1 and summary["db"] == str(db), summary
         r = run_cli("report", "--db", str(db), "--json")
         vals = json.loads(r.stdout)["bands"][0]["most_used_values"]
         assert vals is not None and vals["l_uh"] > 0 and vals["c_pf"] > 0

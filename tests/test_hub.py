@@ -12,7 +12,6 @@ import json
 import os
 import signal
 import socket
-import sqlite3
 import subprocess
 import threading
 import time
@@ -29,16 +28,7 @@ from feedmatch.sim.station import load_station
 from feedmatch.sim.virtual import VirtualStation
 from fmlogic import link as frames
 
-from .conftest import BIN, run_cli
-
-
-def _rows(db):
-    con = sqlite3.connect(db)
-    con.row_factory = sqlite3.Row
-    rows = con.execute("SELECT * FROM tunes ORDER BY seq").fetchall()
-    con.close()
-    return rows
-
+from .conftest import BIN, logbook_rows, run_cli
 
 NOBODY = 65534  # Debian's "nobody" (base-passwd)
 
@@ -264,7 +254,7 @@ def test_commands_attach_to_the_logger_that_owns_the_port(tmp_path):
             lg.kill()
         p.send_signal(signal.SIGINT)
         p.wait(10)
-    seqs = [r["seq"] for r in _rows(str(db))]
+    seqs = [r["seq"] for r in logbook_rows(str(db))]
     assert seqs == sorted(set(seqs)) and len(seqs) >= 2  # the boot tune and the asked one, once each
     assert json.loads(out)["added"] == len(seqs)
 

@@ -1,9 +1,9 @@
 """The `feedmatch` command: one table of sub-commands; the work lives in the modules.
 
 COMMANDS maps each command's name to the module that adds its parser and runs it
-(mpremote's model: one table, read top to bottom). Each such module has
-add_parser(sub, name), which adds the command's options and sets fn, the function
-that runs it. A new command is one entry here and one parser and function in the
+(mpremote's model: one table, read top to bottom). Each such module has PARSERS:
+name -> the function that adds the command's options and sets fn, the function that
+runs it. A new command is one entry here and one parser and function in the
 module of its kind:
 
     simulate, loads, score, bench, antenna, design, demo   the simulation and the bench: no board
@@ -60,7 +60,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="cmd", required=True, parser_class=_Parser)
     for name, module in COMMANDS.items():
         # Imported plainly: a broken module is an error, never a missing command.
-        importlib.import_module(module).add_parser(sub, name)
+        importlib.import_module(module).PARSERS[name](sub)
     return p
 
 

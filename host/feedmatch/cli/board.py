@@ -440,17 +440,12 @@ def _parser_memory(sub) -> None:
     s.set_defaults(fn=cmd_memory)
 
 
-# The commands of this module: name -> the function that adds its parser.
-_PARSERS = {
+# The commands of this module (feedmatch.cli.COMMANDS): name -> the function that adds its
+# parser, which sets fn, the function that runs it.
+PARSERS = {
     "status": _parser_status,
     "tune": _parser_tune,
     "selftest": _parser_selftest,
     "bypass": _parser_bypass,
     "memory": _parser_memory,
 }
-
-
-def add_parser(sub, name: str) -> None:
-    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
-    `name`; it sets fn, which runs the command."""
-    _PARSERS[name](sub)

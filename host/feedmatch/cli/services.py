@@ -465,16 +465,11 @@ def _parser_serve(sub) -> None:
     s.set_defaults(fn=cmd_serve)
 
 
-# The commands of this module: name -> the function that adds its parser.
-_PARSERS = {
+# The commands of this module (feedmatch.cli.COMMANDS): name -> the function that adds its
+# parser, which sets fn, the function that runs it.
+PARSERS = {
     "virtual-board": _parser_virtual_board,
     "follow": _parser_follow,
     "log": _parser_log,
     "serve": _parser_serve,
 }
-
-
-def add_parser(sub, name: str) -> None:
-    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
-    `name`; it sets fn, which runs the command."""
-    _PARSERS[name](sub)

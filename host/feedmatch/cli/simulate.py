@@ -110,13 +110,8 @@ def _parser_simulate(sub) -> None:
     s.set_defaults(fn=cmd_simulate)
 
 
-# The commands of this module: name -> the function that adds its parser.
-_PARSERS = {
+# The commands of this module (feedmatch.cli.COMMANDS): name -> the function that adds its
+# parser, which sets fn, the function that runs it.
+PARSERS = {
     "simulate": _parser_simulate,
 }
-
-
-def add_parser(sub, name: str) -> None:
-    """The command table's hook (feedmatch.cli.COMMANDS): add the parser of the command
-    `name`; it sets fn, which runs the command."""
-    _PARSERS[name](sub)
