@@ -135,16 +135,24 @@ def _commands(text: str) -> list[str]:
     return [cmd for _a, _b, body in blocks(text) for cmd, _shown in steps(body)]
 
 
-def cached_runs(text: str) -> dict[str, list[str]] | None:
-    """The cached output of each README command while the cache's key holds, else None."""
+CACHE_FORMAT = 2  # runs: [command, output lines] in the README's order
+
+
+def cached_runs(text: str) -> list[list] | None:
+    """The cached [command, output lines] of each README command, in order, while the
+    cache's key holds, else None."""
     try:
         doc = json.loads(CACHE.read_text())
     except (OSError, ValueError):
         return None
     cmds = _commands(text)
-    if not isinstance(doc, dict) or doc.get("key") != cache_key(doc.get("files", []), cmds):
+    if not isinstance(doc, dict) or doc.get("format") != CACHE_FORMAT or \
+            doc.get("key") != cache_key(doc.get("files", []), cmds):
         return None
-    return doc["runs"]
+    runs = doc.get("runs")
+    if not isinstance(runs, list) or [r[0] for r in runs] != cmds:
+        return None
+    return runs
 
 
 def _norm(line: str) -> tuple[str, list[float]]:
@@ -170,11 +178,11 @@ def check_cached(text: str) -> list[str] | None:
     if runs is None:
         return None
     problems = []
-    for _a, _b, body in blocks(text):
-        for cmd, shown in steps(body):
-            diff = same(shown, runs[cmd])
-            if diff:
-                problems.append(f"$ {cmd}\n{diff}")
+    shown_runs = [st for _a, _b, body in blocks(text) for st in steps(body)]
+    for (cmd, shown), (_cmd, out) in zip(shown_runs, runs):
+        diff = same(shown, out)
+        if diff:
+            problems.append(f"$ {cmd}\n{diff}")
     return problems
 
 
@@ -194,16 +202,18 @@ def write() -> None:
     """Run every example, put its output into README.md, and keep the runs in CACHE."""
     lines = README.read_text().split("\n")
     modules: set[str] = set()
-    runs: dict[str, list[str]] = {}
+    runs: list[list] = []
     for a, b, body in reversed(blocks("\n".join(lines))):
         new = []
+        block_runs = []
         with tempfile.TemporaryDirectory() as d:
             for cmd, _shown in steps(body):
                 out = run(cmd, Path(d), modules)
-                runs[cmd] = out
+                block_runs.append([cmd, out])
                 new.append("$ " + cmd)
                 new += out
         lines[a:b] = new
+        runs[:0] = block_runs  # blocks run last to first: kept in the README's order
     text = "\n".join(lines)
     README.write_text(text)
     cmds = _commands(text)
@@ -211,8 +221,8 @@ def write() -> None:
                    | {a for c in cmds for a in shlex.split(c) if a.startswith("host/")})
     CACHE.write_text(json.dumps({"note": "written by `make readme` (tests/readme_examples.py): the README "
                                          "examples' output, valid while these files and commands are unchanged",
-                                 "key": cache_key(files, cmds), "files": files,
-                                 "runs": {c: runs[c] for c in cmds}}, indent=1) + "\n")
+                                 "format": CACHE_FORMAT, "key": cache_key(files, cmds), "files": files,
+                                 "runs": runs}, indent=1) + "\n")
 
 
 if __name__ == "__main__":
