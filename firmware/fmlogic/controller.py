@@ -191,9 +191,9 @@ class Controller:
         m = self.cfg
         self.bank = fcfg.bank_from(m)
         # Failed elements (network.failed): the search works on what still switches.
-        self.dmg = selftest.damage_from(m, self.bank)
+        self.damage = selftest.damage_from(m, self.bank)
         self.meter = fcfg.meter_from(m)
-        self.cp = coupler.from_config(m["detector"], self.meter.ref)
+        self.coupler = coupler.from_config(m["detector"], self.meter.ref)
         self.power = m["power"]  # the board config's power limits (W)
         self.tuning = m["tune"]  # ... and its tune settings (target, budget, times in ms)
         if not hasattr(self, "mem"):
@@ -355,11 +355,11 @@ class Controller:
         name = self.tuning["strategy"]
         if name == "recall" and hint is None:
             name = "model"
-        dmg = self.dmg
+        dmg = self.damage
         if dmg is not None and hint is not None:
             hint = dmg.reduced(hint[:3]) + (hint[3],)
         strat = search.make(name, dmg.bank if dmg is not None else self.bank, f if f > 0 else 14.0e6,
-                            self.tuning["target_swr"], self.tuning["budget"], hint[:4] if hint else None, self.cp)
+                            self.tuning["target_swr"], self.tuning["budget"], hint[:4] if hint else None, self.coupler)
         # Asked for (the host's request, the button), or a state the host computed (its SWR a
         # prediction, never read): a best effort is searched again; an automatic tune or a
         # preset's confirmation keeps a stored best effort that reads as it was stored.
@@ -397,8 +397,8 @@ class Controller:
             return
         st = s.propose()
         byp = st == search.BYPASS
-        if self.dmg is not None and not byp:
-            st = self.dmg.full(st)  # failed relays are never driven against their state
+        if self.damage is not None and not byp:
+            st = self.damage.full(st)  # failed relays are never driven against their state
         # The search's BYPASS is the antenna alone: the bypass relay, as the
         # box ends when nothing beats it.
         if not self._switch(st, byp):
@@ -428,8 +428,8 @@ class Controller:
             why = why + "; " + note
         if final is None:
             final, byp = (self.relays, self.bypass)
-        elif self.dmg is not None and not byp:
-            final = self.dmg.full(final)
+        elif self.damage is not None and not byp:
+            final = self.damage.full(final)
         switched = self._switch(final, byp)
         if not switched:
             why = why + "; relays held (power above hot-switch limit)"
@@ -444,7 +444,7 @@ class Controller:
         # it is all a tune's end writes, but for the whole memory now and then.
         self._record(f, tn.before, self._state_list(), outcome, why, swr_before=tn.swr_before,
                      swr_after=after_swr, n=s.n, ms=dur, mem=hit, strategy=tn.strategy,
-                     trace=_trace(s, self.dmg), preset=tn.preset,
+                     trace=_trace(s, self.damage), preset=tn.preset,
                      swr_bound=bound(s) if switched and outcome != FAULT else None)
         self.mem.flush(self.rec.seq)
         # Marked ended with its record's number (one small write, as its removal was).
@@ -663,7 +663,7 @@ class Controller:
         g = gamma_from_powers(self.fwd, self.ref)
         if self.fwd <= 0.0 or g < 0.0:
             return None
-        lo, hi = self.cp.bounds(self.cp.correct(g), self.cp.floor_g(self.fwd))
+        lo, hi = self.coupler.bounds(self.coupler.correct(g), self.coupler.floor_g(self.fwd))
         return [_r3(swr_from_gamma(lo)), _r3(swr_from_gamma(hi))]
 
     def _handle(self, word, a):
