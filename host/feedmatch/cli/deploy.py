@@ -31,8 +31,10 @@ def cmd_deploy(a: argparse.Namespace) -> int:
 
         if hub_alive(hub_path(a.port)):
             # mpremote needs the port to itself (the raw REPL), and the board reboots.
-            raise InputError(f"{a.port} is in use by a running feedmatch log, follow or serve; stop it, "
-                             "deploy, then start it again")
+            from feedmatch.errors import PortOwned
+
+            raise PortOwned(f"{a.port} is in use by a running feedmatch log, follow or serve; stop it, "
+                            "deploy, then start it again")
     target = DirTarget(a.port) if Path(a.port).is_dir() else MpremoteTarget(a.port)
     with tempfile.TemporaryDirectory() as d:
         p = plan(a.board, cfg, a.compile, target, Path(d))
