@@ -228,3 +228,21 @@ def test_the_csv_gives_the_matched_state_in_microhenries_and_picofarads(tmp_path
     assert float(got[0]["after_l_uh"]) == pytest.approx(bank.lv[100], abs=1e-3)
     assert float(got[0]["after_c_pf"]) == pytest.approx(bank.cv[90], abs=0.1)
     assert got[1]["after_l_uh"] == "" and got[1]["after_c_pf"] == ""  # no values known for that board
+
+
+def test_wrote_lines_go_to_stdout_and_to_stderr_under_json(tmp_path):
+    """What a command wrote is said on standard output after its text, and on standard
+    error under --json (whose standard output is one JSON object alone)."""
+    import json
+
+    from .conftest import run_cli
+
+    db = tmp_path / "station.sqlite"
+    _logbook_with_one_tune(db)
+    r = run_cli("report", "--db", str(db), "--csv", str(tmp_path / "t.csv"), "--plots", str(tmp_path))
+    assert r.returncode == 0 and f"wrote {tmp_path / 't.csv'}" in r.stdout.splitlines()
+    assert f"wrote {tmp_path / 'swr_by_band.png'}" in r.stdout.splitlines() and "wrote" not in r.stderr
+    r = run_cli("report", "--db", str(db), "--csv", str(tmp_path / "u.csv"), "--plots", str(tmp_path), "--json")
+    assert r.returncode == 0 and json.loads(r.stdout)["tunes"] == 1
+    assert f"wrote {tmp_path / 'u.csv'}" in r.stderr.splitlines()
+    assert f"wrote {tmp_path / 'states_by_band.png'}" in r.stderr.splitlines()

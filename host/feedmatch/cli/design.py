@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -80,6 +81,9 @@ def run_design(a: argparse.Namespace) -> int:
         design_plot(a.plot, res, a.design_swr)
     summary = _summary(res, spec, unc, relay_count)
     if a.json:
+        for f in (a.out, a.into_config, a.plot):
+            if f:
+                sys.stderr.write(f"wrote {f}\n")  # stdout is the JSON's alone
         emit_json(summary)
         return 0
     for line in _lines(summary, ant.describe(), a):

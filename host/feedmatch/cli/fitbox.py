@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from feedmatch.cli.output import emit_json
@@ -30,6 +31,8 @@ def cmd_fit_box(a: argparse.Namespace) -> int:
             raise InputError(f"not written to {a.write}: {why}")
         write_correction(a.write, res)
     if a.json:
+        if a.write:
+            sys.stderr.write(f"wrote the correction into {a.write} (previous copy: {a.write}.bak)\n")
         emit_json(res)
         return 0
     print(f"fitted from {res['traces']} tunes ({res['readings']} readings); "

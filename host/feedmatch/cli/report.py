@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import sys
+
 from feedmatch.cli.output import emit_json
 from feedmatch.errors import InputError
 from feedmatch.outpaths import output_dir, output_file
@@ -28,11 +30,14 @@ def cmd_report(a) -> int:
     if a.csv:
         write_csv(a.csv, rep["rows"], rep["banks"])
     files = report_plots(a.plots, rep["rows"]) if a.plots else []
+    written = ([a.csv] if a.csv else []) + [str(f) for f in files]
     if a.json:
+        for f in written:
+            sys.stderr.write(f"wrote {f}\n")  # stdout is the JSON's alone
         emit_json({"tunes": rep["tunes"], "bands": rep["bands"], "antenna_notes": rep["antenna_notes"]})
     else:
         print("\n".join(report_lines(rep)))
-        for f in files:
+        for f in written:
             print(f"wrote {f}")
     return 0
 
