@@ -529,6 +529,14 @@ def test_mem_put_writes_an_export_back_and_refuses_what_does_not_fit(tmp_path):
     assert a[2] == "err" and a[3]["why"] == "other-bins"
     a = _ask(b, ctl, 7, "mem-put", {"bin_hz": 10000, "entries": [[3.51e6, 2, 2, 0, 1.3, 1]], "rebin": True})
     assert a[2] == "ok" and ctl.mem.bin_of(3.515e6) in ctl.mem.entries
+    # Another box's states: refused unless foreign (their codes may mean other parts).
+    a = _ask(b, ctl, 30, "mem-put", {"bin_hz": 25000, "entries": [[10.1e6, 3, 3, 0, 1.2, 1]], "from_uid": "0a1b2c"})
+    assert a[2] == "err" and a[3]["why"] == "other-board" and ctl.mem.lookup(10.1e6) is None
+    a = _ask(b, ctl, 31, "mem-put", {"bin_hz": 25000, "entries": [[10.1e6, 3, 3, 0, 1.2, 1]], "from_uid": ctl.uid})
+    assert a[2] == "ok" and a[3]["stored"] == 1
+    a = _ask(b, ctl, 32, "mem-put", {"bin_hz": 25000, "entries": [[10.2e6, 3, 3, 0, 1.2, 1]], "from_uid": "0a1b2c",
+                                     "foreign": True})
+    assert a[2] == "ok" and a[3]["stored"] == 1
     before = ctl.mem.listing()
     for seq, args, why in (
             (8, {"bin_hz": 25000, "entries": [[7.2e6, 128, 0, 0, 1.2, 1]]}, "bad-entry"),
@@ -540,7 +548,8 @@ def test_mem_put_writes_an_export_back_and_refuses_what_does_not_fit(tmp_path):
             (14, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]] * (memory.PUT_MAX + 1)}, "bad-entry"),
             (15, {"bin_hz": 25000, "entries": []}, "bad-entry"),
             (16, {"bin_hz": "25000", "entries": [[7.2e6, 1, 0, 0, 1.2, 1]]}, "bad-args"),
-            (17, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]], "save": 1}, "bad-args")):
+            (17, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]], "save": 1}, "bad-args"),
+            (18, {"bin_hz": 25000, "entries": [[7.2e6, 1, 0, 0, 1.2, 1]], "from_uid": 5}, "bad-args")):
         a = _ask(b, ctl, seq, "mem-put", args)
         assert a[2] == "err" and a[3]["why"] == why, (seq, a)
     assert ctl.mem.listing() == before  # a frame with one bad entry stored nothing

@@ -786,16 +786,23 @@ class Controller:
     def _mem_put(self, a):
         """Stored states written into the memory (the host's memory --import):
         bin_hz (the width of the bins they were listed from), entries (up to
-        memory.PUT_MAX, as mem-list gives them), rebin (bins of another width are
-        refused without it), replace (a bin this box already holds keeps its own
-        state without it), save (false: keep in RAM until the last frame, one
-        flash write for the whole import).  Every entry is checked before any is
-        stored; no relay moves."""
+        memory.PUT_MAX, as mem-list gives them), from_uid (the identity of the box
+        they were listed on: another box's states are refused without foreign: its
+        relay codes may mean other parts), rebin (bins of another width are refused
+        without it), replace (a bin this box already holds keeps its own state
+        without it), save (false: keep in RAM until the last frame, one flash
+        write for the whole import).  Every entry is checked before any is stored;
+        no relay moves."""
         w = a.get("bin_hz")
-        flags = (a.get("rebin", False), a.get("replace", False), a.get("save", True))
+        flags = (a.get("rebin", False), a.get("replace", False), a.get("save", True), a.get("foreign", False))
         for v in flags:
             if not isinstance(v, bool):
-                return False, {"why": "bad-args", "msg": "rebin, replace and save are true or false"}
+                return False, {"why": "bad-args", "msg": "rebin, replace, save and foreign are true or false"}
+        src = a.get("from_uid")
+        if src is not None and not isinstance(src, str):
+            return False, {"why": "bad-args", "msg": "from_uid"}
+        if src is not None and src != self.uid and not flags[3]:
+            return False, {"why": "other-board", "msg": "listed on box %s, this is %s" % (src[:16], self.uid)}
         if not memory._is_num(w) or not 100.0 <= w <= 1e7:
             return False, {"why": "bad-args", "msg": "bin_hz"}
         own = self.mem.bin_hz

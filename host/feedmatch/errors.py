@@ -57,6 +57,7 @@ REFUSALS = {
     "reply-too-long": "its answer would be too long for the link",
     "button": "the button on the box was pressed",
     "other-bins": "its memory bins are another width than the states sent",
+    "other-board": "the states sent were stored on another box",
     "bad-entry": "a stored state sent is out of its range",
 }
 

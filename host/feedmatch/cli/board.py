@@ -370,8 +370,11 @@ def _memory_import(a) -> int:
         r: dict = {"entries": status.get("mem_entries", 0), "saved": True, "max_entries": None}
         for k in range(0, len(ents), PUT_MAX):
             last = k + PUT_MAX >= len(ents)
-            r = ln.request("mem-put", {"bin_hz": doc["bin_hz"], "entries": ents[k:k + PUT_MAX],
-                                       "rebin": bool(a.mismatch_ok), "save": last})
+            args = {"bin_hz": doc["bin_hz"], "entries": ents[k:k + PUT_MAX], "rebin": bool(a.mismatch_ok),
+                    "foreign": bool(a.mismatch_ok), "save": last}
+            if "/" in doc["board"]:
+                args["from_uid"] = doc["board"].rsplit("/", 1)[1]  # the box checks it is its own too
+            r = ln.request("mem-put", args)
             stored += r["stored"]
             kept += r["kept"]
     out = {"imported": stored, "kept": kept, "in_file": len(ents), "entries": r["entries"],
