@@ -58,11 +58,12 @@ def _tuned(tmp_path, spec=""):
 
 
 def _selftest(ctl, b, seq=40):
-    st, a1 = _ask(ctl, b, "selftest", {}, seq)
+    st, a1 = _ask(ctl, b, "selftest", {"bypass": True}, seq)
     assert st == "ok", a1
     from fmlogic.selftest import plan
 
-    r1 = Readings(a1["freq_hz"], plan(tuple(a1["ref"]), 7, 7, True), [g / 1000 for g in a1["g"]])
+    assert 0 <= a1["gb"] <= 1000
+    r1 = Readings(a1["freq_hz"], plan(tuple(a1["ref"]), 7, 7, True), [g / 1000 for g in a1["g"]], a1["gb"] / 1000)
     mdl = model_of(NET, draw_box(NET, 11, 0.05, "default").detector.calibrated_leak())
     ref2 = second_ref(mdl, r1)
     args = {"l": ref2[0], "c": ref2[1], "sh": ref2[2], "side": False}
@@ -74,7 +75,8 @@ def _selftest(ctl, b, seq=40):
             ctl.step()
         st, a2 = _ask(ctl, b, "selftest", args, seq + 2)
     assert st == "ok", a2
-    r = Readings(r1.freq_hz, r1.states + plan(ref2, 7, 7, False), r1.gammas + [g / 1000 for g in a2["g"]])
+    r = Readings(r1.freq_hz, r1.states + plan(ref2, 7, 7, False), r1.gammas + [g / 1000 for g in a2["g"]],
+                 r1.bypass_gamma)
     return a1, a2, diagnose(mdl, r)
 
 
@@ -111,12 +113,16 @@ def test_a_healthy_box_passes_and_its_relays_come_back(tmp_path):
     m, b, ctl = _tuned(tmp_path)
     before = ctl._state_list()
     a1, a2, res = _selftest(ctl, b)
-    assert len(a1["g"]) + len(a2["g"]) == 31
+    assert len(a1["g"]) + len(a2["g"]) + 1 == 32 and a2["gb"] == -1  # the bypass read once, in the first step
     assert a1["relays"] == before and a2["relays"] == before and ctl._state_list() == before
     assert res["faults"] == [] and m.violations == []
+    # At 14.2 MHz L6 (6.4 uH, about 570 ohm) in series reads near total reflection from every
+    # state: its value is not measured there, and the diagnosis says so rather than passing it.
+    assert "L6" in res["values_unmeasured"]
 
 
-@pytest.mark.parametrize("spec", ["C4:stuck-out", "L2:stuck-in", "side:stuck-tx", "C3:stuck-in"])
+@pytest.mark.parametrize("spec", ["C4:stuck-out", "L2:stuck-in", "side:stuck-tx", "C3:stuck-in", "L3:drift=-30%",
+                                  "C4:drift=-30%"])
 def test_the_injected_fault_is_the_one_named(tmp_path, spec):
     m, b, ctl = _tuned(tmp_path, spec)
     _, _, res = _selftest(ctl, b)

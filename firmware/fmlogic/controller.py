@@ -627,8 +627,9 @@ class Controller:
                 if not isinstance(v, int) or isinstance(v, bool) or v < 0 or v > top:
                     return False, {"why": "bad-args", "msg": "l/c/sh out of range"}
         side = a.get("side", True)
-        if not isinstance(side, bool):
-            return False, {"why": "bad-args", "msg": "side must be true or false"}
+        byp = a.get("bypass", False)
+        if not isinstance(side, bool) or not isinstance(byp, bool):
+            return False, {"why": "bad-args", "msg": "side and bypass must be true or false"}
         fwd, _ = self._read()
         if not self.power["min_tune_w"] <= fwd <= self.power["max_tune_w"]:
             return False, {"why": "no-carrier", "msg": "key a carrier of %g to %g W" %
@@ -640,10 +641,10 @@ class Controller:
             else:
                 hint = self.mem.lookup(f) if f > 0 else None
                 ref = (hint[0], hint[1], hint[2]) if hint else (0, 0, 1)
-        g, why = selftest.run(self, ref, side)
+        g, why, gb = selftest.run(self, ref, side, byp)
         if _COLLECT:
             gc.collect()
-        return True, {"ref": [ref[0], ref[1], ref[2]], "side": side, "g": g, "freq_hz": f,
+        return True, {"ref": [ref[0], ref[1], ref[2]], "side": side, "g": g, "gb": gb, "freq_hz": f,
                       "fwd_w": _r3(self.fwd), "stopped": why, "relays": self._state_list()}
 
     def _status(self):

@@ -17,8 +17,9 @@
 # The self-test steps every relay from a reference state (the box's tuned
 # state), then from a second reference the host picks on the other side with
 # as many relays reversed as keeps the readings informative (so a stuck-in and
-# a stuck-out element read differently): 2 * (1 + nL + nC) + 1 readings for a
-# 7 + 7 bank (31), within the 40 the diagnosis may use.
+# a stuck-out element read differently), and once through the bypass (the
+# load's own |gamma|): 2 * (1 + nL + nC) + 2 readings for a 7 + 7 bank (32),
+# within the 40 the diagnosis may use.
 
 STUCK_OUT = "stuck-out"
 STUCK_IN = "stuck-in"
@@ -150,8 +151,9 @@ def plan(ref, nl, nc, side=True):
 
 
 def readings_needed(nl, nc):
-    """Two steps (the second without its side toggle): 2 * (1 + nL + nC) + 1."""
-    return 2 * (1 + nl + nc) + 1
+    """Two steps (the second without its side toggle) and the bypass reading:
+    2 * (1 + nL + nC) + 2."""
+    return 2 * (1 + nl + nc) + 2
 
 
 def check_failed(errs, where, v, nl, nc):
@@ -260,12 +262,15 @@ def damage_from(cfg, bank):
     return Damage([parse_fault(t, bank.nl, bank.nc) for t in failed], bank)
 
 
-def run(ctl, ref, side):
+def run(ctl, ref, side, bypass=False):
     """Step the relays through plan(ref) on the controller ctl with the carrier
     on, every change through its hot-switch gate (ctl._switch), then put the
     relays back as they were.  Returns (|gamma| x 1000 per state read, why the
-    steps stopped early or "").  A reading outside the tune window stops the
-    test: the carrier went away or rose, and nothing more is switched."""
+    steps stopped early or "", |gamma| x 1000 through the bypass or -1).  With
+    bypass the antenna is read once through the bypass relay after the steps:
+    the load's own |gamma|, which ties every hypothesis of the host's diagnosis
+    to one load.  A reading outside the tune window stops the test: the
+    carrier went away or rose, and nothing more is switched."""
     from array import array
 
     from fmlogic.swr import reading_gamma
@@ -296,7 +301,20 @@ def run(ctl, ref, side):
         g = reading_gamma(fwd, rev)
         out[n] = int(g * 1000.0 + 0.5) if g >= 0.0 else -1
         n += 1
+    gb = -1
+    if bypass and not why:
+        if not ctl._switch(states[0], True):
+            why = "power above hot-switch limit"
+        else:
+            ctl.board.sleep_ms(settle)
+            fwd, rev = ctl._read()
+            ctl.board.wdt_feed()
+            if lo <= fwd <= hi:
+                g = reading_gamma(fwd, rev)
+                gb = int(g * 1000.0 + 0.5) if g >= 0.0 else -1
+            else:
+                why = "carrier lost" if fwd < lo else "power rose above tune window"
     # Back where the box was (the gate still applies: above the limit it holds).
     if not ctl._switch(before, byp) and not why:
         why = "relays held after the test (power above hot-switch limit)"
-    return [out[i] for i in range(n)], why
+    return [out[i] for i in range(n)], why, gb

@@ -2,8 +2,9 @@
 `selftest` request, under its hot-switch gate), the host picks the second
 reference and diagnoses (rf.diagnose).
 
-Two steps: from the box's tuned state (tuned first when it is not), then from
-the reference second_ref() picks on the other capacitor side.  The model is
+Two steps: from the box's tuned state (tuned first when it is not), with one
+reading through the bypass (the load's own |gamma|), then from the reference
+second_ref() picks on the other capacitor side.  The model is
 what the box knows of itself: its element values (learned ones where its config
 holds a correction), Qs, the coupler leak from its calibration, and the typical
 build strays (rf.network.STRAY_DEFAULTS).
@@ -47,7 +48,9 @@ def _step(link, args: dict[str, Any], nl: int, nc: int) -> tuple[list, list[floa
         raise LinkError(f"the board refused the self-test: {e.words}") from None
     ref = tuple(ans["ref"])
     states = plan(ref, nl, nc, bool(ans.get("side", True)))[:len(ans["g"])]
-    return states, [g / 1000.0 for g in ans["g"]], ans
+    # A reading the box could not use (-1) is left out with its state.
+    keep = [i for i, g in enumerate(ans["g"]) if g >= 0]
+    return [states[i] for i in keep], [ans["g"][i] / 1000.0 for i in keep], ans
 
 
 def run_selftest(link, wait_s: float = 20.0, say=None) -> dict[str, Any]:
@@ -72,20 +75,22 @@ def run_selftest(link, wait_s: float = 20.0, say=None) -> dict[str, Any]:
             raise LinkError(f"the board refused to tune first: {e.words}") from None
         if link.wait_event("record", lambda o: o.get("seq", 0) > before, timeout=wait_s) is None:
             raise LinkError(f"no tune result within {wait_s:g} s (is a carrier keyed in the tune window?)")
-    s1, g1, a1 = _step(link, {}, nl, nc)
+    s1, g1, a1 = _step(link, {"bypass": True}, nl, nc)
     if a1.get("stopped"):
         raise LinkError(f"the self-test stopped: {a1['stopped']}")
     f = float(a1.get("freq_hz") or 0.0)
     if f <= 0:
         raise LinkError("the board counted no frequency: the self-test needs the carrier's frequency")
-    ref2 = second_ref(m, Readings(f, s1, g1))
+    gb = a1.get("gb", -1)
+    g_byp = gb / 1000.0 if isinstance(gb, int) and gb >= 0 else None
+    ref2 = second_ref(m, Readings(f, s1, g1, g_byp))
     say(f"second step from L{ref2[0]} C{ref2[1]} {'tx' if ref2[2] == 0 else 'ant'}")
     time.sleep(0.05)
     s2, g2, a2 = _step(link, {"l": ref2[0], "c": ref2[1], "sh": ref2[2], "side": False}, nl, nc)
     if a2.get("stopped"):
         raise LinkError(f"the self-test stopped: {a2['stopped']}")
-    res = diagnose(m, Readings(f, s1 + s2, g1 + g2))
-    res.update({"readings": len(g1) + len(g2), "freq_hz": f, "fwd_w": a1.get("fwd_w"),
+    res = diagnose(m, Readings(f, s1 + s2, g1 + g2, g_byp))
+    res.update({"readings": len(g1) + len(g2) + (g_byp is not None), "freq_hz": f, "fwd_w": a1.get("fwd_w"),
                 "refs": [list(s1[0]), list(s2[0])], "tuned_first": not tuned_before,
                 "values": {"inductors_uh": m.inductors_uh, "capacitors_pf": m.capacitors_pf}})
     return res

@@ -159,7 +159,8 @@ def cmd_selftest(a) -> int:
         if a.write:
             res["written"] = _write_faults(ln, res)
     if a.json:
-        emit_json({k: res[k] for k in ("faults", "readings", "untested", "freq_hz", "refs", "chi2_healthy",
+        emit_json({k: res[k] for k in ("faults", "readings", "untested", "values_unmeasured", "freq_hz", "refs",
+                                      "chi2_healthy",
                                       "tuned_first") if k in res} | ({"written": res["written"]}
                                                                      if "written" in res else {}))
         return 0 if not res["faults"] else 1
@@ -173,9 +174,13 @@ def cmd_selftest(a) -> int:
         print(f"  {f['element']}{' (' + f['nominal'] + ')' if 'nominal' in f else ''}: {f['kind']} {what}".rstrip())
         for t in f["evidence"]["telling"]:
             st = t["state"]
-            print(f"    L{st[0]} C{st[1]} {'tx' if st[2] == 0 else 'ant'}: read |gamma| {t['measured_gamma']:.3f}, "
+            where = "bypass" if st == ["bypass"] else f"L{st[0]} C{st[1]} {'tx' if st[2] == 0 else 'ant'}"
+            print(f"    {where}: read |gamma| {t['measured_gamma']:.3f}, "
                   f"healthy box {t['healthy_gamma']:.3f}, with this fault {t['fault_gamma']:.3f}")
         print(f"    fit chi-square: healthy {f['evidence']['chi2_healthy']}, this fault {f['evidence']['chi2_fault']}")
+        if f.get("fits_as_well"):
+            print(f"    the readings fit {', '.join(f['fits_as_well'])} as well: "
+                  "repeat on a lower band to tell them apart")
     if res["untested"]:
         names = []
         for e in res["untested"]:
@@ -186,6 +191,12 @@ def cmd_selftest(a) -> int:
                 names.append(f"{e} ({v:g} {'uH' if e[0] == 'L' else 'pF'})")
         print(f"  not tested at this carrier (their steps barely move the reading): {', '.join(names)}; "
               "repeat on another band")
+    if res.get("values_unmeasured"):
+        names = []
+        for e in res["values_unmeasured"]:
+            v = vals["inductors_uh" if e[0] == "L" else "capacitors_pf"][int(e[1:])]
+            names.append(f"{e} ({v:g} {'uH' if e[0] == 'L' else 'pF'})")
+        print(f"  values not measured at this carrier (a drift there would pass unseen): {', '.join(names)}")
     if "written" in res:
         print(f"  {res['written']}")
     return 0 if not res["faults"] else 1

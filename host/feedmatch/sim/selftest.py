@@ -31,7 +31,7 @@ def model_of(known: Network, leak: float, strays: bool = True) -> Model:
 
 def read_step(true_net: Network, det: DetectorModel, faults: Faults, freq_hz: float, z_load: complex,
               ref: tuple[int, int, int], side: bool, rng: random.Random,
-              tune_w: float = 10.0) -> tuple[list[tuple[int, int, int]], list[float]]:
+              tune_w: float = 10.0, bypass: bool = False) -> tuple[list[tuple[int, int, int]], list[float]]:
     """What one firmware `selftest` step returns on this box: its commanded states
     and |gamma| of each, in thousandths as the frame carries them."""
     from fmlogic.selftest import plan
@@ -48,6 +48,10 @@ def read_step(true_net: Network, det: DetectorModel, faults: Faults, freq_hz: fl
     for s in states:
         pf, pr = meter.powers(*det.read(tune_w, complex(tg[s[2], s[0], s[1]]), freq_hz, rng))
         out.append(round(max(0.0, reading_gamma(pf, pr)) * 1000) / 1000)
+    if bypass:
+        g_load = (z_load - true_net.z0_ohm) / (z_load + true_net.z0_ohm)
+        pf, pr = meter.powers(*det.read(tune_w, complex(g_load), freq_hz, rng))
+        out.append(round(max(0.0, reading_gamma(pf, pr)) * 1000) / 1000)
     return states, out
 
 
@@ -57,11 +61,11 @@ def run_case(true_net: Network, known: Network, det: DetectorModel, faults: Faul
     ref, the second from the reference the host picks, then the diagnosis."""
     rng = random.Random(seed)
     m = model_of(known, det.calibrated_leak())
-    s1, g1 = read_step(true_net, det, faults, freq_hz, z_load, ref, True, rng)
-    r1 = Readings(freq_hz, s1, g1)
+    s1, g1 = read_step(true_net, det, faults, freq_hz, z_load, ref, True, rng, bypass=True)
+    r1 = Readings(freq_hz, s1, g1[:-1], g1[-1])
     s2, g2 = read_step(true_net, det, faults, freq_hz, z_load, second_ref(m, r1), False, rng)
-    res = diagnose(m, Readings(freq_hz, s1 + s2, g1 + g2))
-    res["readings"] = len(s1) + len(s2)
+    res = diagnose(m, Readings(freq_hz, s1 + s2, g1[:-1] + g2, g1[-1]))
+    res["readings"] = len(g1) + len(g2)
     return res
 
 
