@@ -17,21 +17,8 @@ from array import array
 try:
     import micropython
     from micropython import const
-except ImportError:  # CPython: the same code, run as plain Python
-
-    def const(x):
-        return x
-
-    class micropython:  # noqa: N801 - stands in for the module
-        @staticmethod
-        def viper(f):
-            return f
-
-    def ptr8(x):
-        return x
-
-    def ptr16(x):
-        return x
+except ImportError:  # CPython: the same code, run as plain Python (fmlogic.shim)
+    from fmlogic.shim import const, micropython, ptr8, ptr16
 
 
 MAX_LINE = const(2048)

@@ -13,8 +13,9 @@ from array import array
 
 try:
     import micropython
-except ImportError:  # CPython: the same code, run as plain Python
-    from fmlogic.hunt import micropython, ptr32
+except ImportError:  # CPython: the same code, run as plain Python (fmlogic.shim)
+    from fmlogic.shim import micropython, ptr32
+
 
 SHUNT_TX = 0
 SHUNT_ANT = 1

@@ -15,22 +15,8 @@ from array import array
 
 try:
     import micropython
-except ImportError:  # CPython: the same code, run as plain Python
-
-    class micropython:  # noqa: N801 - stands in for the module
-        @staticmethod
-        def viper(f):
-            return f
-
-        @staticmethod
-        def native(f):
-            return f
-
-    def ptr16(x):
-        return x
-
-    def ptr32(x):
-        return x
+except ImportError:  # CPython: the same code, run as plain Python (fmlogic.shim)
+    from fmlogic.shim import micropython, ptr16, ptr32
 
 
 ONE = 16384

@@ -24,11 +24,8 @@ from fmlogic.swr import BAD_READING, GAMMA_MAX, NO_RF, gamma_from_swr, reading_g
 try:
     import micropython
     from micropython import const
-except ImportError:  # CPython: the decorators change nothing there
-    from fmlogic.hunt import micropython
-
-    def const(x):
-        return x
+except ImportError:  # CPython: the same code, run as plain Python (fmlogic.shim)
+    from fmlogic.shim import const, micropython
 
 
 BYPASS = (0, 0, lnet.SHUNT_ANT)
