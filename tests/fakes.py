@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import copy
+
 from feedmatch.rf.antenna import Monopole
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
+from feedmatch.seam.bank import DEFAULT_SECTION, ELEMENT_KEYS
 from feedmatch.sim.inproc import InProcessBoard as FakeBoard  # noqa: F401 (the tests' name)
 from feedmatch.sim.station import StationModel
 
@@ -19,9 +22,7 @@ def board_config(**over):
     pts = [list(p) for p in det.calibration_points()]
     cfg = {
         "board": "virtual", "board_id": "test-1",
-        "network": {"z0_ohm": 50, "inductors_uh": [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4],
-                    "capacitors_pf": [10, 20, 40, 80, 160, 320, 640],
-                    "inductor_q": 150, "capacitor_q": 1000},
+        "network": copy.deepcopy({k: DEFAULT_SECTION[k] for k in ELEMENT_KEYS}),  # the shipped bank
         "detector": {"fwd": pts, "ref": pts, "floor_counts": 2.0},
         "power": {"min_tune_w": 2, "max_tune_w": 20, "hot_switch_w": 25, "max_w": 150},
         "tune": {"strategy": "recall", "target_swr": 1.5, "retune_swr": 2.0, "budget": 60,

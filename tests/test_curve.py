@@ -14,11 +14,12 @@ import json
 
 import numpy as np
 import pytest
+from feedmatch.seam.bank import DEFAULT_SECTION
 from scipy.optimize import least_squares
 
 Z0 = 50.0
-IND = [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4]  # uH, the shipped network's banks
-CAP = [10.0, 20.0, 40.0, 80.0, 160.0, 320.0, 640.0]  # pF
+IND = list(DEFAULT_SECTION["inductors_uh"])  # uH, the shipped network's banks
+CAP = list(DEFAULT_SECTION["capacitors_pf"])  # pF
 F = 14.2e6
 Z_TRUE = 20 - 60j  # a short vertical's feed point near 20 m (invented for the example)
 # The states a model search might have read around the match (l_code, c_code, shunt).

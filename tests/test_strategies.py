@@ -132,7 +132,9 @@ def test_recall_good_hint_is_one_reading_bad_hint_falls_back():
 
 DECISIONS = r"""
 from fmlogic import lnet, search
-b = lnet.Bank(50, [0.1, 0.2, 0.4, 0.8, 1.6, 3.2, 6.4], [10, 20, 40, 80, 160, 320, 640], 150, 1000)
+from fmlogic.config import DEFAULTS
+n = DEFAULTS["network"]  # the shipped bank
+b = lnet.Bank(n["z0_ohm"], n["inductors_uh"], n["capacitors_pf"], n["inductor_q"], n["capacitor_q"])
 # A box that is not the model: elements off nominal, and a complex coupler leakage.
 t = lnet.Bank(50, [0.103, 0.196, 0.41, 0.79, 1.63, 3.12, 6.55], [10.2, 19.5, 41, 78, 163, 315, 652], 150, 1000)
 d = complex(0.04, 0.04)

@@ -3,6 +3,8 @@
 # each naming the field; an empty list means the config is good.
 
 FORMAT = 1
+# Elements per bank at most (lnet.Bank tabulates all 2^n codes of a bank); the host takes it from here.
+MAX_BITS = 12
 
 DEFAULTS = {
     "format": FORMAT,
@@ -70,7 +72,7 @@ DEFAULTS = {
 }
 
 # (section, key): (kind, low, high); kind "n" number, "i" integer, "b" bool, "s" string
-_RANGES = {
+RANGES = {
     ("power", "min_tune_w"): ("n", 0.01, 1000.0),
     ("power", "max_tune_w"): ("n", 0.01, 1000.0),
     ("power", "hot_switch_w"): ("n", 0.0, 1000.0),
@@ -204,14 +206,14 @@ def validate(cfg):
             for k in cfg.get(sec, {}):
                 if k not in DEFAULTS[sec] and sec != "pins":
                     errs.append("unknown field '%s.%s'" % (sec, k))
-    for key in _RANGES:
-        kind, lo, hi = _RANGES[key]
+    for key in RANGES:
+        kind, lo, hi = RANGES[key]
         sec = m.get(key[0])
         if isinstance(sec, dict) and key[1] in sec:
             _check_range(errs, key[0] + "." + key[1], sec[key[1]], kind, lo, hi)
     net = m["network"]
-    _check_values(errs, "network.inductors_uh", net.get("inductors_uh"), 12)
-    _check_values(errs, "network.capacitors_pf", net.get("capacitors_pf"), 12)
+    _check_values(errs, "network.inductors_uh", net.get("inductors_uh"), MAX_BITS)
+    _check_values(errs, "network.capacitors_pf", net.get("capacitors_pf"), MAX_BITS)
     if not errs:
         from fmlogic.selftest import check_failed
 
@@ -259,7 +261,7 @@ def validate(cfg):
             for k, n in (("inductors_uh", len(net.get("inductors_uh") or [])),
                          ("capacitors_pf", len(net.get("capacitors_pf") or []))):
                 if k in corr:
-                    _check_values(errs, "correction." + k, corr[k], 12)
+                    _check_values(errs, "correction." + k, corr[k], MAX_BITS)
                     if isinstance(corr[k], list) and len(corr[k]) != n:
                         errs.append("correction.%s must have %d entries like network.%s" % (k, n, k))
     return errs

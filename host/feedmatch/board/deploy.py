@@ -213,10 +213,10 @@ class MpremoteTarget:
 
 def plan(board: str, config_path: Path, compile_mpy: bool, target, work: Path,
          arch: str | None = None) -> dict:
-    from fmlogic import config as fcfg
+    from feedmatch.seam.bank import validate
 
     cfg = load_json(config_path, "board config")
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"board config {config_path} refused: {errs[0]}")
     if cfg.get("board") != board:

@@ -25,9 +25,10 @@ from typing import Any
 
 from feedmatch.board.hub import ensure_hub
 from feedmatch.board.keying import KeyerLock, KeyPolicy
-from feedmatch.board.link import BoardLink, state_values
+from feedmatch.board.link import BoardLink
 from feedmatch.board.rigctl import RigClient, RigError
 from feedmatch.errors import BoardRefused, InputError, LinkError
+from feedmatch.seam.bank import network_of_section, side_name, state_values
 
 MAX_KEY_S = 5.0  # the longest a tune carrier stays keyed, whatever happens
 HEARTBEAT_S = 3.0  # how often the board is asked whether it is still there
@@ -115,11 +116,7 @@ class Follower:
         assert self.policy is not None
         m = ln.element_sections()
         if m and isinstance(m.get("network"), dict):
-            # The element values and their losses (a Q of 0 is the board's "lossless"); the
-            # board's other keys (stuck elements) are the firmware's business.
-            sec = {k: v for k, v in m["network"].items()
-                   if k in ("z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q")
-                   and not (k.endswith("_q") and not v)}
+            sec = network_of_section(m["network"])
             try:
                 self.policy.network = network_from_dict(sec, "the board's network")
                 self.policy._matched.clear()
@@ -231,7 +228,7 @@ class Follower:
             r = ans.get("relays") or [0, 0, 0, 0]
             v = state_values(self.bank, r[0], r[1])
             vals = f" ({v[0]:.2f} uH, {v[1]:.0f} pF)" if v else ""
-            self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'}{vals} from memory "
+            self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {side_name(r[2])}{vals} from memory "
                      f"(stored SWR {ans.get('stored_swr')}); the first carrier confirms it")
             return
         if self.curve_preset is not None and self._preset_from_curve(ln, f, mode):
@@ -281,7 +278,7 @@ class Follower:
         self.presets += 1
         r = ans.get("relays") or plan["state"]
         z = plan["z_ohm"]
-        self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {'tx' if r[2] == 0 else 'ant'} from the antenna curve "
+        self.say(f"{_mhz(f)} {mode}: preset L{r[0]} C{r[1]} {side_name(r[2])} from the antenna curve "
                  f"(antenna {z[0]:.1f}{z[1]:+.1f}j +- {plan['z_err_ohm']:.1f} ohm, predicted SWR {plan['swr']:.2f}); "
                  "the first carrier confirms it")
         return True

@@ -25,9 +25,9 @@ import time
 from pathlib import Path
 
 import serial
-from fmlogic import link as frames
 
 from feedmatch.errors import LinkError, PortBusy, PortOwned
+from feedmatch.seam import frames
 
 BACKLOG = 128  # connections waiting to be accepted: many tools started at once all get in
 _CRED = struct.Struct("3i")  # struct ucred: pid, uid, gid (Linux, socket(7) SO_PEERCRED)

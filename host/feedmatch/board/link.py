@@ -16,9 +16,9 @@ from typing import Any
 
 import serial
 import serial.tools.list_ports
-from fmlogic import link as frames
 
 from feedmatch.errors import BoardRefused, LinkError, LinkTimeout, PortBusy, PortError, PortMissing
+from feedmatch.seam import frames
 
 # Events kept for a reader that has no handler (wait_event, serve's watcher): the
 # oldest go first, so a tool that never reads them holds at most this many.
@@ -59,14 +59,6 @@ def open_serial(dev: str, baud: int) -> serial.SerialBase:
             raise PortBusy(f"port {dev} is busy (another program has it open)") from None
         kind = PortMissing if code == errno.ENOENT else PortError
         raise kind(f"cannot open port {dev}: {e}") from None
-
-
-def state_values(bank, l_code: int, c_code: int) -> tuple[float, float] | None:
-    """(uH, pF) of a state's codes in a firmware Bank, or None without a bank or
-    for codes it does not have: the values a builder measures, beside the codes."""
-    if bank is None or not (0 <= l_code <= bank.l_max and 0 <= c_code <= bank.c_max):
-        return None
-    return bank.lv[l_code], bank.cv[c_code]
 
 
 class BoardLink:
@@ -249,13 +241,9 @@ class BoardLink:
     def bank(self):
         """The board's element values as a firmware Bank (learned ones where it has
         them), or None when it does not say: callers then show codes alone."""
-        from fmlogic.config import bank_from
+        from feedmatch.seam.bank import bank_or_none
 
-        m = self.element_sections()
-        try:
-            return bank_from(m) if m else None
-        except (KeyError, TypeError, ValueError):
-            return None
+        return bank_or_none(self.element_sections())
 
     def wait_event(self, word: str, pred: Callable[[dict], bool] = lambda o: True,
                    timeout: float = 10.0) -> dict[str, Any] | None:

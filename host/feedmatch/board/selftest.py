@@ -18,6 +18,7 @@ from typing import Any
 from feedmatch.errors import BoardRefused, LinkError
 from feedmatch.rf.diagnose import Model, Readings, diagnose, second_ref
 from feedmatch.rf.network import STRAY_DEFAULTS
+from feedmatch.seam.bank import side_name
 
 
 def model_from_config(net: dict[str, Any], correction: dict[str, Any] | None, det: dict[str, Any]) -> Model:
@@ -32,7 +33,7 @@ def model_from_config(net: dict[str, Any], correction: dict[str, Any] | None, de
 
 
 def _step(link, args: dict[str, Any], nl: int, nc: int) -> tuple[list, list[float], dict[str, Any]]:
-    from fmlogic.selftest import plan
+    from feedmatch.seam.logic import plan
 
     try:
         try:
@@ -84,7 +85,7 @@ def run_selftest(link, wait_s: float = 20.0, say=None) -> dict[str, Any]:
     gb = a1.get("gb", -1)
     g_byp = gb / 1000.0 if isinstance(gb, int) and gb >= 0 else None
     ref2 = second_ref(m, Readings(f, s1, g1, g_byp))
-    say(f"second step from L{ref2[0]} C{ref2[1]} {'tx' if ref2[2] == 0 else 'ant'}")
+    say(f"second step from L{ref2[0]} C{ref2[1]} {side_name(ref2[2])}")
     time.sleep(0.05)
     s2, g2, a2 = _step(link, {"l": ref2[0], "c": ref2[1], "sh": ref2[2], "side": False}, nl, nc)
     if a2.get("stopped"):

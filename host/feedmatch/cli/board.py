@@ -20,6 +20,7 @@ from feedmatch.cli.common import (
 from feedmatch.cli.output import emit_json
 from feedmatch.errors import BoardRefused, InputError
 from feedmatch.outpaths import output_file
+from feedmatch.seam.bank import side_name
 
 
 def _freq_disagrees(asked: str | None, asked_hz: float, counted_hz: float) -> str:
@@ -143,7 +144,7 @@ def cmd_tune(a) -> int:
         note = _freq_disagrees(a.freq, f, rec.get("freq_hz") or 0.0)
         if note:
             print("note: " + note)
-    from fmlogic.controller import BEST, LOCKED, THROUGH
+    from feedmatch.seam.logic import BEST, LOCKED, THROUGH
 
     # A tune that left the SWR higher than it found it is not a success.
     return 0 if rec["outcome"] in (LOCKED, BEST, THROUGH) and not worse else 1
@@ -174,7 +175,7 @@ def cmd_selftest(a) -> int:
         print(f"  {f['element']}{' (' + f['nominal'] + ')' if 'nominal' in f else ''}: {f['kind']} {what}".rstrip())
         for t in f["evidence"]["telling"]:
             st = t["state"]
-            where = "bypass" if st == ["bypass"] else f"L{st[0]} C{st[1]} {'tx' if st[2] == 0 else 'ant'}"
+            where = "bypass" if st == ["bypass"] else f"L{st[0]} C{st[1]} {side_name(st[2])}"
             print(f"    {where}: read |gamma| {t['measured_gamma']:.3f}, "
                   f"healthy box {t['healthy_gamma']:.3f}, with this fault {t['fault_gamma']:.3f}")
         print(f"    fit chi-square: healthy {f['evidence']['chi2_healthy']}, this fault {f['evidence']['chi2_fault']}")
@@ -205,7 +206,7 @@ def cmd_selftest(a) -> int:
 def _write_faults(ln, res) -> str:
     """--write: a stuck element goes into the board's network.failed (the search then
     keeps to states it can reach); a drift is for fit-box's correction, not written here."""
-    from fmlogic.selftest import FAILED_KINDS
+    from feedmatch.seam.logic import FAILED_KINDS
 
     stuck = [f"{f['element']}:{f['kind']}" for f in res["faults"] if f["kind"] in FAILED_KINDS]
     if not stuck:
@@ -293,7 +294,7 @@ def cmd_memory(a) -> int:
         return 0
     print(f"{plural(len(items), 'stored state')} (bins of {r['bin_hz'] / 1e3:g} kHz)")
     for f, l, c, sh, swr, _t in items:
-        print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {'tx' if sh == 0 else 'ant':>3}  SWR {swr:.2f}"
+        print(f"  {f / 1e6:9.4f} MHz  L{l:<4d} C{c:<4d} {side_name(sh):>3}  SWR {swr:.2f}"
               f"{values_text(bank, l, c)}")
     return 0
 

@@ -16,6 +16,7 @@ from typing import TextIO
 from feedmatch.board.calibrate import fit_table, leak_for_config, residual_directivity
 from feedmatch.errors import BoardRefused, InputError, LinkError
 from feedmatch.jsonfile import load_json, write_json_with_backup
+from feedmatch.seam.bank import merged, validate
 
 
 def _watts(line: str, asked: float) -> float:
@@ -92,9 +93,8 @@ def _restore(ln, was_bypassed: bool, out: TextIO, unkey: Callable[[float], None]
 
 def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
                   on_prompt: Callable[[float], None] | None = None) -> int:
-    from fmlogic.swr import Calibration
-
     from feedmatch.board.link import BoardLink
+    from feedmatch.seam.logic import Calibration
 
     cfg_path = Path(a.config)
     cfg = load_json(cfg_path, "board config")
@@ -140,9 +140,7 @@ def run_calibrate(a: argparse.Namespace, inp: TextIO, out: TextIO,
         # The leakage into the dummy load is what the search allows for.
         cfg["detector"] = dict(det_cfg, fwd=table, ref=table, floor_counts=floor,
                                leak=leak_for_config(res["gamma"]))
-    from fmlogic import config as fcfg
-
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"the new calibration does not validate: {errs[0]}")
     write_json_with_backup(cfg_path, cfg)
@@ -161,18 +159,16 @@ def run_coupler(a: argparse.Namespace, out: TextIO, on_prompt: Callable[[float],
     carrier at tune power, the box steps through its own states (known
     standards on 50 ohm) and the coupler's error box is fitted to the readings
     (feedmatch.sim.coupler_cal); the result goes into detector.coupler."""
-    from fmlogic import config as fcfg
-    from fmlogic.swr import Calibration
-
     from feedmatch.board.link import BoardLink
     from feedmatch.rf.network import Network
+    from feedmatch.seam.logic import Calibration
     from feedmatch.sim.coupler_cal import solve, standards
 
     cfg_path = Path(a.config)
     cfg = load_json(cfg_path, "board config")
-    if fcfg.validate(cfg):
-        raise InputError(f"{cfg_path}: {fcfg.validate(cfg)[0]}")
-    m = fcfg.merged(cfg)
+    if validate(cfg):
+        raise InputError(f"{cfg_path}: {validate(cfg)[0]}")
+    m = merged(cfg)
     det_cfg = m["detector"]
     fl = float(det_cfg["floor_counts"])
     cf, cr = Calibration(det_cfg["fwd"], fl), Calibration(det_cfg["ref"], fl)
@@ -212,7 +208,7 @@ def run_coupler(a: argparse.Namespace, out: TextIO, on_prompt: Callable[[float],
     cfg.setdefault("detector", {})
     cfg["detector"] = dict(cfg["detector"], coupler=list(fit.learned()),
                            coupler_scales=[round(v, 4) for v in fit.scales])
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"the coupler calibration does not validate: {errs[0]}")
     write_json_with_backup(cfg_path, cfg)

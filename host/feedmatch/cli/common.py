@@ -7,6 +7,7 @@ import argparse
 import math
 
 from feedmatch.errors import InputError
+from feedmatch.seam.bank import side_name, state_values
 
 
 def watts(text: str) -> float:
@@ -78,12 +79,10 @@ def state_text(r, bank=None) -> str:
     l, c, sh, byp = r
     if byp:
         return "through (bypass)"
-    return f"L{l} C{c} {'tx' if sh == 0 else 'ant'}{values_text(bank, l, c)}"
+    return f"L{l} C{c} {side_name(sh)}{values_text(bank, l, c)}"
 
 
 def values_text(bank, l: int, c: int) -> str:
-    from feedmatch.board.link import state_values
-
     v = state_values(bank, l, c)
     return f" ({v[0]:.2f} uH, {v[1]:.0f} pF)" if v else ""
 

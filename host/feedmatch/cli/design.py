@@ -173,15 +173,14 @@ def _lines(s: dict[str, Any], what: str, a: argparse.Namespace) -> list[str]:
 
 def _board_config(path: str) -> dict:
     """A board config that `deploy --config` takes, or InputError."""
-    from fmlogic import config as fcfg
-
     from feedmatch.jsonfile import load_json
+    from feedmatch.seam.bank import validate
 
     cfg = load_json(path, "--into-config board config")
     if not isinstance(cfg, dict) or "board" not in cfg:
         raise InputError(f"--into-config {path} is not a board config (no \"board\" field): give the config "
                          "you deploy, e.g. a copy of the shipped rp2040.json")
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"--into-config {path}: {errs[0]}")
     return cfg
@@ -190,16 +189,15 @@ def _board_config(path: str) -> dict:
 def _put_network(path: str, net: dict) -> None:
     """Replace the element values in a board config's network section with the
     proposal's (the rest of the section, such as failed elements, is kept)."""
-    from fmlogic import config as fcfg
-
     from feedmatch.jsonfile import write_json_with_backup
+    from feedmatch.seam.bank import ELEMENT_KEYS, validate
 
     cfg = _board_config(path)
     sec = dict(cfg.get("network") or {})
-    for k in ("z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q"):
+    for k in ELEMENT_KEYS:
         sec[k] = net[k]
     cfg["network"] = sec
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"the proposal does not fit a board config: {errs[0]}")
     write_json_with_backup(Path(path), cfg)

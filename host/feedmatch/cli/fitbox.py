@@ -64,10 +64,9 @@ def _fit_coupler(a: argparse.Namespace) -> int:
     traces (feedmatch.sim.coupler_cal.refine_from_traces), the calibration's
     detector.coupler of the board config as the prior, the board's own element
     values (network and any fit-box correction) as the model."""
-    from fmlogic import config as fcfg
-
     from feedmatch.jsonfile import load_json
     from feedmatch.rf.network import Network, load_network
+    from feedmatch.seam.bank import merged, validate
     from feedmatch.sim.coupler_cal import (
         REFINE_MAX_TRACES,
         REFINE_MIN_TRACES,
@@ -82,10 +81,10 @@ def _fit_coupler(a: argparse.Namespace) -> int:
     scales = None
     if cfg_path:
         cfg = load_json(Path(cfg_path), "board config")
-        errs = fcfg.validate(cfg)
+        errs = validate(cfg)
         if errs:
             raise InputError(f"board config {cfg_path}: {errs[0]}")
-        m = fcfg.merged(cfg)
+        m = merged(cfg)
         n = m["network"]
         net = Network(float(n["z0_ohm"]), [float(v) for v in n["inductors_uh"]],
                       [float(v) for v in n["capacitors_pf"]], n.get("inductor_q"), n.get("capacitor_q"))
@@ -114,7 +113,7 @@ def _fit_coupler(a: argparse.Namespace) -> int:
             raise InputError(f"not written to {a.write}: {why}")
         cfg = load_json(Path(a.write), "board config")
         cfg["detector"] = dict(cfg.get("detector") or {}, coupler=list(res["config"]))
-        errs = fcfg.validate(cfg)
+        errs = validate(cfg)
         if errs:
             raise InputError(f"board config {a.write}: {errs[0]}")
         from feedmatch.jsonfile import write_json_with_backup
@@ -140,16 +139,16 @@ def _fit_coupler(a: argparse.Namespace) -> int:
 
 
 def write_correction(path: str, res: dict) -> None:
-    from fmlogic import config as fcfg
+    from feedmatch.jsonfile import load_json, write_json_with_backup
+    from feedmatch.seam.bank import validate
 
     p = Path(path)
-    from feedmatch.jsonfile import load_json, write_json_with_backup
 
     cfg = load_json(p, "board config")
     cfg["correction"] = {"inductors_uh": [round(v, 5) for v in res["inductors_uh"]],
                          "capacitors_pf": [round(v, 4) for v in res["capacitors_pf"]],
                          "note": f"fitted from {res['traces']} tunes"}
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"board config {p}: {errs[0]}")
     write_json_with_backup(p, cfg)

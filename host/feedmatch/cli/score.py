@@ -7,13 +7,12 @@ import sys
 from dataclasses import replace
 from typing import Any
 
-from fmlogic.search import NAMES as STRATEGY_NAMES  # the firmware's own list
-
 from feedmatch.cli.common import seed_number, watts
 from feedmatch.errors import InputError
 from feedmatch.outpaths import output_dir
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
+from feedmatch.seam.logic import STRATEGY_NAMES  # the firmware's own list
 from feedmatch.sim.loads import read_loads, smith_loads
 from feedmatch.sim.scorer import ScoreConfig, score, summarise
 

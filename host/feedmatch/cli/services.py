@@ -146,7 +146,7 @@ def _carrier_policy(a):
     if not a.tune_carrier <= a.rig_full_power:
         raise InputError(f"--tune-carrier {a.tune_carrier:g} W is above the radio's full power "
                          f"(--rig-full-power {a.rig_full_power:g} W)")
-    from fmlogic.config import merged
+    from feedmatch.seam.bank import merged
 
     cfg = merged(st.board_config if st is not None else {})
     keying.check_power(a.tune_carrier, cfg["power"],

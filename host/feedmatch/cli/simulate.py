@@ -33,7 +33,8 @@ def _rl_text(rl_db: float) -> str:
 def cmd_simulate(a: argparse.Namespace) -> int:
     from feedmatch.rf import bands
     from feedmatch.rf.antenna import FixedLoad, load_antenna
-    from feedmatch.rf.network import load_network, parse_shunt
+    from feedmatch.rf.network import load_network
+    from feedmatch.seam.bank import parse_side
     from feedmatch.sim.simulate import best_point, point, ratings
 
     net = load_network(a.network)
@@ -68,7 +69,7 @@ def cmd_simulate(a: argparse.Namespace) -> int:
         else:
             if a.l_code is None or a.c_code is None:
                 raise InputError("give --l-code and --c-code (and --shunt), or --best")
-            pts.append(point(net, f, complex(z), a.l_code, a.c_code, parse_shunt(a.shunt), a.power))
+            pts.append(point(net, f, complex(z), a.l_code, a.c_code, parse_side(a.shunt), a.power))
     if a.json:
         emit_json(pts[0] if len(pts) == 1 else {"points": pts})
         return 0

@@ -9,12 +9,10 @@ from collections import Counter, defaultdict
 from pathlib import Path
 from typing import Any
 
-from fmlogic.config import DEFAULTS
-from fmlogic.controller import LOCKED
-
-from feedmatch.board.link import state_values
 from feedmatch.logbook.store import open_existing
 from feedmatch.rf import bands
+from feedmatch.seam.bank import BOARD_DEFAULTS, bank_or_none, code_value, load_matched_by, side_name, state_values
+from feedmatch.seam.logic import LOCKED
 
 # A band is flagged when its recent tunes differ from its own earlier ones by
 # more than these (common practice for trend alarms: a fixed margin over a
@@ -53,26 +51,14 @@ def _median(xs: list[float]) -> float | None:
 
 
 def _banks(sections: dict[str, dict[str, Any]]) -> dict[str, Any]:
-    """{board key: firmware Bank} from the config sections the logbook kept."""
-    from fmlogic.config import bank_from
-
+    """{board key: firmware Bank} from the config sections the logbook kept; an unusable
+    entry is left out (that board's codes are shown alone)."""
     out = {}
     for key, m in sections.items():
-        try:
-            out[key] = bank_from(m)
-        except (KeyError, TypeError, ValueError):
-            continue  # an unusable entry: that board's codes are shown alone
+        b = bank_or_none(m)
+        if b is not None:
+            out[key] = b
     return out
-
-
-def _value(bank: Any, name: str, code: float) -> float | None:
-    """The element value a (median) code stands for: uH for L, pF for C."""
-    if bank is None:
-        return None
-    i = int(round(code))
-    if name == "L":
-        return bank.lv[i] if 0 <= i <= bank.l_max else None
-    return bank.cv[i] if 0 <= i <= bank.c_max else None
 
 
 def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str, Any]]:
@@ -98,7 +84,7 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
             "median_swr_after": _median([r["swr_after"] for r in ok if r["swr_after"] is not None]),
             "median_tune_ms": _median([r["duration_ms"] for r in tuned if r["duration_ms"] is not None]),
             "median_measurements": _median([r["measurements"] for r in tuned if r["measurements"]]),
-            "most_used_state": ([top[0], top[1], "tx" if top[2] == 0 else "ant"] if top else None),
+            "most_used_state": ([top[0], top[1], side_name(top[2])] if top else None),
             "most_used_values": vals,
             "memory_hit_rate": (sum(1 for r in tuned if r["memory_hit"]) / len(tuned)) if tuned else None,
             "presets": len(presets),
@@ -114,7 +100,7 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
     return out
 
 
-def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"], bank: Any = None) -> dict[str, Any]:
+def health(ok: list, bin_hz: float = BOARD_DEFAULTS["memory"]["bin_hz"], bank: Any = None) -> dict[str, Any]:
     """Compare a band's recent matched tunes with its own baseline (its earlier ones).
 
     Like is compared with like: tunes are grouped by frequency bin, and in each bin
@@ -144,7 +130,7 @@ def health(ok: list, bin_hz: float = DEFAULTS["memory"]["bin_hz"], bank: Any = N
             a = _median([r[key] for r in base]) or 0
             c = _median([r[key] for r in recent]) or 0
             if abs(c - a) > max(3.0, STATE_DRIFT_FRACTION * max(a, c)):
-                va, vc = _value(bank, name, a), _value(bank, name, c)
+                va, vc = code_value(bank, name, a), code_value(bank, name, c)
                 if va is not None and vc is not None:
                     unit, fmt = ("uH", ".2f") if name == "L" else ("pF", ".0f")
                     notes.append(f"{mhz:.3f} MHz: matched {name} moved {va:{fmt}} -> {vc:{fmt}} {unit} "
@@ -221,7 +207,7 @@ def write_csv(path: str, rows: list, banks: dict[str, Any] | None = None) -> Non
             lc = (_get(r, "after_l"), _get(r, "after_c"))
             v = state_values(bank, *lc) if None not in lc and not _get(r, "after_bypass") else None
             vals = {"after_l_uh": round(v[0], 3) if v else None, "after_c_pf": round(v[1], 1) if v else None}
-            w.writerow([("tx" if r[c] == 0 else "ant") if c == "after_shunt" and r[c] is not None
+            w.writerow([side_name(r[c]) if c == "after_shunt" and r[c] is not None
                         else b[0] if c == "true_swr_low" else b[1] if c == "true_swr_high"
                         else vals[c] if c in vals else _get(r, c)
                         for c in cols])
@@ -336,8 +322,6 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
     matched states as the load each one matches (a reflection coefficient against
     50 ohm, for a Smith chart), from the board's own element values where the
     logbook has them (else the shipped network's)."""
-    from fmlogic import lnet
-
     from feedmatch.rf.network import Z0_OHM, gamma, load_network
 
     rep = make_report(db)
@@ -353,7 +337,7 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
             series[r["band"]].append([r["time"], r["swr_after"], r["outcome"], round((r["freq_hz"] or 0.0) / BIN_HZ)])
         if r["outcome"] == LOCKED and r["after_l"] is not None and not r["after_bypass"] and r["freq_hz"]:
             bank = banks.get(r["board_id"], default_bank)
-            z = lnet.load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),
+            z = load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),
                                      int(r["after_shunt"]))
             if z is not None and z.real > 0:
                 g = complex(gamma(z, Z0_OHM))

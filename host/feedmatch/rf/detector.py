@@ -148,7 +148,7 @@ class DetectorModel:
 
     def meter(self, min_fwd_w: float = 0.5):
         """The firmware's Meter calibrated against this detector (or ideal)."""
-        from fmlogic.swr import Calibration, Meter
+        from feedmatch.seam.logic import Calibration, Meter
 
         if self.ideal:
             pts = [(1e-6, 1e-6), (1e4, 1e4)]

@@ -130,9 +130,8 @@ def _gamma_states(m: Model, f_hz: float, states: np.ndarray, hyp: tuple[str, str
                   g_load: np.ndarray) -> np.ndarray:
     """gamma (without leakage) of each commanded state (rows) for each load
     reflection (columns) on the box hyp describes."""
-    from fmlogic.selftest import masks, reach
-
     from feedmatch.rf.network import _stray_y, series_table, shunt_table
+    from feedmatch.seam.logic import masks, reach
 
     net = _network(m, hyp, scale)
     fl = [(hyp[0], hyp[1], 0.0)] if hyp[1] in ("stuck-out", "stuck-in", "stuck-tx", "stuck-ant") else []

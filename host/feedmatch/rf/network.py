@@ -22,9 +22,9 @@ import numpy as np
 from feedmatch.errors import InputError
 from feedmatch.jsonfile import check_keys, load_json, number, number_list
 from feedmatch.resources import DATA
+from feedmatch.seam import bank as seam
+from feedmatch.seam.bank import MAX_BITS, network_range, parse_side
 
-MAX_BITS = 12
-SHUNTS = ("tx", "ant")
 DEFAULT_NETWORK = DATA / "network_default.json"
 # Typical strays of a relay-switched bank, from memory (not a particular
 # datasheet): 1 pF across an open relay contact (small signal and power relays
@@ -87,19 +87,12 @@ class Network:
         return d
 
     def board_section(self) -> dict[str, Any]:
-        """The network as a board config carries it (the keys fmlogic.config
-        knows): the one conversion between the two files."""
-        from fmlogic.config import DEFAULTS
+        """The network as a board config carries it (feedmatch.seam.bank)."""
+        return seam.network_section(self)
 
-        d = self.to_json() | {"inductor_q": self.inductor_q or 0.0, "capacitor_q": self.capacitor_q or 0.0}
-        return {k: v for k, v in d.items() if k in DEFAULTS["network"]}
-
-    def firmware_bank(self):
-        """The same network as the firmware's lnet.Bank (nominal values)."""
-        from fmlogic import lnet
-
-        return lnet.Bank(self.z0_ohm, self.inductors_uh, self.capacitors_pf,
-                         self.inductor_q or 0.0, self.capacitor_q or 0.0)
+    def firmware_bank(self) -> seam.Bank:
+        """The same network as the firmware's lnet.Bank (nominal values; feedmatch.seam.bank)."""
+        return seam.bank_of_network(self)
 
 
 def _bits(n: int) -> np.ndarray:
@@ -165,11 +158,14 @@ _KEYS = {"z0_ohm", "inductors_uh", "capacitors_pf", "inductor_q", "capacitor_q",
 def network_from_dict(data: dict[str, Any], where: str = "network") -> Network:
     """Validate a network description; every error names the field."""
     check_keys(data, _KEYS, {"z0_ohm", "inductors_uh", "capacitors_pf"}, where)
-    z0 = number(data, "z0_ohm", where, positive=True)
+    # The firmware's validator's ranges (feedmatch.seam.bank): a file the host reads is one a board takes.
+    z0 = number(data, "z0_ohm", where, minimum=network_range("z0_ohm")[0], maximum=network_range("z0_ohm")[1])
     ind = number_list(data, "inductors_uh", where, max_len=MAX_BITS)
     cap = number_list(data, "capacitors_pf", where, max_len=MAX_BITS)
-    ql = number(data, "inductor_q", where, positive=True, optional=True)
-    qc = number(data, "capacitor_q", where, positive=True, optional=True)
+    ql = number(data, "inductor_q", where, optional=True, minimum=network_range("inductor_q")[0],
+                maximum=network_range("inductor_q")[1])
+    qc = number(data, "capacitor_q", where, optional=True, minimum=network_range("capacitor_q")[0],
+                maximum=network_range("capacitor_q")[1])
     sin = number(data, "stray_in_pf", where, minimum=0.0, optional=True, default=0.0)
     sout = number(data, "stray_out_pf", where, minimum=0.0, optional=True, default=0.0)
     name = data.get("name", "")
@@ -181,14 +177,6 @@ def network_from_dict(data: dict[str, Any], where: str = "network") -> Network:
 def load_network(path: str | Path | None = None) -> Network:
     p = Path(path) if path else DEFAULT_NETWORK
     return network_from_dict(load_json(p, "network"), f"network file {p}")
-
-
-def parse_shunt(s: str | int) -> int:
-    if s in (0, 1):
-        return int(s)
-    if s in SHUNTS:
-        return SHUNTS.index(s)
-    raise InputError(f"shunt must be 'tx' or 'ant', got {s!r}")
 
 
 def _cascade(zs, yc, zl, shunt_ant: bool, y_in=0.0, y_out=0.0):
@@ -244,14 +232,23 @@ def all_states_zin(net: Network, f_hz, z_load) -> np.ndarray:
 
 
 def lnet_zin(zs, yc, yl):
-    """The L-network's input impedance, the one formula (arrays broadcast):
+    """The L-network's input impedance, the host's one formula (arrays broadcast):
     series impedance zs, shunt admittance yc, load admittance yl (the output
     stray included).  Returns (capacitor on the transmitter side, capacitor on
-    the antenna side).  StateTable.zin is its in-place twin for speed and
-    _cascade adds the branch currents; tests hold all of them to this one."""
-    z_ant = zs + 1.0 / (yl + yc)
-    z_tx = 1.0 / (1.0 / (zs + 1.0 / yl) + yc)
-    return z_tx, z_ant
+    the antenna side).  The numpy twin of the firmware's fmlogic.lnet.z_in, held
+    to it by a test; StateTable.zin is its in-place twin for speed, _cascade adds
+    the branch currents, and tests hold both to this one."""
+    return lnet_zin_tx(zs, yc, yl), lnet_zin_ant(zs, yc, yl)
+
+
+def lnet_zin_tx(zs, yc, yl):
+    """lnet_zin with the capacitor across the transmitter side only."""
+    return 1.0 / (1.0 / (zs + 1.0 / yl) + yc)
+
+
+def lnet_zin_ant(zs, yc, yl):
+    """lnet_zin with the capacitor across the antenna side only."""
+    return zs + 1.0 / (yl + yc)
 
 
 def gamma(z_in, z0: float) -> np.ndarray:
@@ -295,7 +292,7 @@ def evaluate(net: Network, f_hz, z_load, l_code: int, c_code: int, shunt: int | 
     power_w is the forward (incident) power from a z0 source; the capacitor
     voltage and inductor current are RMS values at that power.
     """
-    sh = parse_shunt(shunt)
+    sh = parse_side(shunt)
     if not (0 <= l_code < (1 << net.n_l)):
         raise InputError(f"l_code must be 0..{(1 << net.n_l) - 1}, got {l_code}")
     if not (0 <= c_code < (1 << net.n_c)):

@@ -30,10 +30,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from fmlogic import lnet
 from scipy.optimize import least_squares
 
 from feedmatch.rf.network import Z0_OHM, swr_of
+from feedmatch.seam import bank as lnet  # the firmware's Bank and state model
 from feedmatch.sim.fitbox import Trace
 
 READING_SIGMA = 0.015        # |gamma| per reading: ADC noise and the model's own error (as the firmware's _sig)
@@ -515,9 +515,8 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
     memory bin tuned), the resonances between them, and what they rest on."""
     import json
 
-    from fmlogic.config import DEFAULTS, bank_from
-
     from feedmatch.logbook.store import open_existing
+    from feedmatch.seam.bank import BOARD_DEFAULTS, bank_or_none
 
     book = open_existing(db)
     rows = [r for r in book.tunes(since) if _until_ok(r["time"], until)]
@@ -538,12 +537,7 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
     most, main_bank, main_extras = 0, None, None
     for key, recs in by_board.items():
         sec = sections.get(key) or {}
-        bank = None
-        if isinstance(sec.get("network"), dict):
-            try:
-                bank = bank_from(sec)
-            except (KeyError, TypeError, ValueError):
-                bank = None
+        bank = bank_or_none(sec) if isinstance(sec.get("network"), dict) else None
         learned = bank is not None and isinstance(sec.get("correction"), dict)
         learned_any |= learned
         if bank is None:
@@ -557,7 +551,7 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         ests += solve_records(recs, bank, learned, leak, extras)
         if len(recs) > most:  # the board with the most tunes speaks for the box
             most, main_bank, main_extras = len(recs), bank, extras
-    pts = curve_points(ests, float(DEFAULTS["memory"]["bin_hz"]))
+    pts = curve_points(ests, float(BOARD_DEFAULTS["memory"]["bin_hz"]))
     times = [e.time for e in ests if e.time]
     return {"points": pts, "resonances": resonances(pts), "tunes": len(ests),
             "first": min(times) if times else None, "last": max(times) if times else None,
@@ -587,9 +581,8 @@ def antenna_health(points: list[CurvePoint]) -> dict[str, Any]:
     R and X, and the resonances the two halves locate, each change judged against the
     uncertainty of the difference (the errors both periods share cancel in it).
     Returns {"bands": {band: {"flag", "notes"}}, "notes": [antenna-wide notes]}."""
-    from fmlogic.config import DEFAULTS
-
     from feedmatch.rf import bands
+    from feedmatch.seam.bank import BOARD_DEFAULTS as DEFAULTS
 
     out: dict[str, dict[str, Any]] = {}
     splits = []

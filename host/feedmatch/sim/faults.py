@@ -28,12 +28,12 @@ class Faults:
 
     @property
     def masks(self) -> tuple[int, int, int, int, int]:
-        from fmlogic.selftest import masks
+        from feedmatch.seam.logic import masks
 
         return masks(self.items)
 
     def spec(self) -> str:
-        from fmlogic.selftest import fault_text
+        from feedmatch.seam.logic import fault_text
 
         return ",".join(fault_text(f) for f in self.items)
 
@@ -51,7 +51,7 @@ class Faults:
 
     def reach(self, l: int, c: int, sh: int) -> tuple[int, int, int]:
         """The state the damaged box is in when (l, c, sh) is commanded."""
-        from fmlogic.selftest import reach
+        from feedmatch.seam.logic import reach
 
         return reach(self.masks, (l, c, sh))
 
@@ -73,7 +73,7 @@ def parse_faults(text: str | None, net: Network) -> Faults:
     """--fault's value for a bank like net; one InputError line on bad input."""
     if not text:
         return NONE
-    from fmlogic.selftest import parse_faults as fw_parse
+    from feedmatch.seam.logic import parse_faults as fw_parse
 
     try:
         return Faults(tuple(fw_parse(text, net.n_l, net.n_c)))

@@ -28,7 +28,8 @@ from typing import Any
 import numpy as np
 
 from feedmatch.rf.detector import DetectorModel
-from feedmatch.rf.network import SHUNTS, Network, StateTable, oracle, swr_of
+from feedmatch.rf.network import Network, StateTable, oracle, swr_of
+from feedmatch.seam.bank import side_name
 from feedmatch.sim.faults import NONE as NO_FAULTS
 from feedmatch.sim.faults import Faults
 from feedmatch.sim.loads import Load
@@ -168,11 +169,11 @@ def score_one(load: Load, true_net: Network, nominal: Network, cfg: ScoreConfig,
 
     est_ms = n * (cfg.settle_ms + cfg.sample_ms) + board_ms(s)
     return {"freq_hz": load.freq_hz, "r_ohm": load.r_ohm, "x_ohm": load.x_ohm,
-            "l_code": l, "c_code": c, "shunt": SHUNTS[sh], "through": bool(through),
+            "l_code": l, "c_code": c, "shunt": side_name(sh), "through": bool(through),
             "outcome": outcome, "swr": _swr(true_g), "estimated_swr": est_swr,
             "swr_bound": controller.bound(s),
             "oracle_swr": _swr(oracle_g), "bypass_swr": _swr(bypass_g),
-            "oracle_state": [int(o_l), int(o_c), SHUNTS[int(o_sh)]],
+            "oracle_state": [int(o_l), int(o_c), side_name(int(o_sh))],
             "hint": bool(hint), "measurements": n, "relay_ops": ops, "hot_switches": hot,
             "tune_ms": round(est_ms, 1), "board_compute_ms": round(board_ms(s), 1),
             "host_compute_ms": round(compute_s * 1e3, 3),

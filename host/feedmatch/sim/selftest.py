@@ -34,9 +34,7 @@ def read_step(true_net: Network, det: DetectorModel, faults: Faults, freq_hz: fl
               tune_w: float = 10.0, bypass: bool = False) -> tuple[list[tuple[int, int, int]], list[float]]:
     """What one firmware `selftest` step returns on this box: its commanded states
     and |gamma| of each, in thousandths as the frame carries them."""
-    from fmlogic.selftest import plan
-    from fmlogic.swr import reading_gamma
-
+    from feedmatch.seam.logic import plan, reading_gamma
     from feedmatch.sim.scorer import _table_for
 
     tg = _table_for(faults.apply_net(true_net)).gamma(freq_hz, z_load)

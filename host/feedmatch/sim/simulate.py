@@ -7,7 +7,8 @@ from typing import Any
 import numpy as np
 
 from feedmatch.rf import bands
-from feedmatch.rf.network import SHUNTS, Network, best_state, evaluate
+from feedmatch.rf.network import Network, best_state, evaluate
+from feedmatch.seam.bank import side_name
 
 
 def point(net: Network, f_hz: float, z_load: complex, l_code: int, c_code: int, shunt: int,
@@ -17,7 +18,7 @@ def point(net: Network, f_hz: float, z_load: complex, l_code: int, c_code: int, 
     out: dict[str, Any] = {
         "freq_hz": float(f_hz), "band": bands.band_of(f_hz),
         "z_load_ohm": [float(z_load.real), float(z_load.imag)],
-        "l_code": int(l_code), "c_code": int(c_code), "shunt": SHUNTS[shunt],
+        "l_code": int(l_code), "c_code": int(c_code), "shunt": side_name(shunt),
         "l_uh": float(net.l_table_uh()[l_code]), "c_pf": float(net.c_table_pf()[c_code]),
         "z_in_ohm": [zin.real, zin.imag], "gamma_mag": float(e["gamma_mag"]),
         "swr": float(e["swr"]), "return_loss_db": float(e["return_loss_db"]),

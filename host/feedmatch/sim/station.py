@@ -208,18 +208,18 @@ def station_from_dict(d: dict, where: str, base: Path) -> Station:
     board = d.get("board", {})
     if not isinstance(board, dict):
         raise InputError(f"{where}: field 'board' must be an object (a board config)")
-    from fmlogic import config as fcfg
+    from feedmatch.seam.bank import section_of, validate
 
     cfg = dict(board)
     cfg.setdefault("board", "virtual")
-    cfg["network"] = ({k: v for k, v in board["network"].items() if k in fcfg.DEFAULTS["network"]}
-                      if isinstance(board.get("network"), dict) else net.board_section())
+    cfg["network"] = (section_of(board["network"]) if isinstance(board.get("network"), dict)
+                      else net.board_section())
     if "detector" not in cfg:
         # As `feedmatch calibrate` would set it up on this station's box.
         pts = [list(p) for p in det.calibration_points()]
         cfg["detector"] = {"fwd": pts, "ref": pts, "floor_counts": 2.0,
                            "leak": round(det.calibrated_leak(), 4)}
-    errs = fcfg.validate(cfg)
+    errs = validate(cfg)
     if errs:
         raise InputError(f"{where}: board: {errs[0]}")
     seed = d.get("seed", 1)

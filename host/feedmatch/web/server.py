@@ -20,8 +20,9 @@ from typing import Any
 from aiohttp import web
 
 from feedmatch.board.hub import ensure_hub
-from feedmatch.board.link import BoardLink, state_values
+from feedmatch.board.link import BoardLink
 from feedmatch.errors import BoardRefused, InputError, LinkError
+from feedmatch.seam.bank import state_values
 
 STATIC = Path(__file__).parent / "static"
 TOKEN_HEADER = "X-Feedmatch-Token"
