@@ -17,26 +17,49 @@ import math
 import numpy as np
 import pytest
 from feedmatch.rf.antenna import FixedLoad
-from feedmatch.rf.lmatch import l_network
 from feedmatch.rf.network import Network, evaluate, load_network
-from feedmatch.sim.design import DesignSpec, Loads, best_gamma, design, quick_best_gamma
+from feedmatch.sim.design import DesignSpec, Loads, best_gamma, closed_form_match, design, quick_best_gamma
+from fmlogic import lnet
 
 from .conftest import run_cli
 
 
+def _firmware_match(z: complex, f_hz: float, z0: float, shunt: int) -> tuple[float, float] | None:
+    """The firmware's closed-form L match (fmlogic.lnet.analytic_match, the source of truth): (uH, pF)."""
+    return lnet.analytic_match(lnet.Bank(z0, [1.0], [1.0]), f_hz / 1e6, z, shunt)
+
+
+def _exact_solutions(z: complex, f_hz: float, z0: float = 50.0) -> list[tuple[float, float, int]]:
+    """Every root of the host's closed form (sim.design.closed_form_match) that is a real
+    match: (uH, pF, shunt) with both values positive and the lossless network at those
+    values matching exactly in the project's model."""
+    ls, cs = closed_form_match(np.array([f_hz]), np.array([z]), z0)
+    out = []
+    for k, (l_uh, c_pf) in enumerate(zip(ls[0], cs[0])):
+        sh = lnet.SHUNT_ANT if k < 2 else lnet.SHUNT_TX
+        if not (np.isfinite(l_uh) and np.isfinite(c_pf) and l_uh > 0 and c_pf > 0):
+            continue
+        g = float(evaluate(Network(z0, [l_uh], [c_pf]), f_hz, z, 1, 1, sh)["gamma_mag"])
+        if g < 1e-6:
+            out.append((float(l_uh), float(c_pf), sh))
+    return out
+
+
 def test_bowick_worked_example_is_reproduced():
     # 100 ohm source, 1000 ohm load, 100 MHz: Q = 3, Xs = 300 ohm, Xp = 333 ohm (Bowick ch. 4).
-    sols = l_network(complex(1000, 0), 100e6, z0_ohm=100.0)
-    assert len(sols) == 1 and sols[0].shunt == "ant"   # the shunt arm across the high resistance
-    s = sols[0]
-    assert s.xs_ohm == pytest.approx(300.0, rel=1e-9)
-    assert 1 / s.bp_s == pytest.approx(1000 / 3, rel=1e-9)
+    w = 2 * math.pi * 100e6
+    z = complex(1000, 0)
+    assert _firmware_match(z, 100e6, 100.0, lnet.SHUNT_TX) is None  # no match with C across the low side
+    l_uh, c_pf = _firmware_match(z, 100e6, 100.0, lnet.SHUNT_ANT)   # the shunt arm across the high resistance
+    assert w * l_uh * 1e-6 == pytest.approx(300.0, rel=1e-9)
+    assert 1 / (w * c_pf * 1e-12) == pytest.approx(1000 / 3, rel=1e-9)
     # The low-pass elements: L = Xs / w = 477 nH, C = 1 / (w Xp) = 4.77 pF.
-    assert s.l_uh == pytest.approx(300 / (2 * math.pi * 100e6) * 1e6, rel=1e-9)
-    assert s.c_pf == pytest.approx(4.7746, rel=1e-4)
+    assert c_pf == pytest.approx(4.7746, rel=1e-4)
     # The project's exact network model with exactly those values matches perfectly.
-    net = Network(100.0, [s.l_uh], [s.c_pf])
-    assert float(evaluate(net, 100e6, complex(1000, 0), 1, 1, "ant")["swr"]) == pytest.approx(1.0, abs=1e-9)
+    net = Network(100.0, [l_uh], [c_pf])
+    assert float(evaluate(net, 100e6, z, 1, 1, "ant")["swr"]) == pytest.approx(1.0, abs=1e-9)
+    # The host's vectorised twin finds the same, and only it.
+    assert _exact_solutions(z, 100e6, 100.0) == [pytest.approx((l_uh, c_pf, lnet.SHUNT_ANT), rel=1e-9)]
 
 
 @pytest.mark.parametrize("r_low,r_high", [(10.0, 50.0), (50.0, 200.0), (12.5, 50.0)])
@@ -44,11 +67,30 @@ def test_resistive_loads_follow_the_q_equations(r_low, r_high):
     # Bowick ch. 4: Q = sqrt(Rhigh/Rlow - 1), series X = Q Rlow, shunt X = Rhigh / Q.
     q = math.sqrt(r_high / r_low - 1)
     load = r_low if r_high == 50.0 else r_high
-    sols = l_network(complex(load, 0), 14e6, 50.0)
-    side = "tx" if load < 50 else "ant"
-    s = [x for x in sols if x.shunt == side][0]
-    assert s.xs_ohm == pytest.approx(q * r_low, rel=1e-9)
-    assert 1 / s.bp_s == pytest.approx(r_high / q, rel=1e-9)
+    w = 2 * math.pi * 14e6
+    l_uh, c_pf = _firmware_match(complex(load, 0), 14e6, 50.0, lnet.SHUNT_TX if load < 50 else lnet.SHUNT_ANT)
+    assert w * l_uh * 1e-6 == pytest.approx(q * r_low, rel=1e-9)
+    assert 1 / (w * c_pf * 1e-12) == pytest.approx(r_high / q, rel=1e-9)
+
+
+def test_the_host_closed_form_is_the_firmwares():
+    # design's vectorised closed form (every root, losses and strays folded in) against the
+    # firmware's analytic_match (one root per side) on lossless loads across HF: every match
+    # the firmware finds is one of the host's exact roots on the same side.
+    rng = np.random.default_rng(29)
+    found = 0
+    for _ in range(300):
+        f = float(rng.uniform(1.8e6, 30e6))
+        z = complex(float(rng.uniform(2, 600)), float(rng.uniform(-900, 900)))
+        host = _exact_solutions(z, f)
+        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
+            fw = _firmware_match(z, f, 50.0, sh)
+            if fw is None or min(fw) <= 0:
+                continue
+            found += 1
+            assert any(s == sh and math.isclose(lh, fw[0], rel_tol=1e-9) and math.isclose(ch, fw[1], rel_tol=1e-9)
+                       for lh, ch, s in host), (f, z, sh, fw, host)
+    assert found > 150
 
 
 def test_the_quick_evaluation_never_beats_the_exhaustive_one_and_mostly_agrees():
@@ -87,8 +129,8 @@ def test_designed_banks_hold_what_the_closed_form_needs(z):
     assert covered.mean() >= 0.6, "a 7+7 bank covers most of HF for these loads"
     for f, ok in zip(res["loads"].f_hz, covered):
         if ok:
-            need = l_network(z, float(f))
-            assert any(s.l_uh <= 1.15 * lmax and s.c_pf <= 1.15 * cmax for s in need), (f, need, lmax, cmax)
+            need = _exact_solutions(z, float(f))
+            assert any(l_uh <= 1.15 * lmax and c_pf <= 1.15 * cmax for l_uh, c_pf, _sh in need), (f, need, lmax, cmax)
 
 
 def test_ratings_match_the_power_balance():

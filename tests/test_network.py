@@ -272,3 +272,27 @@ def test_every_cascade_gives_the_same_answer():
     gm = np.abs((full - 50) / (full + 50))
     l, c, sh, gbest = oracle(gm)
     assert gbest == gm.min() and gm[sh, l, c] == gbest
+
+
+def test_the_firmwares_state_model_is_one_formula():
+    # The firmware writes the cascade three ways for speed on the board (z_in, the
+    # bilinear map the search fits, the inverse the memory's presets use); each is the
+    # same network (Pozar, Microwave Engineering, 4th ed., sec. 4.3: a two-port's input
+    # reflection is a Moebius transform of its load's), and the host's numpy twin
+    # (all_states_zin, test_firmware_scalar_model_agrees_with_numpy) is held to z_in.
+    from fmlogic import lnet
+
+    bank = NET.firmware_bank()
+    rng = random.Random(29)
+    for _ in range(200):
+        f = rng.uniform(1.8, 30.0)
+        zl = complex(rng.uniform(1, 500), rng.uniform(-800, 800))
+        l, c, sh = rng.randrange(128), rng.randrange(128), rng.randrange(2)
+        zin = lnet.z_in(bank, f, zl, l, c, sh)
+        g_in = (zin - bank.z0) / (zin + bank.z0)
+        a, b, cc = lnet.mobius(bank, f, l, c, sh)
+        gl = (zl - bank.z0) / (zl + bank.z0)
+        assert abs((a * gl + b) / (cc * gl + 1) - g_in) < 1e-9
+        zm = lnet.load_matched_by(bank, f, l, c, sh)
+        if zm is not None and zm.real > 0:
+            assert abs(lnet.z_in(bank, f, zm, l, c, sh) - bank.z0) < 1e-6 * abs(zm) + 1e-9

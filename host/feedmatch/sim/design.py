@@ -30,7 +30,18 @@ import numpy as np
 
 from feedmatch.errors import InputError
 from feedmatch.rf import bands
-from feedmatch.rf.network import Network, StateTable, evaluate, series_table, shunt_table, swr_of
+from feedmatch.rf.network import (
+    Network,
+    StateTable,
+    evaluate,
+    gamma,
+    lnet_zin_ant,
+    lnet_zin_tx,
+    series_table,
+    shunt_table,
+    swr_of,
+)
+from feedmatch.seam.logic import gamma_from_swr
 
 # Search bounds of the optimiser (the smallest element and the weighting ratio).
 L0_UH = (0.02, 2.0)
@@ -149,25 +160,25 @@ def best_gamma(net: Network, loads: Loads) -> np.ndarray:
 NEIGHBOURS = 3  # codes each side of the closed-form values that the quick evaluation tries
 
 
-def quick_best_gamma(net: Network, f_hz: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """|gamma| of the best state near the closed-form match, for many loads at once.
+def closed_form_match(f_hz: np.ndarray, z: np.ndarray, z0: float, ql: float = np.inf, stray_in_pf: float = 0.0,
+                      stray_out_pf: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """The L-network's closed-form match for many loads at once: the numpy twin of the
+    firmware's fmlogic.lnet.analytic_match (a test holds them together), with every root.
 
-    The closed form (feedmatch.rf.lmatch, vectorised here) gives up to four exact
-    (L, C) solutions per load; the NEIGHBOURS codes on each side of each value
-    are evaluated with the full model of the box (losses, strays), 144 states
-    instead of every one.  The optimiser uses it; the final scores use the
-    exhaustive best_gamma, and a test holds the two together."""
+    With the capacitor across the load ("ant", Y = G + jB) the shunt arm brings the
+    susceptance to B' with G / (G^2 + B'^2) = z0; with it across the source ("tx") the
+    series arm brings the reactance to X' with R / (R^2 + X'^2) = 1/z0 (Bowick, "RF
+    Circuit Design", 2nd ed., ch. 4; the ARRL Handbook's L-network equations).  Returns
+    (l_uh, c_pf) of shape (n, 4): columns 0-1 the two roots with the capacitor across the
+    antenna side, 2-3 across the transmitter side (values may be negative or not finite
+    where that root does not exist).
+    The inductor's loss resistance (omega L / ql) and the strays go in by a few
+    fixed-point steps."""
     f = np.asarray(f_hz, dtype=float)
     zl = np.asarray(z, dtype=complex)
     w = 2 * np.pi * f
-    z0 = net.z0_ohm
-    # The inductor's loss resistance (omega L / Q) moves the match a long way on
-    # low-resistance loads (a short vertical on 40 m: about 20 % in C), and the
-    # output stray adds to the load: both go into the closed form, by a few
-    # fixed-point steps, so the neighbourhood is centred where the box matches.
-    ql = float(np.mean(net.inductor_q_each)) if net.inductor_q_each else (net.inductor_q or np.inf)
-    y_out = 1j * w * net.stray_out_pf * 1e-12
-    y_in = 1j * w * net.stray_in_pf * 1e-12
+    y_out = 1j * w * stray_out_pf * 1e-12
+    y_in = 1j * w * stray_in_pf * 1e-12
     with np.errstate(divide="ignore", invalid="ignore"):
         y = 1.0 / zl
         ya = y + y_out
@@ -188,8 +199,31 @@ def quick_best_gamma(net: Network, f_hz: np.ndarray, z: np.ndarray) -> np.ndarra
         c_ant = (bt - b[:, None]) / w[:, None]
         l_tx = xs_t / w[:, None]
         c_tx = (xt / (rt ** 2 + xt ** 2) - y_in.imag[:, None]) / w[:, None]
-    l_req = np.concatenate([l_ant, l_tx], axis=1) * 1e6          # (n, 4) uH
-    c_req = np.concatenate([c_ant, c_tx], axis=1) * 1e12         # (n, 4) pF
+    return (np.concatenate([l_ant, l_tx], axis=1) * 1e6,    # (n, 4) uH
+            np.concatenate([c_ant, c_tx], axis=1) * 1e12)   # (n, 4) pF
+
+
+def quick_best_gamma(net: Network, f_hz: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """|gamma| of the best state near the closed-form match, for many loads at once.
+
+    The closed form (closed_form_match) gives up to four exact (L, C) solutions per
+    load; the NEIGHBOURS codes on each side of each value are evaluated with the full
+    model of the box (losses, strays), 144 states instead of every one.  The optimiser
+    uses it; the final scores use the exhaustive best_gamma, and a test holds the two
+    together."""
+    f = np.asarray(f_hz, dtype=float)
+    zl = np.asarray(z, dtype=complex)
+    z0 = net.z0_ohm
+    # The inductor's loss resistance (omega L / Q) moves the match a long way on
+    # low-resistance loads (a short vertical on 40 m: about 20 % in C), and the
+    # output stray adds to the load: both go into the closed form, so the
+    # neighbourhood is centred where the box matches.
+    ql = float(np.mean(net.inductor_q_each)) if net.inductor_q_each else (net.inductor_q or np.inf)
+    l_req, c_req = closed_form_match(f, zl, z0, ql, net.stray_in_pf, net.stray_out_pf)
+    w = 2 * np.pi * f
+    y_in = 1j * w * net.stray_in_pf * 1e-12
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ya = 1.0 / zl + 1j * w * net.stray_out_pf * 1e-12   # the load with the output stray
     l_req = np.where(np.isfinite(l_req), l_req, 0.0)
     c_req = np.where(np.isfinite(c_req), c_req, 0.0)
 
@@ -208,13 +242,10 @@ def quick_best_gamma(net: Network, f_hz: np.ndarray, z: np.ndarray) -> np.ndarra
     yl = ya[:, None, None, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         # Each slot only in its own arrangement: 0-1 capacitor across the load, 2-3 across the source.
-        z_ant = zs[:, :2] + 1.0 / (yl + yc[:, :2])
-        z_tx = 1.0 / (1.0 / (zs[:, 2:] + 1.0 / yl) + yc[:, 2:])
-        zin = np.concatenate([z_ant, z_tx], axis=1)
+        zin = np.concatenate([lnet_zin_ant(zs[:, :2], yc[:, :2], yl), lnet_zin_tx(zs[:, 2:], yc[:, 2:], yl)], axis=1)
         if net.stray_in_pf:
             zin = 1.0 / (1.0 / zin + y_in[:, None, None, None])
-        gm = np.abs((zin - z0) / (zin + z0))
-    gm = np.where(np.isfinite(gm), gm, 1.0)
+        gm = np.abs(gamma(zin, z0))
     return gm.reshape(n, -1).min(axis=1)
 
 
@@ -229,16 +260,12 @@ def _box(net: Network, spec: DesignSpec, k: int) -> Network:
     return draw_box(net, spec.seed * 7919 + k, spec.tolerance, strays).network
 
 
-def _gamma_of(swr: float) -> float:
-    return (swr - 1.0) / (swr + 1.0)
-
-
 def _quick_cover(net: Network, spec: DesignSpec, loads: Loads, soft: bool) -> np.ndarray:
     """Per load, the share of drawn boxes (spec.boxes of them, seeded) whose best
     state near the closed form reaches the design SWR for every variant of the
     load; soft=True makes the step a steep logistic so an optimiser sees slopes."""
 
-    gd = _gamma_of(spec.design_swr)
+    gd = gamma_from_swr(spec.design_swr)
     n, v = loads.z.shape
     # Only the distinct loads: a variant equal to the model's own load (a band
     # where the model is certain) is not evaluated twice.
@@ -297,7 +324,7 @@ def score_bank(net: Network, spec: DesignSpec, loads: Loads, power_w: float,
     """Per band: covered share on drawn boxes and on the nominal bank, worst best
     SWR, network loss at the matched state, and the worst stresses at power_w."""
 
-    gd = _gamma_of(spec.design_swr)
+    gd = gamma_from_swr(spec.design_swr)
     nom = best_gamma(net, loads)
     per_box = [best_gamma(_box(net, spec, k), loads) for k in range(spec.boxes)]
     ok_box = np.stack([(g.max(axis=1) <= gd) for g in per_box]) if per_box else (nom.max(axis=1) <= gd)[None]
@@ -476,7 +503,7 @@ def design(antenna: Any, spec: DesignSpec, current: Network,
         prop, s_prop = replace(cur, name=cur.name or "current bank"), s_cur
         coil_uh = 0.0
     # Loss compared like with like: over the frequencies both banks match.
-    gd = _gamma_of(spec.design_swr)
+    gd = gamma_from_swr(spec.design_swr)
     both = (s_prop["best_gamma_nominal"] <= gd) & (s_cur["best_gamma_nominal"] <= gd)
     for b, (rp, rc) in enumerate(zip(s_prop["bands"], s_cur["bands"])):
         m = (fine.band == b) & both
