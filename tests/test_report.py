@@ -246,3 +246,28 @@ def test_wrote_lines_go_to_stdout_and_to_stderr_under_json(tmp_path):
     assert r.returncode == 0 and json.loads(r.stdout)["tunes"] == 1
     assert f"wrote {tmp_path / 'u.csv'}" in r.stderr.splitlines()
     assert f"wrote {tmp_path / 'states_by_band.png'}" in r.stderr.splitlines()
+
+
+@pytest.mark.parametrize("bin_hz,flagged", [(None, True), (10000, False)])
+def test_health_compares_tunes_within_the_boards_own_memory_bins(tmp_path, bin_hz, flagged):
+    # 7.151 and 7.161 MHz share a bin of the shipped 25 kHz memory (7.150-7.175 MHz) but
+    # not of a board set to 10 kHz bins (fmlogic.memory numbers bins from 0 Hz: arithmetic).
+    # Four steady tunes on each: told apart, nothing moved; lumped together, the state "moved".
+    from feedmatch.logbook.report import make_report
+    from feedmatch.logbook.store import Logbook
+
+    db = tmp_path / "station.sqlite"
+    book = Logbook(db)
+    book.start_session("hollow-oak-1", "/dev/null")
+    sections = {"network": {"z0_ohm": 50.0, "inductors_uh": [0.1 * 2 ** k for k in range(7)],
+                            "capacitors_pf": [10.0 * 2 ** k for k in range(7)]}}
+    if bin_hz:
+        sections["memory"] = {"bin_hz": bin_hz}
+    book.set_bank("hollow-oak-1", sections)
+    for i in range(8):
+        f, l_code = (7.151e6, 101) if i < 4 else (7.161e6, 111)
+        book.add({"board_id": "hollow-oak-1", "seq": i + 1, "freq_hz": f, "swr_before": 3.0,
+                  "swr_after": 1.2, "outcome": "locked", "n": 1, "ms": 6, "after": [l_code, 91, 0, 0]})
+    book.close()
+    h = make_report(str(db))["bands"][0]["health"]
+    assert h["flag"] is flagged, h

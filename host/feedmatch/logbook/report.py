@@ -12,7 +12,7 @@ from typing import Any
 from feedmatch.logbook.store import open_existing
 from feedmatch.rf import bands
 from feedmatch.seam.bank import BOARD_DEFAULTS, bank_or_none, code_value, load_matched_by, side_name, state_values
-from feedmatch.seam.logic import LOCKED
+from feedmatch.seam.logic import LOCKED, bin_of
 
 # A band is flagged when its recent tunes differ from its own earlier ones by
 # more than these (common practice for trend alarms: a fixed margin over a
@@ -61,7 +61,20 @@ def _banks(sections: dict[str, dict[str, Any]]) -> dict[str, Any]:
     return out
 
 
-def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str, Any]]:
+def _bin_widths(sections: dict[str, dict[str, Any]]) -> dict[str, float]:
+    """{board key: the memory bin width (Hz) the board reported}, where the logbook has it."""
+    out = {}
+    for key, m in sections.items():
+        w = (m.get("memory") or {}).get("bin_hz") if isinstance(m, dict) else None
+        if isinstance(w, (int, float)) and not isinstance(w, bool) and w > 0:
+            out[key] = float(w)
+    return out
+
+
+def band_table(rows: list, banks: dict[str, Any] | None = None,
+               bin_widths: dict[str, float] | None = None) -> list[dict[str, Any]]:
+    """Per band: tunes, success, medians, the usual state and the health check; banks and
+    bin_widths ({board key: ...}) give the board's element values and memory bins."""
     by = defaultdict(list)
     for r in rows:
         by[r["band"]].append(r)
@@ -75,7 +88,9 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
         tuned = [r for r in rs if r["outcome"] not in ("refused",)]
         states = Counter((r["after_l"], r["after_c"], r["after_shunt"]) for r in ok)
         top = states.most_common(1)[0][0] if states else None
-        bank = banks.get(ok[-1]["board_id"]) if banks and ok else None
+        board = _get(ok[-1], "board_id") if ok else None  # the board that tuned the band last
+        bank = banks.get(board) if banks else None
+        bin_hz = (bin_widths or {}).get(board, BOARD_DEFAULTS["memory"]["bin_hz"])
         v = state_values(bank, top[0], top[1]) if top else None
         vals = {"l_uh": round(v[0], 4), "c_pf": round(v[1], 2)} if v else None
         out.append({
@@ -90,7 +105,7 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
             "presets": len(presets),
             "presets_confirmed": sum(1 for r in rs if _get(r, "preset") and r["outcome"] == LOCKED
                                      and r["measurements"] == 1),
-            "health": health(ok, bank=bank),
+            "health": health(ok, bin_hz=bin_hz, bank=bank),
             # Tunes the readings could not prove (the coupler's bounds): how many,
             # and the median of the highest true SWR each one allows.
             "best_effort": sum(1 for r in rs if r["outcome"] == "best-effort"),
@@ -103,15 +118,16 @@ def band_table(rows: list, banks: dict[str, Any] | None = None) -> list[dict[str
 def health(ok: list, bin_hz: float = BOARD_DEFAULTS["memory"]["bin_hz"], bank: Any = None) -> dict[str, Any]:
     """Compare a band's recent matched tunes with its own baseline (its earlier ones).
 
-    Like is compared with like: tunes are grouped by frequency bin, and in each bin
-    with enough tunes the later half is compared with the earlier half.  With the
+    Like is compared with like: tunes are grouped by the board's memory bins (bin_hz,
+    fmlogic.memory's numbering), and in each bin with enough tunes the later half is
+    compared with the earlier half.  With the
     board's bank (a firmware Bank) a moved state is told in uH and pF.
     """
     if len(ok) < MIN_TUNES_FOR_HEALTH:
         return {"flag": False, "note": "too few tunes for a baseline"}
     bins = defaultdict(list)
     for r in ok:
-        bins[int(r["freq_hz"] // bin_hz)].append(r)
+        bins[bin_of(r["freq_hz"], bin_hz)].append(r)
     notes = []
     compared = 0
     for b in sorted(bins):
@@ -145,10 +161,11 @@ def health(ok: list, bin_hz: float = BOARD_DEFAULTS["memory"]["bin_hz"], bank: A
 def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     book = open_existing(db)
     rows = book.tunes(since)
-    banks = _banks(book.banks())
+    sections = book.banks()
     book.close()
+    banks = _banks(sections)
     n = sum(1 for r in rows if r["outcome"] != PRESET)
-    return {"tunes": n, "bands": band_table(rows, banks), "rows": rows, "banks": banks,
+    return {"tunes": n, "bands": band_table(rows, banks, _bin_widths(sections)), "rows": rows, "banks": banks,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 

@@ -3,19 +3,32 @@
 Tune outcomes (fmlogic.controller), the strategy names (fmlogic.search), the self-test's
 plan, stuck-element masks and fault words (fmlogic.selftest), the detector calibration,
 meter and reading checks (fmlogic.swr), the coupler's gain tolerance (fmlogic.coupler) and
-the record store's newest sequence number (fmlogic.memory).  The host never re-derives
+the record store's newest sequence number and its frequency bins (fmlogic.memory).  The host never re-derives
 these: a firmware change is seen here and nowhere else.
 """
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 from fmlogic.controller import BEST, LOCKED, THROUGH
 from fmlogic.coupler import GAIN_TOL_DB
-from fmlogic.memory import highest_seq
+from fmlogic.memory import Memory, highest_seq
 from fmlogic.search import NAMES as STRATEGY_NAMES
 from fmlogic.selftest import FAILED_KINDS, fault_text, masks, parse_faults, plan, reach
 from fmlogic.swr import Calibration, Meter, gamma_from_swr, reading_gamma
 
-__all__ = ["BEST", "FAILED_KINDS", "GAIN_TOL_DB", "LOCKED", "STRATEGY_NAMES", "THROUGH", "Calibration", "Meter",
-           "fault_text", "gamma_from_swr", "highest_seq", "masks", "parse_faults", "plan", "reach",
+__all__ = ["BEST", "Calibration", "FAILED_KINDS", "GAIN_TOL_DB", "LOCKED", "Meter", "STRATEGY_NAMES", "THROUGH",
+           "bin_of", "fault_text", "gamma_from_swr", "highest_seq", "masks", "parse_faults", "plan", "reach",
            "reading_gamma"]
+
+
+@lru_cache(maxsize=8)
+def _memory(bin_hz: float) -> Memory:
+    return Memory(None, bin_hz, 1)  # held in RAM, one entry: only its bins are used
+
+
+def bin_of(freq_hz: float, bin_hz: float) -> int:
+    """The memory bin a frequency (Hz) falls in, as a board with bins of bin_hz (Hz) numbers
+    it (fmlogic.memory.Memory.bin_of): tunes in one bin share one stored state."""
+    return _memory(float(bin_hz)).bin_of(freq_hz)
