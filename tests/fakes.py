@@ -8,13 +8,13 @@ from feedmatch.rf.antenna import Monopole
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import load_network
 from feedmatch.seam.bank import DEFAULT_SECTION, ELEMENT_KEYS
+from feedmatch.sim.hardware import SimulatedHardware
 from feedmatch.sim.inproc import InProcessBoard as FakeBoard  # noqa: F401 (the tests' name)
-from feedmatch.sim.station import StationModel
 
 
 def make_model(antenna=None, ideal=False, hot=25.0, seed=3):
     net = load_network()
-    return StationModel(net, antenna or Monopole(4.5, 0.012, 6.0), DetectorModel(ideal=ideal), hot, seed)
+    return SimulatedHardware(net, antenna or Monopole(4.5, 0.012, 6.0), DetectorModel(ideal=ideal), hot, seed)
 
 
 def board_config(**over):

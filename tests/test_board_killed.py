@@ -15,7 +15,7 @@ from feedmatch.board.link import BoardLink
 from feedmatch.logbook.logger import Logger
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 
 def _rows(db: str) -> list[sqlite3.Row]:
@@ -29,7 +29,7 @@ def _rows(db: str) -> list[sqlite3.Row]:
 
 def test_a_board_killed_mid_tune_leaves_one_reset_record_in_the_logbook(tmp_path):
     st = load_station()
-    vs = VirtualStation(st, tmp_path / "flash")
+    vs = VirtualBoard(st, tmp_path / "flash")
     pty = vs.start()
     db = str(tmp_path / "station.sqlite")
     lg = Logger(pty, db)
@@ -77,12 +77,12 @@ def test_a_board_killed_mid_tune_leaves_one_reset_record_in_the_logbook(tmp_path
     resets = [r for r in rows if r["outcome"] == "reset"]
     assert len(resets) == 1 and resets[0]["reason"] == "board reset during tune"
     assert abs(resets[0]["freq_hz"] - f_hz) < 0.01 * f_hz  # the tune that was cut, by its frequency
-    assert vs.resets == 1 and vs.model.violations == []
+    assert vs.resets == 1 and vs.hardware.violations == []
 
 
 def test_the_sequence_number_wraps_at_65535_directly_and_through_the_hub(tmp_path):
     # docs/protocol.md: SEQ is 1..65535 for requests (0 is the events'); after 65535 comes 1.
-    vs = VirtualStation(load_station(), tmp_path / "flash")
+    vs = VirtualBoard(load_station(), tmp_path / "flash")
     pty = vs.start()
     hub = None
     try:

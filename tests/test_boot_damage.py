@@ -213,13 +213,13 @@ def test_any_exception_in_the_start_is_a_safe_mode_naming_the_file(tmp_path, mon
         raise exc
 
     monkeypatch.setattr(memory.Records, "load", fail)
-    b.m.set(3, 4, 1, 0)
+    b.hardware.set(3, 4, 1, 0)
     x = boot.start(d, lambda cfg: b, run=False)
     assert isinstance(x, boot.SafeMode) and x.file == "rec/"
     n = b.sets
     x.step()
     assert b.sets == n + 1  # 10 W is below the hot-switch limit of 25 W: through at once
-    assert x.through and b.m.relays[3] == 1
+    assert x.through and b.hardware.relays[3] == 1
     assert "rec/" in x.why and (tmp_path / "fault.txt").read_text().startswith("boot 1")
     from fmlogic import link
 

@@ -25,11 +25,11 @@ def _cal_args(pty, cfgp):
 def test_calibration_against_the_virtual_station(tmp_path):
     from feedmatch.cli.calibrate import run_calibrate
     from feedmatch.sim.station import load_station
-    from feedmatch.sim.virtual import VirtualStation
+    from feedmatch.sim.virtual import VirtualBoard
 
     st = load_station()
     st.antenna = FixedLoad(50.0, 0.0)  # the dummy load
-    vs = VirtualStation(st, tmp_path / "flash")
+    vs = VirtualBoard(st, tmp_path / "flash")
     pty = vs.start()
     cfgp = tmp_path / "cfg.json"
     cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())
@@ -53,7 +53,7 @@ def test_calibration_against_the_virtual_station(tmp_path):
         vs.stop()
     # Calibration runs in bypass and puts the box back in line once the carrier is gone.
     assert relays[3] == 0 and "the box is back in line" in out.getvalue()
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []
     assert (tmp_path / "cfg.json.bak").read_text() == old
     cfg = json.loads(cfgp.read_text())
     from fmlogic.swr import Calibration
@@ -77,13 +77,13 @@ def test_reflected_pass_calibrates_a_mismatched_reflected_detector(tmp_path):
 
     from feedmatch.cli.calibrate import run_calibrate
     from feedmatch.sim.station import load_station
-    from feedmatch.sim.virtual import VirtualStation
+    from feedmatch.sim.virtual import VirtualBoard
     from fmlogic.swr import Calibration
 
     st = load_station()
     st.antenna = FixedLoad(50.0, 0.0)
     st.detector = DetectorModel(ref_gain_db=1.5)
-    vs = VirtualStation(st, tmp_path / "flash")
+    vs = VirtualBoard(st, tmp_path / "flash")
     pty = vs.start()
     cfgp = tmp_path / "cfg.json"
     cfgp.write_text((deploy.CONFIGS / "rp2040.json").read_text())

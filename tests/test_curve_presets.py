@@ -37,7 +37,7 @@ def _records(ctl, since):
 
 def test_a_computed_state_is_preset_cold_and_confirmed_by_one_reading(tmp_path):
     st = load_station()
-    model = st.model()
+    model = st.hardware()
     b = InProcessBoard(model)
     ctl = Controller(b, st.board_config, str(tmp_path))
     f = 21.3e6
@@ -64,7 +64,7 @@ def test_a_computed_state_is_preset_cold_and_confirmed_by_one_reading(tmp_path):
 
 def test_a_bad_computed_state_moves_nothing(tmp_path):
     st = load_station()
-    model = st.model()
+    model = st.hardware()
     b = InProcessBoard(model)
     ctl = Controller(b, st.board_config, str(tmp_path))
     sets = b.sets

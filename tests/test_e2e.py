@@ -17,7 +17,7 @@ import pytest
 import serial
 from feedmatch.logbook.logger import Logger
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 from .conftest import BIN, logbook_rows, run_cli
 
@@ -79,7 +79,7 @@ def test_demo_report_figures_match_the_records(demo):
 
 def _station(tmp_path, **kw):
     st = load_station()
-    return VirtualStation(st, tmp_path / "flash", **kw), st
+    return VirtualBoard(st, tmp_path / "flash", **kw), st
 
 
 def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
@@ -168,7 +168,7 @@ def test_faulty_link_reset_mid_tune_and_killed_logger(tmp_path):
     seqs = [r["seq"] for r in rows]
     assert seqs == list(range(1, want + 1))  # every record exactly once
     assert any(r["outcome"] == "reset" for r in rows)
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []
     assert lg.corrupt + lg2.corrupt > 0  # the faults really happened and were counted
     assert vs.resets >= 1
     assert vs.proc.poll() is not None  # no process left behind
@@ -315,7 +315,7 @@ def test_firmware_under_cpython_too(tmp_path):
         assert recs and recs[0]["outcome"] == "locked"
     finally:
         vs.stop()
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []
 
 
 def _try_status(ln):

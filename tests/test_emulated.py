@@ -83,9 +83,9 @@ def _status_chip(ln, vs, chip_s=20.0):
 
 
 def _station(tmp_path, kit, station=None):
-    from feedmatch.sim.emulated import EmulatedStation
+    from feedmatch.sim.emulated import EmulatedBoard
 
-    return EmulatedStation(station or load_station(), tmp_path / "flash", uf2=kit)
+    return EmulatedBoard(station or load_station(), tmp_path / "flash", uf2=kit)
 
 
 def test_the_driver_on_the_emulated_chip(tmp_path, kit):
@@ -101,7 +101,7 @@ def test_the_driver_on_the_emulated_chip(tmp_path, kit):
             assert all(oe == 0 for _w, oe in vs.latches[1:])
             # Relays set as commanded: the word the chip shifted out is the state.
             ln.request("set", {"l": 37, "c": 5, "sh": 0})
-            assert vs.model.relays == (37, 5, 0, 0)
+            assert vs.hardware.relays == (37, 5, 0, 0)
             # Detector voltages on the ADC, converted by the board's calibration, and
             # the frequency counter on the PWM input.
             vs.key(10.0, 14.2e6)
@@ -111,7 +111,7 @@ def test_the_driver_on_the_emulated_chip(tmp_path, kit):
 
             meter = meter_from(merged(vs.cfg))
             with vs.lock:
-                fwd, ref = meter.powers(*vs.model.det.read(10.0, vs.model.gamma(), 14.2e6, None))
+                fwd, ref = meter.powers(*vs.hardware.det.read(10.0, vs.hardware.gamma(), 14.2e6, None))
             assert st["fwd_w"] == pytest.approx(fwd, rel=0.02)  # the same counts through the same table
             assert st["ref_w"] == pytest.approx(ref, rel=0.05)
             assert st["freq_hz"] == pytest.approx(14.2e6, rel=0.001)
@@ -163,4 +163,4 @@ def test_a_worst_case_tune_never_trips_the_watchdog(tmp_path, kit):
     finally:
         vs.stop()
     assert vs.resets == 0
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []

@@ -17,9 +17,9 @@ from feedmatch.rf.antenna import FixedLoad
 from feedmatch.rf.detector import DetectorModel
 from feedmatch.rf.network import evaluate, load_network
 from feedmatch.sim.faults import parse_faults
+from feedmatch.sim.hardware import SimulatedHardware
 from feedmatch.sim.loads import Load
 from feedmatch.sim.scorer import ScoreConfig, score_one
-from feedmatch.sim.station import StationModel
 
 from .conftest import run_mpy
 
@@ -51,7 +51,7 @@ def test_the_station_model_reads_the_state_the_damaged_box_reaches():
     z = complex(12, -80)
     f_hz = 14.1e6
     faults = parse_faults("L2:stuck-in,C4:stuck-out,C0:drift=+50%", NET)
-    m = StationModel(NET, FixedLoad(z.real, z.imag), DetectorModel(ideal=True), 30.0, faults=faults)
+    m = SimulatedHardware(NET, FixedLoad(z.real, z.imag), DetectorModel(ideal=True), 30.0, faults=faults)
     m.key(10.0, f_hz)
     m.set(0b0000001, 0b0010011, 1, 0)
     net = replace(NET, capacitors_pf=[NET.capacitors_pf[0] * 1.5, *NET.capacitors_pf[1:]])

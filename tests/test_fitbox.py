@@ -22,11 +22,11 @@ NET = load_network()
 def test_fit_box_recovers_drawn_values_from_a_logbook(tmp_path):
     """Draw a box, run tunes on the (in-process) virtual station, log them, fit, compare."""
     from feedmatch.logbook.store import Logbook
-    from feedmatch.sim.station import StationModel
+    from feedmatch.sim.hardware import SimulatedHardware
     from fmlogic.controller import Controller
 
     box = draw_box(NET, 21, 0.05, "none")
-    m = StationModel(box.network, FixedLoad(50, 0), box.detector, 25.0, seed=2)
+    m = SimulatedHardware(box.network, FixedLoad(50, 0), box.detector, 25.0, seed=2)
     b = FakeBoard(m)
     ctl = Controller(b, board_config(tune__strategy="model", memory__bin_hz=100.0), str(tmp_path))
     rng = random.Random(5)

@@ -23,7 +23,7 @@ from feedmatch.board.rigctl import RigClient
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.radio import RigBridge
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 from .conftest import BIN, free_port
 
@@ -57,7 +57,7 @@ def rig():
 
 @pytest.fixture
 def station(tmp_path):
-    vs = VirtualStation(load_station(), tmp_path / "flash")
+    vs = VirtualBoard(load_station(), tmp_path / "flash")
     pty = vs.start()
     time.sleep(1.0)
     yield vs, pty
@@ -118,7 +118,7 @@ def test_a_band_change_presets_the_box_and_the_first_carrier_confirms_it(rig, st
         th.join(10)
         fo.close()
         bridge.close()
-    assert vs.model.violations == []  # nothing ever switched under RF
+    assert vs.hardware.violations == []  # nothing ever switched under RF
     assert fo.presets == 1
 
 
@@ -161,7 +161,7 @@ def test_a_keyed_tune_unkeys_and_restores_the_radio(rig, station):
         bridge.close()
     assert any("tuned 21.2000 MHz: locked" in s for s in said), said
     assert ctl.ptt() is False and ctl.mode()[0] == "USB" and ctl.power() == pytest.approx(0.5, abs=0.01)
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []
 
 
 @pytest.mark.parametrize("fault", ["no RF reaches the box (timeout)", "the board dies mid-tune"])
@@ -321,7 +321,7 @@ def test_no_carrier_outside_a_declared_matchable_segment_and_one_inside(rig, sta
         watch.close()
     assert any("tuned 21.2000 MHz: locked" in s for s in said), said
     assert watch.downs == 1 and not ctl.ptt()
-    assert vs.model.violations == []
+    assert vs.hardware.violations == []
 
 
 def test_no_fm_carrier_on_30_m(rig, station):

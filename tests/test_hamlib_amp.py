@@ -20,7 +20,7 @@ import time
 import pytest
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 from feedmatch.web.hamlib_amp import AmpServer, answer
 
 from .conftest import BIN, free_port
@@ -108,7 +108,7 @@ def test_answers_without_a_carrier_or_a_board():
 
 @pytest.fixture
 def tuning_board(tmp_path):
-    vs = VirtualStation(load_station(), tmp_path / "flash")
+    vs = VirtualBoard(load_station(), tmp_path / "flash")
     pty = vs.start()
     time.sleep(0.5)
     amp = free_port()

@@ -19,7 +19,7 @@ from feedmatch.logbook.logger import Logger
 from feedmatch.logbook.store import WAL_LIMIT, Logbook, LogbookUnwritable
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 from .conftest import BIN, run_cli
 
@@ -38,7 +38,7 @@ def _seqs(db) -> list[int]:
 def _board_with_records(tmp_path, n: int):
     """A virtual board that has tuned n times with nobody logging."""
     st = load_station()
-    vs = VirtualStation(st, tmp_path / "flash")
+    vs = VirtualBoard(st, tmp_path / "flash")
     pty = vs.start()
     for step in st.script[:n]:
         vs.play(step, 1.5)

@@ -25,7 +25,7 @@ from feedmatch.board.link import BoardLink
 from feedmatch.errors import LinkError
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 from fmlogic import link as frames
 
 from .conftest import BIN, logbook_rows, run_cli
@@ -62,7 +62,7 @@ def test_a_directory_someone_else_could_use_is_refused(no_xdg, spoil):
 
 @pytest.fixture
 def board(tmp_path):
-    vs = VirtualStation(load_station(), tmp_path / "flash")
+    vs = VirtualBoard(load_station(), tmp_path / "flash")
     pty = vs.start()
     yield vs, pty
     vs.stop()

@@ -13,7 +13,7 @@ import time
 import pytest
 from feedmatch.board.link import BoardLink
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 
 def _cpu_s(pid: int) -> float:
@@ -32,7 +32,7 @@ def _flood(pty_fd, data, chunk=1 << 16):
 @pytest.mark.parametrize("kind,size", [("random", 10 << 20), ("no-newline", 1 << 20)])
 def test_the_board_answers_within_a_second_of_the_last_garbage_byte(tmp_path, kind, size):
     st = load_station(None)
-    vs = VirtualStation(st, tmp_path / "board")
+    vs = VirtualBoard(st, tmp_path / "board")
     pty = vs.start()
     try:
         with BoardLink(pty) as ln:
@@ -76,7 +76,7 @@ def test_the_virtual_board_runs_on_the_chip_sized_heap_and_single_precision(tmp_
     if not SHARED_FLOAT32.is_file() and not os.environ.get("FEEDMATCH_MICROPYTHON_FLOAT32"):
         pytest.skip("the single-precision unix port is not beside the checkout (../shared/rp2040)")
     st = load_station(None)
-    vs = VirtualStation(st, tmp_path / "board", heap_kib=256, micropython="float32")
+    vs = VirtualBoard(st, tmp_path / "board", heap_kib=256, micropython="float32")
     pty = vs.start()
     try:
         cmd = vs._cmd()

@@ -15,8 +15,8 @@ from feedmatch.rf.diagnose import Readings, diagnose, second_ref
 from feedmatch.rf.network import load_network
 from feedmatch.sim.boxes import draw_box
 from feedmatch.sim.faults import parse_faults
+from feedmatch.sim.hardware import SimulatedHardware
 from feedmatch.sim.selftest import model_of
-from feedmatch.sim.station import StationModel
 from fmlogic import link
 from fmlogic.controller import LOCKED, Controller
 
@@ -30,7 +30,7 @@ F_HZ = 14.2e6
 def _board(tmp_path, spec=""):
     # A drawn box: 5 % parts and the typical strays the diagnosis assumes (rf.network.STRAY_DEFAULTS).
     box = draw_box(NET, 11, 0.05, "default")
-    m = StationModel(box.network, FixedLoad(LOAD.real, LOAD.imag), box.detector, 25.0, seed=5,
+    m = SimulatedHardware(box.network, FixedLoad(LOAD.real, LOAD.imag), box.detector, 25.0, seed=5,
                      faults=parse_faults(spec, NET))
     b = FakeBoard(m)
     return m, b, Controller(b, board_config(), str(tmp_path))
@@ -151,7 +151,7 @@ def test_the_damage_map_keeps_the_search_on_what_still_switches():
 
 def test_a_box_marked_failed_never_drives_the_failed_relays(tmp_path):
     box = draw_box(NET, 11, 0.05, "default")
-    m = StationModel(box.network, FixedLoad(LOAD.real, LOAD.imag), box.detector, 25.0, seed=5,
+    m = SimulatedHardware(box.network, FixedLoad(LOAD.real, LOAD.imag), box.detector, 25.0, seed=5,
                      faults=parse_faults("L4:stuck-out,side:stuck-tx", NET))
     b = FakeBoard(m)
     cfg = board_config()

@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 from feedmatch.sim.demo import _wait
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 from .conftest import BIN, free_port, run_cli
 
@@ -71,7 +71,7 @@ def _text(id_: str) -> str:
 @pytest.fixture
 def served(tmp_path):
     """A virtual board, `log` owning its port, and `serve` attached to it."""
-    vs = VirtualStation(load_station(), tmp_path / "flash")
+    vs = VirtualBoard(load_station(), tmp_path / "flash")
     pty = vs.start()
     time.sleep(1.0)
     db = tmp_path / "station.sqlite"

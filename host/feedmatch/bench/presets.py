@@ -38,7 +38,7 @@ def _run(ctl: Controller, until, steps: int = 3000) -> bool:
 
 def _session(preset: bool, changes: int, seed: int) -> dict[str, Any]:
     st = load_station()
-    model = st.model()
+    model = st.hardware()
     board = InProcessBoard(model)
     hot_sets = [0]  # relay changes made while a carrier was on (allowed below the limit, but not cold)
     counting = [False]
@@ -119,7 +119,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
     from feedmatch.sim.curvepreset import CurvePresets, box_network
 
     st = load_station()
-    model = st.model()
+    model = st.hardware()
     board = InProcessBoard(model)
     recs: list[dict[str, Any]] = []
     hot_sets = [0]

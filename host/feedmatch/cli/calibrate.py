@@ -252,7 +252,7 @@ def _rehearse_calibration(a: argparse.Namespace) -> int:
     from feedmatch.cli.calibrate import run_calibrate
     from feedmatch.rf.antenna import FixedLoad
     from feedmatch.sim.station import load_station
-    from feedmatch.sim.virtual import VirtualStation
+    from feedmatch.sim.virtual import VirtualBoard
 
     if a.port:
         raise InputError("--rehearse runs its own virtual board; leave out --port")
@@ -262,7 +262,7 @@ def _rehearse_calibration(a: argparse.Namespace) -> int:
     if not a.config:
         a.config = str(work / "board_config.json")
         Path(a.config).write_text(json.dumps(st.board_config, indent=2))
-    vs = VirtualStation(st, work / "flash")
+    vs = VirtualBoard(st, work / "flash")
     a.port = vs.start()
     print(f"rehearsal: virtual board on {a.port}, dummy load on the antenna port; each power is keyed "
           "for you at 14.2 MHz")

@@ -37,7 +37,7 @@ def _check_uf2(path: str) -> None:
 
 def cmd_virtual_board(a) -> int:
     from feedmatch.sim.station import load_station
-    from feedmatch.sim.virtual import VirtualStation
+    from feedmatch.sim.virtual import VirtualBoard
 
     st = load_station(a.station)
     if a.fault:
@@ -78,16 +78,16 @@ def cmd_virtual_board(a) -> int:
     if a.image:
         _check_uf2(a.image)  # a wrong file fails now, not after the emulator's half-minute start
     if a.emulate:
-        from feedmatch.sim.emulated import EmulatedStation
+        from feedmatch.sim.emulated import EmulatedBoard
         from feedmatch.sim.emulator import EmulatorMissing
 
-        vs = EmulatedStation(st, d, uf2=a.image)
+        vs = EmulatedBoard(st, d, uf2=a.image)
         try:
             path = vs.start()
         except EmulatorMissing as e:
             raise InputError(f"cannot run the emulated {a.emulate}: {e}") from None
     else:
-        vs = VirtualStation(st, d, use_python=a.python, heap_kib=a.heap, micropython=a.micropython)
+        vs = VirtualBoard(st, d, use_python=a.python, heap_kib=a.heap, micropython=a.micropython)
         path = vs.start()
     print(path, flush=True)
     what = f"emulated {a.emulate}" if a.emulate else "virtual board"
@@ -113,8 +113,8 @@ def cmd_virtual_board(a) -> int:
         if bridge is not None:
             bridge.close()
         vs.stop()
-        if vs.model.violations:
-            sys.stderr.write(f"hot-switch violations: {len(vs.model.violations)}\n")
+        if vs.hardware.violations:
+            sys.stderr.write(f"hot-switch violations: {len(vs.hardware.violations)}\n")
     return 0
 
 

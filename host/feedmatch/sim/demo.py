@@ -23,7 +23,7 @@ from feedmatch.logbook.report import make_report, report_lines, report_plots, wr
 from feedmatch.outpaths import output_dir
 from feedmatch.rf.antenna import Monopole
 from feedmatch.sim.station import load_station
-from feedmatch.sim.virtual import VirtualStation
+from feedmatch.sim.virtual import VirtualBoard
 
 DEMO_MARK = ".feedmatch-demo"  # a directory the demo made, so it may replace its own logbook
 SESSIONS = (("session 1", 0), ("session 2", 0),
@@ -48,7 +48,7 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
     board_dir = out / "board-flash"
     shutil.rmtree(board_dir, ignore_errors=True)
     st = load_station(station_file)
-    vs = VirtualStation(st, board_dir, use_python=use_python)
+    vs = VirtualBoard(st, board_dir, use_python=use_python)
     pty = vs.start()
     lg = Logger(pty, str(db))
     stop = threading.Event()
@@ -67,9 +67,9 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
         for title, damage in SESSIONS:
             if damage:
                 with vs.lock:
-                    vs.model.antenna = damaged(base, damage)
-                    vs.model._zcache.clear()
-                    vs.model._cache.clear()
+                    vs.hardware.antenna = damaged(base, damage)
+                    vs.hardware._zcache.clear()
+                    vs.hardware._cache.clear()
             say(f"{title}: {len(st.script)} frequency changes")
             for step in st.script:
                 vs.play(step, target)
@@ -80,7 +80,7 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
     finally:
         stop.set()
         th.join(timeout=10)
-        violations = list(vs.model.violations)
+        violations = list(vs.hardware.violations)
         resets = vs.resets
         vs.stop()
     rep = make_report(str(db))

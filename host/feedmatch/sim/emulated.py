@@ -5,8 +5,8 @@ mpy-cross for the RP2040, as `feedmatch deploy --compile` sends it) into the
 Pico's littlefs flash file system; MicroPython's rp2 port boots it and
 board_rp2040.py drives the emulated peripherals:
   - the relay chain: SPI0 bytes and the latch pin decoded into the relay state
-    the station model switches (held released while output enable is high);
-  - the detectors: the station model's counts on ADC channels 0 and 1 (GPIO 26, 27);
+    the simulated hardware switches (held released while output enable is high);
+  - the detectors: the simulated hardware's counts on ADC channels 0 and 1 (GPIO 26, 27);
   - the frequency counter: a square wave of the carrier divided by the counter's
     prescaler on its PWM B input;
   - the tune button (GPIO 15, pulled up, pressed low);
@@ -25,7 +25,7 @@ from pathlib import Path
 from feedmatch.errors import InputError
 from feedmatch.sim.emulator import Pico, default_uf2, littlefs_image, read_littlefs
 from feedmatch.sim.station import Station
-from feedmatch.sim.virtual import StationBase
+from feedmatch.sim.virtual import SimulatedBoard
 
 PINS = {"relay_sck": 18, "relay_mosi": 19, "relay_latch": 17, "relay_oe": 13, "adc_fwd": 26, "adc_ref": 27,
         "freq_in": 21, "tune_button": 15, "led": 25, "uart_tx": 0, "uart_rx": 1}
@@ -57,12 +57,12 @@ def stage_firmware(cfg: dict, work: Path) -> dict[str, bytes]:
     return {str(p.relative_to(stage)): p.read_bytes() for p in stage.rglob("*") if p.is_file()}
 
 
-class EmulatedStation(StationBase):
+class EmulatedBoard(SimulatedBoard):
     """The firmware on the emulated Pico; the operator, the model and the pty as in
-    VirtualStation."""
+    VirtualBoard."""
 
     def __init__(self, station: Station, workdir: str | Path, uf2: str | Path | None = None):
-        StationBase.__init__(self, station, workdir)
+        SimulatedBoard.__init__(self, station, workdir)
         uf2 = Path(uf2) if uf2 else default_uf2()
         if uf2 is None:
             raise InputError("give --image: a MicroPython .uf2 image for the Raspberry Pi Pico")
@@ -123,7 +123,7 @@ class EmulatedStation(StationBase):
         with self.lock:
             # Output enable high: the registers drive nothing, every relay released
             # (the network transparent, as an unpowered box).
-            self.model.set(*((0, 0, 1, 1) if oe else self.relays_of(word)))
+            self.hardware.set(*((0, 0, 1, 1) if oe else self.relays_of(word)))
         if self.on_set is not None:
             self.on_set()
         self._push()
@@ -135,8 +135,8 @@ class EmulatedStation(StationBase):
         if pico is None:
             return
         with self.lock:
-            f, r = self.model.read()
-            hz = self.model.count()
+            f, r = self.hardware.read()
+            hz = self.hardware.count()
         pico.set_adc(0, round(f))
         pico.set_adc(1, round(r))
         pico.set_freq(hz / PRESCALE)
@@ -146,8 +146,8 @@ class EmulatedStation(StationBase):
 
     def _changed(self) -> None:
         with self.lock:
-            pressed = self.model.button
-            self.model.button = False
+            pressed = self.hardware.button
+            self.hardware.button = False
         if pressed and self.pico is not None:
             self._button_until = time.monotonic() + 0.5
             self.pico.set_pin(PINS["tune_button"], 0)
@@ -161,7 +161,7 @@ class EmulatedStation(StationBase):
     def _wdt(self) -> None:
         self.resets += 1
         with self.lock:
-            self.model.relays = (0, 0, 1, 1)  # the chip restarts: relays drop out
+            self.hardware.relays = (0, 0, 1, 1)  # the chip restarts: relays drop out
 
     def _boot(self) -> None:
         self._push()

@@ -1,4 +1,4 @@
-"""A board in this process: the firmware's Controller on the host's station model,
+"""A board in this process: the firmware's Controller on the simulated hardware (sim.hardware),
 with virtual time (each detector reading and each sleep advance the clock).
 
 The tests drive the controller through it, and the bench measures what the
@@ -7,14 +7,14 @@ controller does over many band changes without a subprocess per tune.
 
 from __future__ import annotations
 
-from feedmatch.sim.station import StationModel
+from feedmatch.sim.hardware import SimulatedHardware
 
 
 class InProcessBoard:
-    def __init__(self, model: StationModel):
-        """model: the station the board measures and switches (relays, detectors, counter)."""
-        self.m = model
-        self.t = 0
+    def __init__(self, hardware: SimulatedHardware):
+        """hardware: what the board measures and switches (relays, detectors, counter)."""
+        self.hardware = hardware
+        self.t = 0  # the board's clock, ms of virtual time
         self.inbox = bytearray()
         self.outbox = bytearray()
         self.button = False
@@ -25,16 +25,16 @@ class InProcessBoard:
 
     def read_detectors(self):
         self.t += 1
-        return self.m.read()
+        return self.hardware.read()
 
     def set_relays(self, l, c, sh, bypass):
-        self.m.set(l, c, sh, 1 if bypass else 0)
+        self.hardware.set(l, c, sh, 1 if bypass else 0)
         self.sets += 1
         if self.on_set:
             self.on_set(self)
 
     def count_freq(self):
-        return self.m.count()
+        return self.hardware.count()
 
     def tune_button(self):
         b, self.button = self.button, False

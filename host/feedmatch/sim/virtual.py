@@ -24,7 +24,8 @@ from pathlib import Path
 
 from feedmatch.errors import InputError
 from feedmatch.resources import FIRMWARE
-from feedmatch.sim.station import Station, StationModel, Step
+from feedmatch.sim.hardware import SimulatedHardware
+from feedmatch.sim.station import Station, Step
 
 
 def die_with_parent() -> None:
@@ -75,7 +76,7 @@ def micropython_for(kind: str | None) -> str:
     return str(p.resolve())
 
 
-class StationBase:
+class SimulatedBoard:
     """What every simulated station shares: the station model, the board's link
     bridged to a pseudo-terminal (pyserial opens it like a USB serial port), and
     the operator who keys carriers.  Subclasses run the firmware and move bytes:
@@ -87,7 +88,7 @@ class StationBase:
         self.dir = Path(workdir).resolve()
         self.dir.mkdir(parents=True, exist_ok=True)
         self.t0 = time.monotonic()
-        self.model: StationModel = station.model(clock=lambda: time.monotonic() - self.t0)
+        self.hardware: SimulatedHardware = station.hardware(clock=lambda: time.monotonic() - self.t0)
         self.lock = threading.RLock()
         self.resets = 0
         self._stop = threading.Event()
@@ -157,13 +158,13 @@ class StationBase:
     # -- the operator -----------------------------------------------------------
     def key(self, power_w: float, freq_hz: float = 0.0) -> None:
         with self.lock:
-            self.model.key(power_w, freq_hz)
+            self.hardware.key(power_w, freq_hz)
         self._changed()
 
     def key_reverse(self, power_w: float, freq_hz: float = 0.0) -> None:
-        """Feed power in at the antenna port (StationModel.key_reverse)."""
+        """Feed power in at the antenna port (SimulatedHardware.key_reverse)."""
         with self.lock:
-            self.model.key_reverse(power_w, freq_hz)
+            self.hardware.key_reverse(power_w, freq_hz)
         self._changed()
 
     def _changed(self) -> None:
@@ -171,7 +172,7 @@ class StationBase:
 
     def press_button(self) -> None:
         with self.lock:
-            self.model.button = True
+            self.hardware.button = True
         self._changed()
 
     def play(self, step: Step, target_swr: float, tune_timeout_s: float = 6.0) -> float:
@@ -183,15 +184,15 @@ class StationBase:
         self.key(step.tune_w, step.freq_hz)
         t_end = time.monotonic() + tune_timeout_s
         quiet_since = time.monotonic()
-        n0 = self.model.switches
+        n0 = self.hardware.switches
         # The operator keys up once the relays have been quiet for a while (the
         # tuner is done), or when the SWR is good and steady.
         while time.monotonic() < t_end:
             time.sleep(0.02)
             with self.lock:
-                swr = self.model.swr()
-                moved = self.model.switches != n0
-                n0 = self.model.switches
+                swr = self.hardware.swr()
+                moved = self.hardware.switches != n0
+                n0 = self.hardware.switches
             if moved:
                 quiet_since = time.monotonic()
             quiet = time.monotonic() - quiet_since
@@ -201,7 +202,7 @@ class StationBase:
         time.sleep(0.1)
         self.key(step.operate_w, step.freq_hz)
         with self.lock:
-            swr = self.model.swr()
+            swr = self.hardware.swr()
         time.sleep(step.operate_s)
         self.key(0.0)
         time.sleep(0.1)
@@ -209,14 +210,14 @@ class StationBase:
 
 
 
-class VirtualStation(StationBase):
+class VirtualBoard(SimulatedBoard):
     """The firmware under the MicroPython unix port (or CPython) with board_virtual.py."""
 
     def __init__(self, station: Station, workdir: str | Path, use_python: bool = False,
                  wdt_s: float = 3.0, heap_kib: int | None = None, micropython: str | None = None):
         """heap_kib: the MicroPython heap (-X heapsize; default 2 MB); micropython: which
         unix port (see micropython_for), checked here so a wrong one is one line."""
-        StationBase.__init__(self, station, workdir)  # the firmware runs with firmware/ as its cwd
+        SimulatedBoard.__init__(self, station, workdir)  # the firmware runs with firmware/ as its cwd
         self.use_python = use_python
         if heap_kib is not None and not 64 <= heap_kib <= 1 << 20:
             raise InputError(f"--heap must be 64 to 1048576 KB, not {heap_kib}")
@@ -278,7 +279,7 @@ class VirtualStation(StationBase):
                     pass
                 self._ser_conn = None
             # Relays drop out when the board loses power.
-            self.model.relays = (0, 0, 1, 1)
+            self.hardware.relays = (0, 0, 1, 1)
             if threading.current_thread() is self._wd_thread or self._wd_thread is None:
                 self._spawn()
                 return
@@ -346,7 +347,7 @@ class VirtualStation(StationBase):
 
     def _answer(self, parts: list[str]) -> str:
         self.last_ask = time.monotonic()
-        m = self.model
+        m = self.hardware
         with self.lock:
             if not parts:
                 return "err"

@@ -144,7 +144,10 @@ class BoardWatch:
             self.stop.wait(self.period_s)
 
 
-class Station:
+class StationPage:
+    """The page's server side: the logbook view, the board's events to every open page,
+    and (with a token) the tune and bypass requests."""
+
     def __init__(self, db: str | None, port: str | None, baud: int = 115200, token: str | None = None,
                  listen: str = "127.0.0.1", allow_hosts: tuple[str, ...] = ()):
         self.db, self.port, self.baud, self.token = db, port, baud, token
@@ -321,7 +324,7 @@ def serve(db: str | None, port: str | None, host: str, http_port: int, token: st
           idle_timeout_s: float = HEADER_TIMEOUT_S) -> None:
     """Run until interrupted.  ready(url), when given, is called once listening.
     idle_timeout_s: a connection that sends no complete request for this long is closed."""
-    st = Station(db, port, baud, token, listen=host, allow_hosts=allow_hosts)
+    st = StationPage(db, port, baud, token, listen=host, allow_hosts=allow_hosts)
 
     async def main() -> None:
         # keepalive_timeout also closes a connection that sends no complete request
