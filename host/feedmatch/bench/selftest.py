@@ -16,6 +16,8 @@ from __future__ import annotations
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any
 
+from feedmatch.seam.bank import parse_side
+
 
 def _one(args) -> dict[str, Any]:
     spec, box_seed, load, case_seed = args
@@ -30,7 +32,7 @@ def _one(args) -> dict[str, Any]:
     faults = parse_faults(spec, net)
     r = score_one(load, box.network, net, ScoreConfig(strategy="model", detector=box.detector, faults=faults),
                   seed=case_seed)
-    ref = (r["l_code"], r["c_code"], 0 if r["shunt"] == "tx" else 1)
+    ref = (r["l_code"], r["c_code"], parse_side(r["shunt"]))
     res = run_case(box.network, net, box.detector, faults, load.freq_hz, load.z, ref, case_seed)
     named = [(f["element"], f["kind"]) for f in res["faults"]]
     alike = [a.split(":")[0] for f in res["faults"] for a in f.get("fits_as_well", [])]

@@ -344,9 +344,8 @@ def _memory_import(a) -> int:
     (mem-put, a frame of at most memory.PUT_MAX states at a time, one flash write
     at the end). A file from another board, bin width or banks is refused unless
     --mismatch-ok; the board checks every entry's codes itself."""
-    from fmlogic.memory import PUT_MAX, check_entries
-
     from feedmatch.logbook.store import board_key
+    from feedmatch.seam.logic import PUT_MAX, check_entries
 
     doc = _memory_file(a.import_)
     ents = doc["entries"]

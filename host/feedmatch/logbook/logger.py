@@ -9,7 +9,7 @@ from typing import Any, TextIO
 
 from feedmatch.board.hub import ensure_hub
 from feedmatch.board.link import BoardLink
-from feedmatch.errors import LinkError, LinkTimeout, PortError, PortOwned
+from feedmatch.errors import BoardRefused, LinkError, LinkTimeout, PortError, PortOwned
 from feedmatch.logbook.store import Logbook, board_key
 
 
@@ -107,6 +107,11 @@ class Logger:
             self.book.start_session(bid, self.port)
             sections = self.link.element_sections()
             if sections:
+                try:  # the memory's bin width: the report's health check compares within its bins
+                    mem = self.link.request("cfg-get", {"section": "memory"})["value"]
+                    sections["memory"] = {"bin_hz": mem["bin_hz"]}
+                except (BoardRefused, KeyError, TypeError):
+                    pass  # not said: the report takes the shipped width
                 self.book.set_bank(bid, sections)
         for w in self.status.get("warnings") or []:
             # The board lost part of its history (a damaged record segment, a new

@@ -237,7 +237,8 @@ class Logbook:
 
     def set_bank(self, board_id: str, bank: dict[str, Any]) -> None:
         """Keep the element values the board reported (its "network" and any
-        "correction" config sections); the latest report wins."""
+        "correction" config sections, and its memory's bin width as "memory"); the latest
+        report wins."""
         b = self.board(board_id)
         with self.writing():
             self.db.execute("INSERT INTO banks (board, seen, bank) VALUES (?, ?, ?) ON CONFLICT(board) DO UPDATE "
