@@ -91,3 +91,17 @@ def test_side_names_are_the_firmwares_shunt_numbers():
 def test_the_strategy_names_are_one_list():
     # The validator's list (fmlogic.config) and the strategies the search has.
     assert fcfg.STRATEGIES == search.NAMES == tuple(search.STRATEGIES)
+
+
+def test_the_hosts_frequency_bins_are_the_boards():
+    from feedmatch.seam.logic import bin_of, bin_width
+    from fmlogic.memory import Memory
+
+    mem = Memory(None, 10000, 4)
+    for f in (1.8e6, 7.0999e6, 7.1e6, 14.2049e6, 29.7e6):
+        assert bin_of(f, 10000) == mem.bin_of(f)
+    # 7.151 and 7.161 MHz: one 25 kHz bin, two 10 kHz bins (arithmetic).
+    assert bin_of(7.151e6, 25000) == bin_of(7.161e6, 25000) and bin_of(7.151e6, 10000) != bin_of(7.161e6, 10000)
+    assert bin_width({"memory": {"bin_hz": 10000}}) == 10000.0
+    shipped = float(fcfg.DEFAULTS["memory"]["bin_hz"])
+    assert bin_width({"network": {}}) == bin_width(None) == bin_width({"memory": {"bin_hz": -1}}) == shipped

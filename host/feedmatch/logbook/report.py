@@ -12,7 +12,7 @@ from typing import Any
 from feedmatch.logbook.store import open_existing
 from feedmatch.rf import bands
 from feedmatch.seam.bank import BOARD_DEFAULTS, bank_or_none, code_value, load_matched_by, side_name, state_values
-from feedmatch.seam.logic import LOCKED, bin_of
+from feedmatch.seam.logic import LOCKED, bin_of, bin_width
 
 # A band is flagged when its recent tunes differ from its own earlier ones by
 # more than these (common practice for trend alarms: a fixed margin over a
@@ -58,16 +58,6 @@ def _banks(sections: dict[str, dict[str, Any]]) -> dict[str, Any]:
         b = bank_or_none(m)
         if b is not None:
             out[key] = b
-    return out
-
-
-def _bin_widths(sections: dict[str, dict[str, Any]]) -> dict[str, float]:
-    """{board key: the memory bin width (Hz) the board reported}, where the logbook has it."""
-    out = {}
-    for key, m in sections.items():
-        w = (m.get("memory") or {}).get("bin_hz") if isinstance(m, dict) else None
-        if isinstance(w, (int, float)) and not isinstance(w, bool) and w > 0:
-            out[key] = float(w)
     return out
 
 
@@ -164,8 +154,9 @@ def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     sections = book.banks()
     book.close()
     banks = _banks(sections)
+    widths = {k: bin_width(m) for k, m in sections.items()}
     n = sum(1 for r in rows if r["outcome"] != PRESET)
-    return {"tunes": n, "bands": band_table(rows, banks, _bin_widths(sections)), "rows": rows, "banks": banks,
+    return {"tunes": n, "bands": band_table(rows, banks, widths), "rows": rows, "banks": banks,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 

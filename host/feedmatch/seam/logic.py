@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 
+from fmlogic.config import DEFAULTS
 from fmlogic.controller import BEST, LOCKED, THROUGH
 from fmlogic.coupler import GAIN_TOL_DB
 from fmlogic.memory import PUT_MAX, Memory, check_entries, highest_seq
@@ -20,7 +21,7 @@ from fmlogic.selftest import FAILED_KINDS, fault_text, masks, parse_faults, plan
 from fmlogic.swr import Calibration, Meter, gamma_from_swr, reading_gamma
 
 __all__ = ["BEST", "Calibration", "FAILED_KINDS", "GAIN_TOL_DB", "LOCKED", "Meter", "PUT_MAX", "STRATEGY_NAMES",
-           "THROUGH", "bin_of", "check_entries", "fault_text", "gamma_from_swr", "highest_seq", "masks",
+           "THROUGH", "bin_of", "bin_width", "check_entries", "fault_text", "gamma_from_swr", "highest_seq", "masks",
            "parse_faults", "plan", "reach", "reading_gamma"]
 
 
@@ -33,3 +34,13 @@ def bin_of(freq_hz: float, bin_hz: float) -> int:
     """The memory bin a frequency (Hz) falls in, as a board with bins of bin_hz (Hz) numbers
     it (fmlogic.memory.Memory.bin_of): tunes in one bin share one stored state."""
     return _memory(float(bin_hz)).bin_of(freq_hz)
+
+
+def bin_width(sections: object) -> float:
+    """The memory bin width (Hz) a board reported, from its config sections as the logbook
+    keeps them ({"memory": {"bin_hz": ...}}); the shipped width where they do not say."""
+    mem = sections.get("memory") if isinstance(sections, dict) else None
+    w = mem.get("bin_hz") if isinstance(mem, dict) else None
+    if isinstance(w, (int, float)) and not isinstance(w, bool) and w > 0:
+        return float(w)
+    return float(DEFAULTS["memory"]["bin_hz"])

@@ -443,10 +443,13 @@ def model_error_factor(groups: list[list[LoadEstimate]]) -> float:
 
 
 def curve_points(ests: list[LoadEstimate], bin_hz: float) -> list[CurvePoint]:
-    """One point per memory bin, every error scaled by the logbook's model-error factor."""
+    """One point per memory bin (bin_hz wide, numbered as the board's memory numbers them),
+    every error scaled by the logbook's model-error factor."""
+    from feedmatch.seam.logic import bin_of
+
     by: dict[int, list[LoadEstimate]] = {}
     for e in ests:
-        by.setdefault(int(e.freq_hz // bin_hz), []).append(e)
+        by.setdefault(bin_of(e.freq_hz, bin_hz), []).append(e)
     k = model_error_factor(list(by.values()))
     pts = [combine(by[b]) for b in sorted(by)]
     if k > 1.0:
@@ -516,7 +519,8 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
     import json
 
     from feedmatch.logbook.store import open_existing
-    from feedmatch.seam.bank import BOARD_DEFAULTS, bank_or_none
+    from feedmatch.seam.bank import bank_or_none
+    from feedmatch.seam.logic import bin_width
 
     book = open_existing(db)
     rows = [r for r in book.tunes(since) if _until_ok(r["time"], until)]
@@ -534,7 +538,7 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
             by_board.setdefault(r["board_id"], []).append(rec | {"_time": r["time"]})
     ests: list[LoadEstimate] = []
     learned_any = learned_extras = False
-    most, main_bank, main_extras = 0, None, None
+    most, main_bank, main_extras, main_key = 0, None, None, None
     for key, recs in by_board.items():
         sec = sections.get(key) or {}
         bank = bank_or_none(sec) if isinstance(sec.get("network"), dict) else None
@@ -550,8 +554,9 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         learned_extras = learned_extras or extras.learned
         ests += solve_records(recs, bank, learned, leak, extras)
         if len(recs) > most:  # the board with the most tunes speaks for the box
-            most, main_bank, main_extras = len(recs), bank, extras
-    pts = curve_points(ests, float(BOARD_DEFAULTS["memory"]["bin_hz"]))
+            most, main_bank, main_extras, main_key = len(recs), bank, extras, key
+    # The bins of that board's memory (the logger keeps its width), else the shipped ones.
+    pts = curve_points(ests, bin_width(sections.get(main_key)))
     times = [e.time for e in ests if e.time]
     return {"points": pts, "resonances": resonances(pts), "tunes": len(ests),
             "first": min(times) if times else None, "last": max(times) if times else None,
