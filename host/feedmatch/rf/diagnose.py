@@ -24,7 +24,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from fmlogic.swr import GAMMA_MAX
+
+from feedmatch.seam.logic import GAMMA_MAX
 
 # Reading scatter on healthy boxes (see the module docstring); measured in the
 # bench's healthy corpus, where the 99th-percentile fit error sits near 1 sigma.
@@ -184,7 +185,7 @@ class _Fit:
     matrices, so one evaluation is a few small matrix products."""
 
     def __init__(self, m: Model, r: Readings, hyp: tuple[str, str]):
-        from fmlogic.selftest import masks, reach
+        from feedmatch.seam.logic import masks, reach
 
         fl = [(hyp[0], hyp[1], 0.0)] if hyp[1] in ("stuck-out", "stuck-in", "stuck-tx", "stuck-ant") else []
         mk = masks(fl)
@@ -262,8 +263,9 @@ def _refine(m: Model, r: Readings, hyp, scale0: float, g0: complex,
     calibration's tolerance (fmlogic.coupler.GAIN_TOL_DB).  Returns the
     chi-square (readings and priors) and the fit, with the fitted scale of a
     drifted element and its one-sigma uncertainty from the fit's curvature."""
-    from fmlogic.coupler import GAIN_TOL_DB
     from scipy.optimize import least_squares
+
+    from feedmatch.seam.logic import GAIN_TOL_DB
 
     fit = _Fit(m, r, hyp)
     nl, nc = fit.nl, fit.nc

@@ -2,10 +2,10 @@
 
 Tune outcomes (fmlogic.controller), the strategy names (fmlogic.search), the self-test's
 plan, stuck-element masks and fault words (fmlogic.selftest), the detector calibration,
-meter and reading checks (fmlogic.swr), the coupler's gain tolerance (fmlogic.coupler),
-the memory's frequency bins and its check of imported entries, and the record store's
-newest sequence number (fmlogic.memory).  The host never re-derives these: a firmware
-change is seen here and nowhere else.
+meter, reading checks and the largest |gamma| a reading gives (fmlogic.swr), the coupler's
+gain tolerance (fmlogic.coupler), the memory's frequency bins and its check of imported
+entries, and the record store's newest sequence number (fmlogic.memory).  The host never
+re-derives these: a firmware change is seen here and nowhere else.
 """
 
 from __future__ import annotations
@@ -18,11 +18,11 @@ from fmlogic.coupler import GAIN_TOL_DB
 from fmlogic.memory import PUT_MAX, Memory, check_entries, highest_seq
 from fmlogic.search import NAMES as STRATEGY_NAMES
 from fmlogic.selftest import FAILED_KINDS, fault_text, masks, parse_faults, plan, reach
-from fmlogic.swr import Calibration, Meter, gamma_from_swr, reading_gamma
+from fmlogic.swr import GAMMA_MAX, Calibration, Meter, gamma_from_swr, reading_gamma
 
-__all__ = ["BEST", "Calibration", "FAILED_KINDS", "GAIN_TOL_DB", "LOCKED", "Meter", "PUT_MAX", "STRATEGY_NAMES",
-           "THROUGH", "bin_of", "bin_width", "check_entries", "fault_text", "gamma_from_swr", "highest_seq", "masks",
-           "parse_faults", "plan", "reach", "reading_gamma"]
+__all__ = ["BEST", "Calibration", "FAILED_KINDS", "GAIN_TOL_DB", "GAMMA_MAX", "LOCKED", "Meter", "PUT_MAX",
+           "STRATEGY_NAMES", "THROUGH", "bin_of", "bin_width", "check_entries", "fault_text", "gamma_from_swr",
+           "highest_seq", "masks", "parse_faults", "plan", "reach", "reading_gamma"]
 
 
 @lru_cache(maxsize=8)
