@@ -43,7 +43,7 @@ def _boxes(lo: float, hi: float, n: int, seed0: int):
 
 
 def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
-    from feedmatch.sim.coupler_cal import calibrate_box, refine_from_traces, traces_from_results
+    from feedmatch.sim.coupler_cal import calibrate_box, refine_from_traces, refine_refusal, traces_from_results
     from feedmatch.sim.loads import smith_loads, vertical_loads
     from feedmatch.sim.scorer import ScoreConfig, run_parallel, summarise
 
@@ -52,11 +52,12 @@ def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
     vl = [ld for ld in vertical_loads(80 if quick else 200, seed=42) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
     # The logbook each box keeps after its calibration: tunes on other loads than the ones
     # scored (other seeds), verticals and the Smith chart, across the bands.
-    n_log = 100 if quick else 200
+    n_log = 160 if quick else 200
     logl = [ld for ld in vertical_loads(n_log, seed=43) if abs(ld.x_ohm) <= 50 * ld.r_ohm]
     logl = (logl[: n_log // 2] + smith_loads(n_log, seed=44))[:n_log]
     out: dict[str, Any] = {"coupler_matchable_swr": MATCHABLE_SWR, "coupler_log_tunes": len(logl)}
     errs: dict[str, list[float]] = {"learned": [], "learned_log": []}
+    refused = 0
     for lo, hi in BANDS:
         boxes = _boxes(lo, hi, n_boxes, 6100 + 100 * lo)
         fits = [calibrate_box(net, box.network, det, seed=box.seed) for net, box, det in boxes]
@@ -67,9 +68,14 @@ def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
         refined = []
         for (net, _box, _det), fit, res in zip(boxes, fits, logs):
             rf = refine_from_traces(net, traces_from_results(res, fit.learned()), fit)
-            refined.append(tuple(rf["config"]))
             errs["learned"].append(fit.err)
             errs["learned_log"].append(rf["err"])
+            if refine_refusal(rf) is not None:
+                # fit-box --coupler would not write it: the box keeps the calibration's terms.
+                refused += 1
+                refined.append(fit.learned())
+                continue
+            refined.append(tuple(rf["config"]))
         for mode in MODES:
             jobs = []
             for k, ((net, box, det), fit, rfd) in enumerate(zip(boxes, fits, refined)):
@@ -92,6 +98,7 @@ def bench_coupler(quick: bool = False, stage=None) -> dict[str, Any]:
             out[f"{key}_false_lock_rate"] = round(s_all["false_lock_rate"], 4)
             locked = sum(1 for r in smith + vert if r["outcome"] == "locked")
             out[f"{key}_lock_rate"] = round(locked / max(len(smith) + len(vert), 1), 4)
+    out["coupler_learned_log_refused_rate"] = round(refused / (len(BANDS) * n_boxes), 4)
     # The error bound each learning step states (median over the boxes, |gamma|).
     for mode, v in errs.items():
         out[f"coupler_{mode}_median_err"] = round(sorted(v)[len(v) // 2], 4)
