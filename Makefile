@@ -25,7 +25,7 @@ demo: $(STAMP)
 # from Debian's packages where this machine may install them; the tests that
 # need them skip, saying why, where it cannot.
 sysdeps:
-	@# libhamlib-utils: rigctld, ampctld and ampctl (tests/test_follow.py, tests/test_hamlib_amp.py)
+	@# libhamlib-utils: rigctld, ampctld and ampctl (tests/board/test_follow.py, tests/web/test_hamlib_amp.py)
 	@command -v rigctld >/dev/null 2>&1 && command -v ampctld >/dev/null 2>&1 && \
 	  command -v chromium >/dev/null 2>&1 || \
 	  { if command -v apt-get >/dev/null 2>&1 && [ "$$(id -u)" = 0 ]; then \

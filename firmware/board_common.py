@@ -36,7 +36,7 @@ class RelayChain:
 
 # The board contract: every board (board_rp2040, board_esp32, board_virtual,
 # the host tests' in-process board) offers these, and the controller uses
-# nothing else.  tests/test_board_contract.py holds each one to it.
+# nothing else.  tests/firmware/test_board_contract.py holds each one to it.
 #   read_detectors()          -> (fwd, ref): raw detector readings in 12-bit ADC
 #                                counts (0..4095, floats: a burst average); the
 #                                calibration (fmlogic.swr) turns them into watts.

@@ -34,7 +34,7 @@ GAIN_TOL_DB = 0.6
 # the detector's floor (Coupler.floor_w, added in quadrature: a few counts of
 # offset are a fixed power in the square-law region): 12-bit converter, the
 # firmware's averaging, the calibration table's interpolation (common
-# practice; held to the bench's detector model by tests/test_coupler.py).
+# practice; held to the bench's detector model by tests/firmware/test_coupler.py).
 NOISE_ABS = 0.003
 NOISE_REL = 0.02
 

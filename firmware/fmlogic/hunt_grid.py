@@ -1,7 +1,7 @@
 # The hunt's hypothesis grid (hunt._build()), stored as data: building it takes
 # about 1.5 s of integer trigonometry on an RP2040 at every start, reading it a
 # few milliseconds.  Little-endian uint16 (every board and host here is).
-# Generated from hunt._build() (tests/test_hunt_grid.py writes it with
+# Generated from hunt._build() (tests/firmware/test_hunt_grid.py writes it with
 # FEEDMATCH_WRITE_GRID=1 and otherwise holds the two equal).  Do not edit.
 N = 1315
 GRID = (

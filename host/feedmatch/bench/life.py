@@ -279,7 +279,7 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
 
 
 # Every file the board keeps, each damaged one way on the emulated Pico (the unix port's and
-# CPython's run of every file with every kind is tests/test_boot_damage.py). The kinds are the
+# CPython's run of every file with every kind is tests/firmware/test_boot_damage.py). The kinds are the
 # ones power loss and worn flash produce (common practice for embedded flash file stores).
 DAMAGE_FILES = ["config.json", "board.uid", "boot.cnt", "boot.try", "mem.dat", "mem.bak", "mem.last", "rec/0.log",
                 "rec.top", "rec/q/9", "tune.jnl", "fault.txt"]

@@ -1,0 +1,1 @@
+"""The host/firmware seam (feedmatch.seam): the one translator to and from fmlogic."""

@@ -1,0 +1,1 @@
+"""The live page and the Hamlib amplifier protocol (feedmatch.web)."""
