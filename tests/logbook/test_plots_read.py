@@ -42,6 +42,19 @@ def test_swr_over_time_has_units_zone_target_band_order_and_one_line_per_bin():
     plt.close(fig)
 
 
+def test_the_lines_follow_the_boards_own_memory_bins():
+    # 7.151 and 7.161 MHz: one bin of the shipped 25 kHz memory, two of a board set to
+    # 10 kHz bins (fmlogic.memory numbers bins from 0 Hz: arithmetic).
+    rows = [dict(_row(f"2026-11-0{d}T10:00:00+00:00", "40m", f, 1.2, 100, 106, 1), board_id="hollow-oak-1")
+            for d, f in ((1, 7.151e6), (2, 7.161e6), (3, 7.151e6))]
+    for widths, lengths, words in ((None, [3], "25 kHz"), ({"hollow-oak-1": 10000.0}, [1, 2], "10 kHz")):
+        fig, ax = plt.subplots()
+        draw_swr_by_band(ax, {"40m": rows}, [], widths)
+        lines = [ln for ln in ax.get_lines() if ln.get_linestyle() == "-"]
+        assert sorted(len(ln.get_xdata()) for ln in lines) == lengths and words in ax.get_title()
+        plt.close(fig)
+
+
 def test_states_plot_names_its_axes_and_tells_the_capacitor_side_apart():
     fig, ax = plt.subplots()
     draw_states_by_band(ax, dict(ROWS))

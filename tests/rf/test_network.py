@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import random
 
 import numpy as np
@@ -296,3 +297,13 @@ def test_the_firmwares_state_model_is_one_formula():
         zm = lnet.load_matched_by(bank, f, l, c, sh)
         if zm is not None and zm.real > 0:
             assert abs(lnet.z_in(bank, f, zm, l, c, sh) - bank.z0) < 1e-6 * abs(zm) + 1e-9
+
+
+def test_the_hosts_swr_is_the_firmwares_below_its_sentinel():
+    # One SWR formula: the host's numpy swr_of is the twin of fmlogic.swr.swr_from_gamma up to
+    # the firmware's SWR_MAX sentinel (above it the board says 999, the host inf).
+    from fmlogic import swr as fsw
+
+    g = np.linspace(0.0, fsw.GAMMA_MAX * 0.999, 2001)
+    assert np.allclose(swr_of(g), [fsw.swr_from_gamma(float(x)) for x in g], rtol=1e-12)
+    assert fsw.swr_from_gamma(fsw.GAMMA_MAX) == fsw.SWR_MAX and math.isinf(float(swr_of(1.0)))

@@ -29,7 +29,7 @@ def cmd_report(a) -> int:
     add_antenna(rep, a.db, a.since)  # health in ohms, from the antenna the tunes measured
     if a.csv:
         write_csv(a.csv, rep["rows"], rep["banks"])
-    files = report_plots(a.plots, rep["rows"]) if a.plots else []
+    files = report_plots(a.plots, rep["rows"], rep["bin_widths"]) if a.plots else []
     written = ([a.csv] if a.csv else []) + [str(f) for f in files]
     if a.json:
         for f in written:

@@ -156,7 +156,7 @@ def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     banks = _banks(sections)
     widths = {k: bin_width(m) for k, m in sections.items()}
     n = sum(1 for r in rows if r["outcome"] != PRESET)
-    return {"tunes": n, "bands": band_table(rows, banks, widths), "rows": rows, "banks": banks,
+    return {"tunes": n, "bands": band_table(rows, banks, widths), "rows": rows, "banks": banks, "bin_widths": widths,
             "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
 
 
@@ -221,8 +221,15 @@ def write_csv(path: str, rows: list, banks: dict[str, Any] | None = None) -> Non
                         for c in cols])
 
 
-TARGET_SWR = 1.5  # the shipped tune.target_swr (fmlogic/config.py); the logbook does not keep the board's
-BIN_HZ = 25000    # the shipped memory.bin_hz: a series joins only tunes of one frequency bin
+# The shipped tune.target_swr (fmlogic/config.py): the logbook does not keep the board's.
+TARGET_SWR = BOARD_DEFAULTS["tune"]["target_swr"]
+BIN_HZ = BOARD_DEFAULTS["memory"]["bin_hz"]  # the shipped memory bins, where the logbook has not the board's
+
+
+def _bin_key(r: Any, bin_widths: dict[str, float] | None) -> int:
+    """The memory bin of a tune row, in its board's bins (a series joins only tunes of one bin)."""
+    w = (bin_widths or {}).get(_get(r, "board_id"), BIN_HZ)
+    return bin_of(r["freq_hz"] or 0.0, w)
 
 
 def _band_order(names) -> list[str]:
@@ -239,10 +246,10 @@ def _colours(n: int) -> list:
     return [cmap(i % 10) for i in range(n)]
 
 
-def draw_swr_by_band(ax, by: dict, missed: list) -> None:
+def draw_swr_by_band(ax, by: dict, missed: list, bin_widths: dict[str, float] | None = None) -> None:
     """SWR after each locked tune over time: one colour per band (in band order), one
-    line per frequency bin (a line never joins two frequencies), the target drawn,
-    the time axis in UTC."""
+    line per memory bin (a line never joins two frequencies; bin_widths: {board key: Hz},
+    the shipped width for the others), the target drawn, the time axis in UTC."""
     import datetime as dt
 
     import matplotlib.dates as mdates
@@ -254,7 +261,7 @@ def draw_swr_by_band(ax, by: dict, missed: list) -> None:
     for band, colour in zip(order, _colours(len(order))):
         bins = defaultdict(list)
         for r in by[band]:
-            bins[round((r["freq_hz"] or 0.0) / BIN_HZ)].append(r)
+            bins[_bin_key(r, bin_widths)].append(r)
         for i, (_k, rs) in enumerate(sorted(bins.items())):
             ax.plot([when(r) for r in rs], [r["swr_after"] for r in rs], "o-", ms=3, color=colour,
                     label=band if i == 0 else None)
@@ -272,7 +279,9 @@ def draw_swr_by_band(ax, by: dict, missed: list) -> None:
     ax.set_ylabel("SWR after tune (1 = perfect match)")
     ax.set_xlabel("time (UTC)")
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m-%d %H:%M", tz=dt.UTC))
-    ax.set_title("SWR after tune by band (one line per 25 kHz frequency bin)")
+    widths = {(bin_widths or {}).get(_get(r, "board_id"), BIN_HZ) for rs in by.values() for r in rs} or {BIN_HZ}
+    per = f"{widths.pop() / 1e3:g} kHz frequency bin" if len(widths) == 1 else "memory bin of its board"
+    ax.set_title(f"SWR after tune by band (one line per {per})")
     ax.legend(fontsize=8, ncol=4)
 
 
@@ -292,7 +301,8 @@ def draw_states_by_band(ax, by: dict) -> None:
         ax.legend(fontsize=7)
 
 
-def report_plots(outdir: str, rows: list) -> list[Path]:
+def report_plots(outdir: str, rows: list, bin_widths: dict[str, float] | None = None) -> list[Path]:
+    """The report's figures into outdir; bin_widths as make_report gives them."""
     from feedmatch.plots import _plt
 
     plt = _plt()
@@ -309,7 +319,7 @@ def report_plots(outdir: str, rows: list) -> list[Path]:
             missed.append(r)
     files = []
     fig, ax = plt.subplots(figsize=(8, 4))
-    draw_swr_by_band(ax, by, missed)
+    draw_swr_by_band(ax, by, missed, bin_widths)
     fig.autofmt_xdate()
     f = d / "swr_by_band.png"
     fig.savefig(f, dpi=110, bbox_inches="tight")
@@ -342,7 +352,7 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
             continue  # no reading was taken
         if r["swr_after"] is not None:
             # [time, SWR after, outcome, memory bin]: the page joins a bin's points only.
-            series[r["band"]].append([r["time"], r["swr_after"], r["outcome"], round((r["freq_hz"] or 0.0) / BIN_HZ)])
+            series[r["band"]].append([r["time"], r["swr_after"], r["outcome"], _bin_key(r, rep["bin_widths"])])
         if r["outcome"] == LOCKED and r["after_l"] is not None and not r["after_bypass"] and r["freq_hz"]:
             bank = banks.get(r["board_id"], default_bank)
             z = load_matched_by(bank, r["freq_hz"] / 1e6, int(r["after_l"]), int(r["after_c"]),

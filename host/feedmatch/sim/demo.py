@@ -87,7 +87,7 @@ def run_demo(out_dir: str | Path, use_python: bool = False, station_file: str | 
     say("")
     for line in report_lines(rep):
         say(line)
-    plots = report_plots(str(out / "plots"), rep["rows"])
+    plots = report_plots(str(out / "plots"), rep["rows"], rep["bin_widths"])
     csv_path = out / "tunes.csv"
     write_csv(str(csv_path), rep["rows"], rep["banks"])
     elapsed = time.monotonic() - t_start
