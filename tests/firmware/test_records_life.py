@@ -265,3 +265,34 @@ def test_a_lost_record_file_never_gives_its_number_again(tmp_path):
     r2.load()
     assert r2.seq == memory.BATCH + 2 and r2.npend == 0 and not list(q.iterdir())
     assert [x["seq"] for x in r2.since(0, 100)] == list(range(1, memory.BATCH + 3))
+
+
+def test_a_full_flash_drops_the_oldest_records_before_the_memory_goes_unsaved(tmp_path, monkeypatch):
+    """The memory's whole save meets a full flash (ENOSPC): the oldest record segment
+    goes and the save is tried again; the records being written stay."""
+    import builtins
+    import errno
+
+    d = str(tmp_path)
+    r = memory.Records(d, 2000)
+    r.load()
+    for i in range(3 * memory.SEG):
+        r.add({"freq_hz": float(i)})
+    r.settle()
+    assert (tmp_path / "rec" / "0.log").exists()
+    mem = memory.Memory(d, 25000, 10)
+    mem.room = r._drop_oldest
+    real_open = builtins.open
+
+    def full(p, mode="r", *a, **k):
+        if "w" in mode and str(p).endswith("mem.new") and (tmp_path / "rec" / "0.log").exists():
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real_open(p, mode, *a, **k)
+
+    monkeypatch.setattr(builtins, "open", full)
+    mem.store(7.1e6, (10, 20, 0), 1.2, 1)
+    assert mem.flush(r.seq) and not mem.dirty
+    assert not (tmp_path / "rec" / "0.log").exists() and (tmp_path / "rec" / "1.log").exists()
+    monkeypatch.setattr(builtins, "open", real_open)
+    again = memory.Memory(d, 25000, 10)
+    assert again.load() and again.lookup(7.1e6)[:3] == (10, 20, 0) and again.upto == r.seq
