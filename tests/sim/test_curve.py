@@ -259,3 +259,38 @@ def test_the_page_serves_the_measured_antenna(tmp_path):
     finally:
         p.send_signal(signal.SIGTERM)
         p.wait(15)
+
+
+def test_the_box_model_of_a_state_is_the_stray_network_and_the_detectors_invert_their_tables():
+    """The curve's model of a state (strays included) against rf/network.py's L-network with
+    the same strays, and the detector chain: with the calibration's own gains and no offset
+    the meter reads the true |gamma| (any leakage set to zero)."""
+    from feedmatch.rf.network import Network, all_states_zin, gamma
+    from feedmatch.sim.curve import _CIN, _COUT, _CREL, _LEAD, BoxModel, Detectors, _bits
+    from fmlogic import lnet
+
+    bank = lnet.Bank(Z0, IND, CAP, 150.0, 1000.0)
+    md = BoxModel.unknown(bank)
+    p = md.p.copy()
+    ne = md.ne
+    p[:ne] = np.linspace(-0.04, 0.04, ne)  # each element a few per cent off
+    p[ne + _CIN], p[ne + _COUT], p[ne + _CREL], p[ne + _LEAD] = 0.6, 0.9, 1.5, 1.2  # 6, 9 pF, 1.5 pF, 12 nH
+    md.p, md.learned = p, True
+    net = md.network()
+    assert isinstance(net, Network) and net.lead_nh == pytest.approx(12.0) and net.relay_open_pf == pytest.approx(1.5)
+    states = np.array([(12, 20, 0), (16, 20, 1), (100, 5, 0), (3, 77, 1), (0, 0, 0), (127, 127, 1)])
+    for f in (7.1e6, 28.5e6):
+        for z in (20 - 60j, 600 + 300j):
+            g = (z - Z0) / (z + Z0)
+            ref = gamma(all_states_zin(net, f, z), Z0)
+            want = np.array([ref[s[2], s[0], s[1]] for s in states])
+            got = md.gin(p, np.full(len(states), f), _bits(states[:, 0], 7), _bits(states[:, 1], 7), states[:, 2],
+                         np.full(len(states), g))
+            assert np.max(np.abs(got - want)) < 1e-9
+            co = md.coefs(p, f, states)
+            assert np.max(np.abs((co[:, 0] * g + co[:, 1]) / (co[:, 2] * g + 1) - want)) < 1e-9
+    pts = [(10.121, 0.05), (120.0, 1.0), (900.0, 20.0), (3000.0, 200.0)]
+    det = Detectors(pts, pts)
+    x = np.zeros(len(p) - ne)
+    gm = np.array([0.02, 0.1, 0.5, 0.9])
+    assert np.allclose(det.reading(np.full(4, 10.0), 10.0 * gm ** 2, x), gm, rtol=1e-9)

@@ -34,7 +34,14 @@ def _box_points(seed: int, n_sessions: int, per: int) -> list[dict[str, Any]]:
 
     from feedmatch.rf.network import load_network
     from feedmatch.sim.boxes import draw_box
-    from feedmatch.sim.curve import ELEMENT_SIGMA_LEARNED, LoadSolver, curve_points, learn_extras, model_error_factor
+    from feedmatch.sim.curve import (
+        ELEMENT_SIGMA_LEARNED,
+        Detectors,
+        LoadSolver,
+        curve_points,
+        learn_extras,
+        model_error_factor,
+    )
     from feedmatch.sim.fitbox import Trace, fit_elements, traces_from_scoring
     from feedmatch.sim.loads import smith_loads, vertical_sessions
     from feedmatch.sim.scorer import ScoreConfig, score
@@ -54,9 +61,10 @@ def _box_points(seed: int, n_sessions: int, per: int) -> list[dict[str, Any]]:
             t = np.asarray(r["trace"], dtype=float)
             trs.append(Trace(r["freq_hz"], t[:, :3].astype(int), np.round(t[:, 3], 3)) if len(t) else None)
         sessions.append((rows, trs))
-    # The coupler and the node strays, learned from the whole logbook (as `antenna --logbook` does).
+    # The element values, strays and coupler, learned from the whole logbook (as `antenna --logbook` does).
+    det = Detectors(box.detector.calibration_points(), box.detector.calibration_points())  # the box's table
     extras = learn_extras(known.firmware_bank(), earlier + [t for _, ts in sessions for t in ts if t is not None],
-                          leak)
+                          leak, det=det)
     solver = LoadSolver(known.firmware_bank(), ELEMENT_SIGMA_LEARNED, leak, extras)
     out = []
     bin_hz = float(DEFAULTS["memory"]["bin_hz"])

@@ -115,7 +115,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
     from fmlogic import config as fcfg
 
     from feedmatch.rf import bands
-    from feedmatch.sim.curve import curve_points, learn_extras, solve_records
+    from feedmatch.sim.curve import ELEMENT_SIGMA_NOMINAL, Detectors, curve_points, learn_extras, solve_records
     from feedmatch.sim.curvepreset import CurvePresets, box_network
 
     st = load_station()
@@ -149,7 +149,8 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
         leak = float(ctl.cfg["detector"]["leak"])
         from feedmatch.sim.curve import _trace_of
 
-        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak)
+        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak,
+                              element_sigma=ELEMENT_SIGMA_NOMINAL, det=Detectors.of_section(ctl.cfg["detector"]))
         bin_hz = float(fcfg.DEFAULTS["memory"]["bin_hz"])
         pts = curve_points(solve_records(recs, bank, False, leak, extras), bin_hz)
         planner = CurvePresets.from_points(pts, box_network(bank, extras))

@@ -12,15 +12,24 @@ tune's readings.  A tune with one or two readings (a recall that held) says
 less: its best state matches a load near the one that state matches exactly,
 within the circle of the reading's radius.
 
+The model of a state is the box as its logbook shows it (BoxModel, learned by
+learn_extras from every multi-reading trace at once, as fit-box learns the
+elements): the element values (fit-box's as the start and prior), the node
+strays, the capacitance across an open relay contact, the elements' lead
+inductance, and the measurement chain: the coupler's leakage (growing with
+frequency, its phase learned) and each detector's gain and offset acting
+through the board's own calibration tables.  Measured on the bench's drawn
+boxes (bench/curve.py), leaving the strays and the detectors' law out of the
+model was what limited the curve: with the true box's values the solution is
+within 0.2 % (median), with fit-box's values and node strays alone 11 %.
+
 Uncertainty (one standard deviation, linearised, GUM-style): the readings'
-noise (READING_SIGMA, scaled up by the fit's own residual where it has degrees
-of freedom to show one), and, propagated through the solution, the systematic
-errors no reading can average out: the coupler's leakage (the calibrated
-magnitude, growing with frequency like the detector model's capacitive
-leakage, its phase unknown), the detectors' gain mismatch and every element
-value (ELEMENT_SIGMA_LEARNED after fit-box, the parts' tolerance otherwise).
-Tunes in the same memory bin are combined: the random part averages down, the
-systematic part does not.
+noise (the learned fit's residual, scaled up by a trace's own where it has
+degrees of freedom to show one), and, propagated through the solution, the
+systematic errors no reading can average out: every parameter of the box
+model with the learned fit's covariance, plus a shared scale per bank that
+the fit leaves open (COMMON_SCALE_SIGMA).  Tunes in the same memory bin are
+combined: the random part averages down, the systematic part does not.
 """
 
 from __future__ import annotations
@@ -37,13 +46,11 @@ from feedmatch.seam import bank as lnet  # the firmware's Bank and state model
 from feedmatch.sim.fitbox import Trace
 
 READING_SIGMA = 0.015        # |gamma| per reading: ADC noise and the model's own error (as the firmware's _sig)
-GAIN_SIGMA = 0.035           # forward/reflected gain mismatch, 0.3 dB (as the firmware's _sig)
 ELEMENT_SIGMA_LEARNED = 0.02  # fit-box's values: within 1.9 % on drawn boxes from 400 tunes (cli/fitbox.py)
 ELEMENT_SIGMA_NOMINAL = 0.05  # the parts' tolerance when nothing was learned
 LEAK_CAL_HZ = 14.2e6         # `feedmatch calibrate` measures the leakage here
 LEAK_FLOOR = 0.01            # 40 dB: the directivity cap of the detector model
 LEAK_DEFAULT = 0.056         # fmlogic.search.LEAK_DEFAULT: 25 dB, when the board's is unknown
-_H = 1e-4
 
 
 @dataclass
@@ -94,28 +101,8 @@ class CurvePoint:
                 "readings": self.readings, "swr_50": round(float(swr_of(g)), 2) if g < 0.9999 else None}
 
 
-def _bank_scaled(bank: lnet.Bank, k: int, h: float) -> lnet.Bank:
-    """The same bank with element k (inductors first, then capacitors) scaled by 1 + h."""
-    ind, cap = list(bank.ind), list(bank.cap)
-    if k < len(ind):
-        ind[k] *= 1 + h
-    else:
-        cap[k - len(ind)] *= 1 + h
-    b = lnet.Bank(bank.z0, bank.nominal_l, bank.nominal_c, bank.ql, bank.qc)
-    b.set_values(ind, cap)
-    return b
-
-
-def _net_coefs(bank: lnet.Bank, f_hz: float, states: np.ndarray) -> np.ndarray:
-    """(n, 3) complex: the Moebius coefficients a, b, c of each state, the firmware's own
-    model of the network (lnet.mobius); the search's BYPASS state is the bypass relay, the
-    antenna alone (the identity)."""
-    f = f_hz / 1e6
-    out = np.empty((len(states), 3), dtype=complex)
-    for i, st in enumerate(states):
-        l, c, sh = int(st[0]), int(st[1]), int(st[2])
-        out[i] = (1.0, 0.0, 0.0) if (l, c, sh) == (0, 0, 1) else lnet.mobius(bank, f, l, c, sh)
-    return out
+def _bits(codes: np.ndarray, n: int) -> np.ndarray:
+    return ((np.asarray(codes, dtype=np.int64)[:, None] >> np.arange(n)[None, :]) & 1).astype(float)
 
 
 def _bypass(states: np.ndarray) -> np.ndarray:
@@ -123,55 +110,174 @@ def _bypass(states: np.ndarray) -> np.ndarray:
     return (st[:, 0] == 0) & (st[:, 1] == 0) & (st[:, 2] == 1)
 
 
-def _through_shunt(g, y):
-    """gamma seen through a shunt admittance y (normalised to z0) across the line."""
-    return ((2 - y) * g - y) / (y * g + 2 + y)
+# The box as the curve sees it, in the order of BoxModel.p after one log-scale per element
+# (inductors, then capacitors, relative to the board's values): the stray capacitance at
+# the transmitter and antenna nodes (pF / 10), the capacitance across an open relay
+# contact (pF), the series lead inductance of each element (nH / 10), the reflected/forward
+# gain (log), the coupler's leakage at 28 MHz (re, im; growing in proportion to
+# frequency, as fit-box models it) and a reflected-detector offset (|gamma| x 10).
+# The strays are the usual ones of a relay-switched bank (common practice: a pF or two
+# across an open contact, a few pF from each node to the chassis, about 1 nH per mm of
+# lead); their values are learned from the logbook, never taken from the bench's boxes.
+N_EXTRAS = 10
+_CIN, _COUT, _CREL, _LEAD, _GF, _GR, _DRE, _DIM, _OFF, _LP = range(N_EXTRAS)
+DET_GAIN_SIGMA_DB = 0.3  # each detector's gain after the bench calibration (sim/boxes.py's spread, from memory)
+OFFSET_SIGMA_COUNTS = 1.0  # a detector's offset, counts (common practice for a 12-bit ADC front end)
+TUNE_W = 10.0  # the tune carrier the readings are taken at when the logbook does not say (prior centre)
 
 
-# The box's learned extras, in the order of BoxExtras.p: the stray capacitance at the
-# transmitter and antenna nodes (pF / 10), the reflected/forward gain (log), the coupler's
-# leakage at 28 MHz (re, im; growing in proportion to frequency, as fit-box models it) and
-# a reflected-detector offset (|gamma| x 10).
-N_EXTRAS = 6
-STRAY_SIGMA_PF = 5.0  # node strays when nothing was learned: the bench's boxes carry 8 pF (boxes.py, from memory)
+class Detectors:
+    """The box's two detector calibrations (counts to watts, log-log piecewise linear as
+    fmlogic.swr.Calibration), vectorised: a reading is what these tables make of the
+    detectors' counts, so the gains and offsets the calibration missed act through them."""
+
+    def __init__(self, fwd_points, ref_points, floor_counts: float = 2.0):
+        self.tabs = [(np.log([float(c) for c, _w in pts]), np.log([float(w) for _c, w in pts]))
+                     for pts in (fwd_points, ref_points)]
+        self.floor = float(floor_counts)
+
+    @staticmethod
+    def of_section(det: dict | None) -> Detectors:
+        from fmlogic.config import DEFAULTS
+
+        d = DEFAULTS["detector"] | (det if isinstance(det, dict) else {})
+        try:
+            return Detectors(d["fwd"], d["ref"], float(d.get("floor_counts", 2.0)))
+        except (TypeError, ValueError, KeyError):
+            dd = DEFAULTS["detector"]
+            return Detectors(dd["fwd"], dd["ref"], dd["floor_counts"])
+
+    @staticmethod
+    def _interp(x, xs, ys):
+        lo = ys[0] + (x - xs[0])  # below the table: square law (as the firmware's watts())
+        hi = ys[-1] + (x - xs[-1]) * (ys[-1] - ys[-2]) / (xs[-1] - xs[-2])
+        return np.where(x < xs[0], lo, np.where(x > xs[-1], hi, np.interp(x, xs, ys)))
+
+    def reading(self, p_fwd, p_ref, x: np.ndarray) -> np.ndarray:
+        """|gamma| the meter reads for true port powers (W) with the gains (dB) and offset
+        (counts) in x: counts = gain x the table's counts for the power + offset."""
+        out = []
+        for (lc, lw), pw, gdb in ((self.tabs[0], p_fwd, x[_GF]), (self.tabs[1], p_ref, x[_GR])):
+            c = np.exp(self._interp(np.log(np.maximum(pw, 1e-12)), lw, lc)) * 10 ** (gdb / 20) + x[_OFF]
+            out.append(np.exp(self._interp(np.log(np.maximum(c, 1e-3)), lc, lw)))
+        return np.sqrt(np.minimum(out[1] / out[0], 1.0))
+STRAY_SIGMA_PF = 5.0   # node strays when nothing was learned (prior spread, from memory)
+RELAY_SIGMA_PF = 2.0   # open relay contacts: 0.5-2 pF in relay datasheets (from memory)
+LEAD_SIGMA_NH = 20.0   # leads of a few cm (about 1 nH per mm, common practice)
 
 
 @dataclass
-class BoxExtras:
-    """What besides its element values shapes a box's readings, with its covariance."""
+class BoxModel:
+    """What shapes a box's readings: its element values (log scales on the board's bank),
+    strays and coupler, with their covariance (the element scales first)."""
 
+    bank: lnet.Bank
     p: np.ndarray
     cov: np.ndarray
     reading_sigma: float = READING_SIGMA
     learned: bool = False
+    det: Detectors | None = None
+
+    def read(self, gin, f_hz, x: np.ndarray) -> np.ndarray:
+        """The reading of a true gamma_in through the coupler (its leakage spoiling both
+        ports, growing with frequency) and the detectors (gains, offset, at the tune power)."""
+        d = (np.asarray(f_hz) / 28e6) * (x[_DRE] + 1j * x[_DIM])
+        pw = TUNE_W * math.exp(x[_LP])
+        det = self.det or Detectors.of_section(None)
+        return det.reading(pw * np.abs(1 + gin * d) ** 2, pw * np.abs(gin + d) ** 2, x)
 
     @staticmethod
-    def unknown(leak_cal: float = LEAK_DEFAULT) -> BoxExtras:
-        """Nothing learned: no strays, no leakage, equal gains, each with its spread (the
-        leakage's phase unknown, its magnitude the calibrated one scaled to 28 MHz)."""
+    def unknown(bank: lnet.Bank, leak_cal: float = LEAK_DEFAULT,
+                element_sigma: float = ELEMENT_SIGMA_LEARNED, det: Detectors | None = None) -> BoxModel:
+        """Nothing learned: the board's values with their spread, no strays, no leakage,
+        equal gains (the leakage's phase unknown, its magnitude the calibrated one at 28 MHz)."""
         leak28 = max(leak_cal * 28e6 / LEAK_CAL_HZ, LEAK_FLOOR)
-        sd = [STRAY_SIGMA_PF / 10, STRAY_SIGMA_PF / 10, GAIN_SIGMA, leak28 / math.sqrt(2), leak28 / math.sqrt(2), 0.1]
-        return BoxExtras(np.zeros(N_EXTRAS), np.diag(np.square(sd)))
+        sd = [element_sigma] * (bank.nl + bank.nc) + [
+            STRAY_SIGMA_PF / 10, STRAY_SIGMA_PF / 10, RELAY_SIGMA_PF, LEAD_SIGMA_NH / 10, DET_GAIN_SIGMA_DB,
+            DET_GAIN_SIGMA_DB, leak28 / math.sqrt(2), leak28 / math.sqrt(2), OFFSET_SIGMA_COUNTS, 1.0]
+        return BoxModel(bank, np.zeros(len(sd)), np.diag(np.square(sd)), det=det)
+
+    @property
+    def ne(self) -> int:
+        return self.bank.nl + self.bank.nc
+
+    def extras(self, p: np.ndarray | None = None) -> np.ndarray:
+        return (self.p if p is None else p)[self.ne:]
 
     @property
     def strays_pf(self) -> tuple[float, float]:
-        return float(self.p[0] * 10), float(self.p[1] * 10)
+        x = self.extras()
+        return float(x[_CIN] * 10), float(x[_COUT] * 10)
+
+    def network(self):
+        """The box as a Network (rf/network.py): learned values and strays, for the presets."""
+        from feedmatch.rf.network import Network
+
+        b, p, x = self.bank, self.p, self.extras()
+        ind = np.asarray(b.ind) * np.exp(p[:b.nl])
+        cap = np.asarray(b.cap) * np.exp(p[b.nl:self.ne])
+        net = Network(b.z0, [float(v) for v in ind], [float(v) for v in cap], b.ql or None, b.qc or None)
+        if self.learned:
+            net.stray_in_pf, net.stray_out_pf = max(float(x[_CIN]) * 10, 0.0), max(float(x[_COUT]) * 10, 0.0)
+            net.relay_open_pf, net.lead_nh = max(float(x[_CREL]), 0.0), max(float(x[_LEAD]) * 10, 0.0)
+        return net
+
+    def gin(self, p: np.ndarray, f, bl: np.ndarray, bc: np.ndarray, sh: np.ndarray, g) -> np.ndarray:
+        """gamma_in of each reading's state (bits bl, bc; shunt side sh) on its load g, the
+        strays included (the same L-network as rf/network.py, one load per reading)."""
+        b, nl, ne = self.bank, self.bank.nl, self.ne
+        x = p[ne:]
+        w = (2 * np.pi * np.asarray(f, dtype=float))[:, None]
+        ind = np.asarray(b.ind) * np.exp(p[:nl]) * 1e-6
+        cap = np.asarray(b.cap) * np.exp(p[nl:ne]) * 1e-12
+        lead, crel = x[_LEAD] * 1e-8, x[_CREL] * 1e-12
+        zk = w * ind * ((1 / b.ql) if b.ql else 0.0) + 1j * w * (ind + lead)
+        zk = zk / (1 + 1j * w * crel * zk)  # the open contact across an inductor in circuit
+        zs = (zk * bl).sum(axis=1)
+        yk = w * cap * ((1 / b.qc) if b.qc else 0.0) + 1j * w * cap
+        yk = yk / (1 + 1j * w * lead * yk)
+        yo = 1j * w * cap * crel / (cap + crel)  # a capacitor hanging on through its open contact
+        yc = (yk * bc).sum(axis=1) + (yo * (1 - bc)).sum(axis=1)
+        z0 = b.z0
+        w1 = w[:, 0]
+        g = np.asarray(g)
+        yl = (1 - g) / (z0 * (1 + g)) + 1j * w1 * x[_COUT] * 1e-11
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z_ant = zs + 1.0 / (yl + yc)
+            z_tx = 1.0 / (1.0 / (zs + 1.0 / yl) + yc)
+            z = np.where(sh == 1, z_ant, z_tx)
+            z = 1.0 / (1.0 / z + 1j * w1 * x[_CIN] * 1e-11)
+        return (z - z0) / (z + z0)
+
+    def coefs(self, p: np.ndarray, f_hz: float, states: np.ndarray) -> np.ndarray:
+        """(n, 3) complex: each state's Moebius coefficients a, b, c (gamma_in = (a g + b) /
+        (c g + 1)), strays included; the bypass relay is the identity (the antenna alone)."""
+        st = np.asarray(states)
+        n = len(st)
+        bl, bc = _bits(st[:, 0], self.bank.nl), _bits(st[:, 1], self.bank.nc)
+        f = np.full(n, f_hz)
+        gs = (0.0, 0.5, -0.5j)
+        gm = [self.gin(p, f, bl, bc, st[:, 2], np.full(n, g, dtype=complex)) for g in gs]
+        bb = gm[0]
+        # gamma_k (c g_k + 1) = a g_k + b for the two other loads: a g_k - c g_k gamma_k = gamma_k - b.
+        g1, g2 = gs[1], gs[2]
+        r1, r2 = gm[1] - bb, gm[2] - bb
+        det = g1 * (-g2 * gm[2]) - (-g1 * gm[1]) * g2
+        a = (r1 * (-g2 * gm[2]) - (-g1 * gm[1]) * r2) / det
+        c = (g1 * r2 - g2 * r1) / det
+        out = np.stack([a, bb, c], axis=1)
+        out[_bypass(st)] = (1.0, 0.0, 0.0)
+        return out
 
 
-def _predict(co: np.ndarray, byp: np.ndarray, f_hz, g, p: np.ndarray, z0: float, grid: bool = False) -> np.ndarray:
-    """Readings |gamma| of states (net coefficients co) on loads g, with the extras p:
-    node strays around the network (not on the bypass relay), then the coupler as
-    fit-box models it (leakage spoiling both ports, gain ratio, offset)."""
+def _predict(md: BoxModel, co: np.ndarray, byp: np.ndarray, f_hz, g, x: np.ndarray,
+             grid: bool = False) -> np.ndarray:
+    """Readings |gamma| of states (Moebius coefficients co, strays included) on loads g."""
     a, b, c = co[:, 0], co[:, 1], co[:, 2]
     if grid:  # every reading on each of many loads (the grid start): shape (readings, loads)
         a, b, c, byp = a[:, None], b[:, None], c[:, None], np.asarray(byp)[:, None]
-    w = 2 * np.pi * np.asarray(f_hz) * z0 * 1e-12 * 10
-    g1 = _through_shunt(g, 1j * w * p[1])
-    gn = (a * g1 + b) / (c * g1 + 1.0)
-    gin = np.where(byp, g, _through_shunt(gn, 1j * w * p[0]))
-    d = (np.asarray(f_hz) / 28e6) * (p[3] + 1j * p[4])
-    ratio = np.abs(gin + d) / np.abs(1 + gin * d)
-    return np.sqrt(np.exp(2 * p[2]) * ratio ** 2 + (p[5] * 0.1) ** 2)
+    gin = np.where(byp, g, (a * g + b) / (c * g + 1.0))
+    return md.read(gin, f_hz, x)
 
 
 def _g_of(q: np.ndarray) -> complex:
@@ -198,17 +304,20 @@ def leak_at(leak_cal: float, f_hz: float) -> float:
     return max(LEAK_FLOOR, leak_cal * f_hz / LEAK_CAL_HZ)
 
 
+_HP = 1e-5  # step of the numerical derivatives in the model's parameters
+
+
 class LoadSolver:
-    """Solves tunes' traces for their loads on one bank (the board's element values)."""
+    """Solves tunes' traces for their loads on one box model (the board's element values,
+    with the strays and coupler learned from the logbook when there are enough tunes)."""
 
     def __init__(self, bank: lnet.Bank, element_sigma: float, leak_cal: float = LEAK_DEFAULT,
-                 extras: BoxExtras | None = None):
+                 extras: BoxModel | None = None):
         self.bank = bank
-        self.extras = extras or BoxExtras.unknown(leak_cal)
+        self.model = extras or BoxModel.unknown(bank, leak_cal, element_sigma)
+        self.extras = self.model
         self.element_sigma = element_sigma
         self.leak_cal = leak_cal
-        n = bank.nl + bank.nc
-        self.perturbed = [_bank_scaled(bank, k, _H) for k in range(n)]
         r = np.linspace(0.0, 0.995, 34)
         th = np.linspace(0, 2 * np.pi, 96, endpoint=False)
         self._grid = (r[:, None] * np.exp(1j * th[None, :])).ravel()
@@ -222,25 +331,43 @@ class LoadSolver:
                 return est
         return self._solve_best(tr)
 
-    # -- three or more readings: weighted least squares ---------------------------
-    def _solve_circles(self, tr: Trace) -> LoadEstimate | None:
-        z0 = self.bank.z0
-        co = _net_coefs(self.bank, tr.freq_hz, tr.states)
+    def _perturbed(self, f: float, states: np.ndarray):
+        """For each model parameter i: (p + h e_i, its coefficients, p - h e_i, its coefficients)."""
+        md = self.model
+        out = []
+        for i in range(len(md.p)):
+            dp = np.zeros(len(md.p))
+            dp[i] = _HP
+            out.append((md.p + dp, md.coefs(md.p + dp, f, states), md.p - dp, md.coefs(md.p - dp, f, states)))
+        return out
+
+    def fit_q(self, tr: Trace, co: np.ndarray | None = None):
+        """The load (tanh parametrisation) that best explains the trace's readings, and the
+        residual function it was fitted with; None for a degenerate trace."""
+        md = self.model
+        co = md.coefs(md.p, tr.freq_hz, tr.states) if co is None else co
         byp = _bypass(tr.states)
         m = np.asarray(tr.gamma, dtype=float)
-        sig = self.extras.reading_sigma
-        p0 = self.extras.p
+        sig = md.reading_sigma
+        x0 = md.extras()
         f = tr.freq_hz
         # Start: the best point of a dense grid over the reflection disc (no basin missed).
-        pred = _predict(co, byp, f, self._grid, p0, z0, grid=True)
+        pred = _predict(md, co, byp, f, self._grid, x0, grid=True)
         j = int(np.argmin(((pred - m[:, None]) ** 2).sum(axis=0)))
         q0 = _q_of(complex(self._grid[j]))
 
-        def resid(q, co=co, p=p0):
-            return (_predict(co, byp, f, _g_of(q), p, z0) - m) / sig
+        def resid(q, co=co, x=x0):
+            return (_predict(md, co, byp, f, _g_of(q), x) - m) / sig
 
         sol = least_squares(resid, q0, method="lm", xtol=1e-10, ftol=1e-10)
-        q = sol.x
+        return sol.x, resid
+
+    # -- three or more readings: weighted least squares ---------------------------
+    def _solve_circles(self, tr: Trace) -> LoadEstimate | None:
+        md = self.model
+        z0 = self.bank.z0
+        m = np.asarray(tr.gamma, dtype=float)
+        q, resid = self.fit_q(tr)
         r0 = resid(q)
         jac = np.empty((len(m), 2))
         for i in range(2):
@@ -254,17 +381,13 @@ class LoadSolver:
         dof = len(m) - 2
         birge = max(1.0, float(r0 @ r0) / dof) if dof >= 3 else 1.0
         cov_q_rand = hinv * birge
-        # Systematic errors through the solution: dq = -H^-1 J^T dr/dnuisance, the
-        # nuisances being the box's extras (with their covariance) and each element value.
-        jp = np.empty((len(m), N_EXTRAS))
-        for i in range(N_EXTRAS):
-            dp = np.zeros(N_EXTRAS)
-            dp[i] = 1e-5
-            jp[:, i] = (resid(q, p=p0 + dp) - resid(q, p=p0 - dp)) / 2e-5
-        je = np.array([(resid(q, co=_net_coefs(pb, f, tr.states)) - r0) / _H for pb in self.perturbed]).T
+        # Systematic errors through the solution: dq = -H^-1 J^T dr/dp, p the box model's
+        # parameters (element values, strays, coupler) with their covariance.
+        ne = md.ne
+        jp = np.array([(resid(q, co=cp, x=pp[ne:]) - resid(q, co=cm, x=pm[ne:])) / (2 * _HP)
+                       for pp, cp, pm, cm in self._perturbed(tr.freq_hz, tr.states)]).T
         kp = -hinv @ jac.T @ jp
-        ke = -hinv @ jac.T @ je * self.element_sigma
-        cov_q_sys = kp @ self.extras.cov @ kp.T + ke @ ke.T
+        cov_q_sys = kp @ md.cov @ kp.T
         jz = self._jz(q, z0)
         g = _g_of(q)
         return LoadEstimate(tr.freq_hz, _z_of(g, z0), jz @ cov_q_rand @ jz.T, jz @ cov_q_sys @ jz.T, len(m))
@@ -292,115 +415,151 @@ class LoadSolver:
         m = float(tr.gamma[i])
         z0 = self.bank.z0
         f = tr.freq_hz
-        p0 = self.extras.p.copy()
-        p0[5] = 0.0  # the offset only lifts a zero reading
+        md = self.model
+        ne = md.ne
 
-        def g_match(co, p):
-            # gamma_in(g) = 0 is linear in g for each Moebius stage: invert stage by stage.
-            w = 2 * np.pi * f * z0 * 1e-12 * 10
-            y_in, y_out = 1j * w * p[0], 1j * w * p[1]
-            d = (f / 28e6) * (p[3] + 1j * p[4])
-            gin = -d  # the reading is zero where gamma_in + d is
-            gn = (gin * (2 + y_in) + y_in) / (2 - y_in - y_in * gin)  # undo the input stray
+        def g_match(co, x):
+            # The reading is zero where gamma_in + d is: invert the state's Moebius map.
+            d = (f / 28e6) * (x[_DRE] + 1j * x[_DIM])
+            gin = -d
             a, b, c = co[0]
-            g1 = (b - gn) / (gn * c - a)
-            return (g1 * (2 + y_out) + y_out) / (2 - y_out - y_out * g1)
+            return (b - gin) / (gin * c - a)
 
-        co = _net_coefs(self.bank, f, st)
-        g = g_match(co, p0)
+        co = md.coefs(md.p, f, st)
+        g = g_match(co, md.extras())
         if not abs(g) < 1.0:
             return None  # the reading cannot be of a passive load through this state
         dzdg = 2 * z0 / (1 - g) ** 2
-        # d g / d gamma_in, numerically, for the circle's spread.
         a, b, c = co[0]
         k = (a - b * c) / (a * a)
         gain = abs(dzdg * k) ** 2 / 2
         # The reading's noise averages over repeated tunes; where on its circle the load
         # lies does not (the same state reads alike every time).
-        cov_rand = np.eye(2) * gain * self.extras.reading_sigma ** 2
+        cov_rand = np.eye(2) * gain * md.reading_sigma ** 2
         cov_own = np.eye(2) * gain * m * m
-        cov_sys = cov_own.copy()
         cols = []
-        for i in range(N_EXTRAS):
-            dp = np.zeros(N_EXTRAS)
-            dp[i] = 1e-5
-            dz = dzdg * (g_match(co, p0 + dp) - g_match(co, p0 - dp)) / 2e-5
+        for pp, cp, pm, cm in self._perturbed(f, st):
+            dz = dzdg * (g_match(cp, pp[ne:]) - g_match(cm, pm[ne:])) / (2 * _HP)
             cols.append([dz.real, dz.imag])
         jp = np.array(cols).T
-        cov_sys += jp @ self.extras.cov @ jp.T
-        for pb in self.perturbed:
-            dz = dzdg * (g_match(_net_coefs(pb, f, st), p0) - g) / _H * self.element_sigma
-            v = np.array([dz.real, dz.imag])
-            cov_sys += np.outer(v, v)
+        cov_sys = cov_own + jp @ md.cov @ jp.T
         return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma), cov_own=cov_own)
 
 
+LEARN_MAX_NFEV = 100  # the fit's evaluations: about 20-35 s for 300 traces on one core
+COMMON_SCALE_SIGMA = 0.03  # a shared scale per bank the model leaves open (see learn_extras)
+# Fewer multi-reading tunes than this (some 300 readings) leave the model's 24 numbers to the
+# priors: the element values are then held at the board's (fit-box itself asks for 20 uses per
+# element) and only the strays and the coupler are learned.
+MIN_LEARN_TRACES = 30
+SPLIT = False  # delete-half on the bench: coverage 0.68 -> 0.68 without the shared scale, not worth twice the time
+MIN_HELD_TRACES = 8  # below it nothing is learned (the strays and coupler need a few tunes)
+
+
 def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DEFAULT,
-                 max_traces: int = 300) -> BoxExtras:
-    """The box's node strays and coupler, learned from its tunes as fit-box learns the
-    elements: non-linear least squares over every multi-reading trace at once (each with
-    its own load), the element values held.  The strays show through the bypass readings
-    (the antenna alone) against the network's; the coupler through the spread of states.
-    Their covariance is the fit's (Gauss-Newton, scaled by the residual), so the curve's
-    uncertainty carries how well they are known.  Too few traces: nothing is learned."""
+                 max_traces: int = 300, element_sigma: float = ELEMENT_SIGMA_LEARNED, p0=None,
+                 det: Detectors | None = None, split: bool | None = None) -> BoxModel:
+    """The box as its tunes show it, learned as fit-box learns the elements but with the
+    strays in the model: non-linear least squares over every multi-reading trace at once
+    (each with its own load) for the element values (a prior at the board's values, with
+    element_sigma), the node strays, the open-contact and lead strays and the coupler.
+    The strays show through the bypass readings (the antenna alone) against the network's
+    and through how the elements' effect changes with frequency; the coupler through the
+    spread of states.  Their covariance is the fit's (Gauss-Newton, scaled by the
+    residual), so the curve's uncertainty carries how well they are known.  Too few
+    traces: nothing is learned."""
     from scipy.sparse import lil_matrix
 
     trs = [t for t in traces if len(t.gamma) >= 3][:max_traces]
-    unknown = BoxExtras.unknown(leak_cal)
-    if len(trs) < 8:
+    unknown = BoxModel.unknown(bank, leak_cal, element_sigma, det)
+    if len(trs) < MIN_HELD_TRACES:
         return unknown
-    z0 = bank.z0
-    co = np.concatenate([_net_coefs(bank, t.freq_hz, t.states) for t in trs])
-    byp = np.concatenate([_bypass(t.states) for t in trs])
+    # Few tunes: the strays and coupler only, the element values held at the board's.
+    held = len(trs) < MIN_LEARN_TRACES
+    nl, nc, ne = bank.nl, bank.nc, bank.nl + bank.nc
+    npar = ne + N_EXTRAS
+    st = np.concatenate([t.states for t in trs])
+    bl, bc, sh = _bits(st[:, 0], nl), _bits(st[:, 1], nc), st[:, 2]
+    byp = _bypass(st)
     f = np.concatenate([np.full(len(t.gamma), t.freq_hz) for t in trs])
     m = np.concatenate([t.gamma for t in trs])
     owner = np.concatenate([np.full(len(t.gamma), i) for i, t in enumerate(trs)])
-    solver = LoadSolver(bank, ELEMENT_SIGMA_LEARNED, leak_cal, unknown)
-    q0 = []
-    for t in trs:
-        e = solver._solve_circles(t)
-        q0.append(_q_of((e.z - z0) / (e.z + z0)) if e is not None else np.zeros(2))
+    if p0 is None:
+        # Start inside the bounds, at small strays of the usual kind (common practice), not at
+        # zero where a bound holds them: the fit finds the box's own from there.
+        p0 = np.zeros(ne + N_EXTRAS)
+        p0[ne + _CIN] = p0[ne + _COUT] = 0.4
+        p0[ne + _CREL] = 0.5
+        p0[ne + _LEAD] = 1.0
+    start = BoxModel(bank, np.asarray(p0, float), unknown.cov, det=det)
+    solver = LoadSolver(bank, element_sigma, leak_cal, start)
+    q0 = [solver.fit_q(t)[0] for t in trs]
     k = len(trs)
     prior_sd = np.sqrt(np.diag(unknown.cov))
+    # Held: the element values, the contact and lead strays and the detectors stay at their
+    # start (a few tunes cannot tell them from the loads); the node strays and the leakage are learned.
+    fixed = np.r_[np.arange(ne), ne + np.array([_CREL, _LEAD, _GF, _GR, _OFF, _LP])] if held else np.array([], int)
+    prior_sd[fixed] = 1e-4
 
     def resid(x):
-        p = x[:N_EXTRAS]
-        q = x[N_EXTRAS:].reshape(k, 2)
+        p = x[:npar]
+        q = x[npar:].reshape(k, 2)
         v = q[:, 0] + 1j * q[:, 1]
         a = np.abs(v)
         g = np.where(a > 1e-12, np.tanh(a) / np.maximum(a, 1e-12), 1.0) * v
-        pred = _predict(co, byp, f, g[owner], p, z0)
-        # A weak prior on the extras keeps the ones the traces cannot see where they were.
-        return np.concatenate([(pred - m) / READING_SIGMA, p / (3 * prior_sd)])
+        gin = np.where(byp, g[owner], unknown.gin(p, f, bl, bc, sh, g[owner]))
+        pred = unknown.read(gin, f, p[ne:])
+        # A prior: the elements near the board's values, the extras weakly where they were.
+        pr = p / prior_sd
+        pr[ne:] /= 3
+        return np.concatenate([(pred - m) / READING_SIGMA, pr])
 
-    sp = lil_matrix((len(m) + N_EXTRAS, N_EXTRAS + 2 * k), dtype=int)
+    sp = lil_matrix((len(m) + npar, npar + 2 * k), dtype=int)
     for r in range(len(m)):
-        sp[r, :N_EXTRAS] = 1
-        sp[r, N_EXTRAS + 2 * owner[r]] = 1
-        sp[r, N_EXTRAS + 2 * owner[r] + 1] = 1
-    for j in range(N_EXTRAS):
+        sp[r, :npar] = 1
+        sp[r, npar + 2 * owner[r]] = 1
+        sp[r, npar + 2 * owner[r] + 1] = 1
+    for j in range(npar):
         sp[len(m) + j, j] = 1
-    x0 = np.concatenate([np.zeros(N_EXTRAS), np.ravel(q0)])
+    x0 = np.concatenate([start.p, np.ravel(q0)])
     lo = np.full(len(x0), -np.inf)
-    lo[:2] = 0.0  # a capacitance to the chassis is never negative
-    sol = least_squares(resid, x0, jac_sparsity=sp, method="trf", loss="soft_l1", f_scale=3.0, max_nfev=100,
+    for j in (_CIN, _COUT, _CREL, _LEAD):
+        lo[ne + j] = 0.0  # capacitances and inductances are never negative
+    sol = least_squares(resid, x0, jac_sparsity=sp, method="trf", loss="soft_l1", f_scale=3.0, max_nfev=LEARN_MAX_NFEV,
                         x_scale="jac", bounds=(lo, np.inf))
     r = sol.fun[: len(m)]
     sigma = max(READING_SIGMA * float(np.sqrt(np.median(r ** 2) / 0.455)), 0.005)  # robust rms (median chi2_1)
     jac = sol.jac.toarray() if hasattr(sol.jac, "toarray") else np.asarray(sol.jac)
     try:
-        cov_all = np.linalg.inv(jac.T @ jac) * (sigma / READING_SIGMA) ** 2
+        # pinv: a trace whose readings cannot place its load leaves its own columns singular.
+        # The readings at the noise the fit shows, the priors as they were stated.
+        jd, jp = jac[: len(m)] * (READING_SIGMA / sigma), jac[len(m):]
+        cov_all = np.linalg.pinv(jd.T @ jd + jp.T @ jp)
     except np.linalg.LinAlgError:
         return unknown
-    cov = cov_all[:N_EXTRAS, :N_EXTRAS].copy()
+    cov = cov_all[:npar, :npar].copy()
     if not np.all(np.isfinite(cov)):
         return unknown
-    # The strays' values also soak up what the model leaves out (lead inductance, open
-    # relay contacts, per-element Q): measured on the bench's drawn boxes they come out a
-    # few pF off however tight the fit says they are, so they keep their prior spread.
-    cov[0, 0] += (STRAY_SIGMA_PF / 10) ** 2
-    cov[1, 1] += (STRAY_SIGMA_PF / 10) ** 2
-    return BoxExtras(sol.x[:N_EXTRAS].copy(), cov, sigma, True)
+    # What the model still leaves out (the detectors' law between the calibration's points,
+    # each element's own Q) the fit soaks up as all inductors a few per cent one way and
+    # all capacitors the other (measured on the bench's drawn boxes: 2-5 %), however tight
+    # its own covariance: a shared scale per bank keeps that spread.
+    if held:
+        cov[fixed, :] = 0.0
+        cov[:, fixed] = 0.0
+        cov[fixed, fixed] = np.diag(unknown.cov)[fixed]
+    if (SPLIT if split is None else split) and not held and len(trs) >= 2 * MIN_LEARN_TRACES:
+        # Delete-half (as fit-box --split): the fits of the even and the odd tunes differ by
+        # what the readings leave open, the model's own omissions included; half their
+        # difference, with its direction across the parameters, joins the covariance.
+        a = learn_extras(bank, trs[0::2], leak_cal, max_traces, element_sigma, sol.x[:npar], det, split=False)
+        b = learn_extras(bank, trs[1::2], leak_cal, max_traces, element_sigma, sol.x[:npar], det, split=False)
+        d = (a.p - b.p) / 2
+        cov += np.outer(d, d)
+    one_l = np.r_[np.ones(nl), np.zeros(npar - nl)]
+    one_c = np.r_[np.zeros(nl), np.ones(nc), np.zeros(N_EXTRAS)]
+    cov += COMMON_SCALE_SIGMA ** 2 * (np.outer(one_l, one_l) + np.outer(one_c, one_c))
+    return BoxModel(bank, sol.x[:npar].copy(), cov, sigma, True, det)
 
 
 def combine(ests: list[LoadEstimate]) -> CurvePoint:
@@ -493,7 +652,7 @@ def _trace_of(r: dict[str, Any]) -> Trace | None:
 
 
 def solve_records(recs: list[dict[str, Any]], bank: lnet.Bank, learned: bool,
-                  leak_cal: float = LEAK_DEFAULT, extras: BoxExtras | None = None) -> list[LoadEstimate]:
+                  leak_cal: float = LEAK_DEFAULT, extras: BoxModel | None = None) -> list[LoadEstimate]:
     """Every tune record with readings, solved for its load (in the records' order)."""
     solver = LoadSolver(bank, ELEMENT_SIGMA_LEARNED if learned else ELEMENT_SIGMA_NOMINAL, leak_cal, extras)
     out = []
@@ -550,7 +709,9 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
             continue
         leak = (sec.get("detector") or {}).get("leak", LEAK_DEFAULT)
         leak = float(leak) if isinstance(leak, (int, float)) else LEAK_DEFAULT
-        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak)
+        extras = learn_extras(bank, [t for t in (_trace_of(r) for r in recs) if t is not None], leak,
+                              element_sigma=ELEMENT_SIGMA_LEARNED if learned else ELEMENT_SIGMA_NOMINAL,
+                              det=Detectors.of_section(sec.get("detector")))
         learned_extras = learned_extras or extras.learned
         ests += solve_records(recs, bank, learned, leak, extras)
         if len(recs) > most:  # the board with the most tunes speaks for the box

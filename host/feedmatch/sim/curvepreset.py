@@ -16,7 +16,6 @@ under power.  Nothing here switches anything: `follow` sends the state in a
 
 from __future__ import annotations
 
-from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -113,12 +112,11 @@ class CurvePresets:
 
 
 def box_network(bank, extras=None) -> Network:
-    """The box as the preset computation sees it: its (learned) element values and node strays."""
-    net = Network(bank.z0, list(bank.ind), list(bank.cap), bank.ql or None, bank.qc or None)
+    """The box as the preset computation sees it: its (learned) element values and strays
+    (sim/curve.py's BoxModel, learned from the logbook), or the board's values alone."""
     if extras is not None and extras.learned:
-        cin, cout = extras.strays_pf
-        net = replace(net, stray_in_pf=max(cin, 0.0), stray_out_pf=max(cout, 0.0))
-    return net
+        return extras.network()
+    return Network(bank.z0, list(bank.ind), list(bank.cap), bank.ql or None, bank.qc or None)
 
 
 def presets_from_logbook(db: str, nominal=None, since: str | None = None,
