@@ -138,7 +138,7 @@ class Detectors:
 
     @staticmethod
     def of_section(det: dict | None) -> Detectors:
-        from fmlogic.config import DEFAULTS
+        from feedmatch.seam.logic import DEFAULTS
 
         d = DEFAULTS["detector"] | (det if isinstance(det, dict) else {})
         try:
