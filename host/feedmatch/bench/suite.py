@@ -234,7 +234,7 @@ def bench_design() -> dict[str, Any]:
 # The names --only takes: each selects the group of keys it belongs to.
 ONLY_NAMES = ("all_states_ms", "speedup_vs_skrf", "score_2000_s", "median_measurements", "tune_heap_kib",
               "nec_sweep_300_s", "boxes", "cold", "false_lock_rate", "memory_success_rate", "rp2040", "design",
-              "presets", "antenna_curve", "selftest", "coupler", "life", "fitbox")
+              "presets", "antenna_curve", "selftest", "watch", "coupler", "life", "fitbox")
 
 
 def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = False,
@@ -298,6 +298,10 @@ def run_bench(quick: bool = False, only: str | None = None, save_costs: bool = F
 
         res.update(bench_selftest(quick))
         res.update(bench_damaged(quick))
+    if want("watch"):
+        from feedmatch.bench.watch import bench_watch
+
+        res.update(bench_watch(quick))
     if want("life"):
         from feedmatch.bench.life import bench_life
         from feedmatch.sim.emulator import EmulatorMissing

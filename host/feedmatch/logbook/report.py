@@ -149,6 +149,8 @@ def health(ok: list, bin_hz: float = BOARD_DEFAULTS["memory"]["bin_hz"], bank: A
 
 
 def make_report(db: str, since: str | None = None) -> dict[str, Any]:
+    from feedmatch.logbook.watch import watch_logbook
+
     book = open_existing(db)
     rows = book.tunes(since)
     sections = book.banks()
@@ -157,7 +159,9 @@ def make_report(db: str, since: str | None = None) -> dict[str, Any]:
     widths = {k: bin_width(m) for k, m in sections.items()}
     n = sum(1 for r in rows if r["outcome"] != PRESET)
     return {"tunes": n, "bands": band_table(rows, banks, widths), "rows": rows, "banks": banks, "bin_widths": widths,
-            "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None}
+            "first": rows[0]["time"] if rows else None, "last": rows[-1]["time"] if rows else None,
+            # The passive watch: an element that stopped acting or moved, from the tunes' traces.
+            "watch": watch_logbook(rows, sections)}
 
 
 def report_lines(rep: dict[str, Any]) -> list[str]:
@@ -186,6 +190,9 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
                    f"{pct(b['memory_hit_rate'])}  {sts:<26} {flag}")
     for note in rep.get("antenna_notes") or []:
         out.append(f"antenna: {note}")
+    from feedmatch.logbook.watch import watch_lines
+
+    out += watch_lines(rep.get("watch") or {})
     presets = sum(b["presets"] for b in rep["bands"])
     be = [b for b in rep["bands"] if b.get("best_effort")]
     if be:
@@ -361,6 +368,9 @@ def station_view(db: str, last: int = 2000) -> dict[str, Any]:
                 g = complex(gamma(z, Z0_OHM))
                 # [re, im, side]: side 0 the capacitor on the transmitter side, 1 on the antenna side.
                 smith[r["band"]].append([round(g.real, 4), round(g.imag, 4), int(r["after_shunt"])])
+    from feedmatch.logbook.watch import watch_lines
+
     return {"tunes": rep["tunes"], "bands": rep["bands"], "series": series, "smith": smith,
             "lines": report_lines(rep), "band_order": _band_order(set(series) | set(smith)),
-            "target_swr": TARGET_SWR}
+            "target_swr": TARGET_SWR, "watch": watch_lines(rep.get("watch") or {}),
+            "watch_flag": any(bool(w.get("finding")) for w in (rep.get("watch") or {}).values())}

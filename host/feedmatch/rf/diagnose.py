@@ -272,7 +272,6 @@ def _refine(m: Model, r: Readings, hyp, scale0: float, g0: complex,
     drift = hyp[1] == "drift"
     di = ((0 if hyp[0][0] == "L" else nl) + int(hyp[0][1:])) if drift else -1
     k_lo = 10 ** (-GAIN_TOL_DB / 20)
-    best: tuple[float, dict[str, Any]] = (np.inf, {})
     lo = np.concatenate([[-0.995, -0.995, -10.0, k_lo], np.full(nl + nc, 0.02)])
     hi = np.concatenate([[0.995, 0.995, 10.0, 1 / k_lo], np.full(nl + nc, 5.0)])
     xs = np.concatenate([[0.05, 0.05, 0.3, 0.02], np.full(nl + nc, TOL)])
@@ -297,26 +296,23 @@ def _refine(m: Model, r: Readings, hyp, scale0: float, g0: complex,
                 if c < a_best[0]:
                     a_best = (c, np.concatenate([sa.x, s0]))
         x_start = a_best[1]
-    for _ in (0,):
-        x0 = np.clip(x_start, lo + 1e-6, hi - 1e-6)
-        sol = least_squares(fit.residuals, x0, bounds=(lo, hi), x_scale=xs)
-        chi2 = float(np.sum(sol.fun ** 2))
-        if chi2 < best[0]:
-            info = {"load_gamma": complex(sol.x[0], sol.x[1]), "phase": float(sol.x[2]),
-                    "k": float(sol.x[3]), "scales": sol.x[4:].copy(), "scale": 1.0, "scale_sigma": 0.0,
-                    "resid": sol.fun[:len(fit.meas)], "pred": fit.predict(sol.x), "x": sol.x}
-            # One-sigma uncertainty of each scale from the fit's curvature
-            # (readings and priors: at most TOL where the readings say nothing).
-            try:
-                cov = np.linalg.pinv(sol.jac.T @ sol.jac)
-                info["scale_sigmas"] = np.sqrt(np.maximum(np.diag(cov)[4:], 0.0))
-            except np.linalg.LinAlgError:
-                info["scale_sigmas"] = np.full(nl + nc, np.inf)
-            if drift:
-                info["scale"] = float(sol.x[4 + di])
-                info["scale_sigma"] = float(info["scale_sigmas"][di])
-            best = (chi2, info)
-    return best
+    x0 = np.clip(x_start, lo + 1e-6, hi - 1e-6)
+    sol = least_squares(fit.residuals, x0, bounds=(lo, hi), x_scale=xs)
+    chi2 = float(np.sum(sol.fun ** 2))
+    info = {"load_gamma": complex(sol.x[0], sol.x[1]), "phase": float(sol.x[2]),
+            "k": float(sol.x[3]), "scales": sol.x[4:].copy(), "scale": 1.0, "scale_sigma": 0.0,
+            "resid": sol.fun[:len(fit.meas)], "pred": fit.predict(sol.x), "x": sol.x}
+    # One-sigma uncertainty of each scale from the fit's curvature
+    # (readings and priors: at most TOL where the readings say nothing).
+    try:
+        cov = np.linalg.pinv(sol.jac.T @ sol.jac)
+        info["scale_sigmas"] = np.sqrt(np.maximum(np.diag(cov)[4:], 0.0))
+    except np.linalg.LinAlgError:
+        info["scale_sigmas"] = np.full(nl + nc, np.inf)
+    if drift:
+        info["scale"] = float(sol.x[4 + di])
+        info["scale_sigma"] = float(info["scale_sigmas"][di])
+    return chi2, info
 
 
 def diagnose(m: Model, r: Readings) -> dict[str, Any]:

@@ -38,6 +38,10 @@ function pct(x) { return x === null ? "-" : Math.round(100 * x) + "%"; }
 function showView(v) {
   stamp("logbook");
   $("summary").textContent = (v.lines && v.lines[0]) || (v.error ? v.error : "no logbook");
+  // The passive watch: an element that stopped acting or moved, from the tunes' traces.
+  const w = $("watch");
+  w.textContent = (v.watch || []).join("; ");
+  w.className = v.watch_flag ? "flag" : "";
   const tb = $("bands").querySelector("tbody");
   tb.innerHTML = "";
   for (const b of v.bands) {
