@@ -102,7 +102,7 @@ def _elements(m: Model, f: float, scale: np.ndarray) -> tuple[np.ndarray, np.nda
 
 def _tables(m: Model, hyps: list) -> tuple[np.ndarray, list]:
     """Per hypothesis: the element scales and the fault masks (fmlogic.selftest)."""
-    from fmlogic.selftest import masks
+    from feedmatch.seam.logic import masks
 
     nl = len(m.inductors_uh)
     sc = np.ones((len(hyps), nl + len(m.capacitors_pf)))
