@@ -1,6 +1,6 @@
 # A box's life, run on the emulated Pico or the MicroPython unix port: the real
 # controller starts on a flash holding a full record store, answers `status`,
-# then tunes in a row (fixed loads through the firmware's own network model, a
+# then tunes in a row (set loads through the firmware's own network model, a
 # virtual clock for the controller) while the host's backfill asks for records
 # after every tune.  Input: life.json; output lines (parsed by bench/life.py):
 #   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
