@@ -38,6 +38,7 @@ CASES = [
     (["memory", "--port", "loop://", "--import", "nothere.json"], "memory file not found: nothere.json"),
     (["memory", "--port", "loop://", "--export", "a.json", "--import", "b.json"], "give one of --export"),
     (["loads", "--antenna", "x.json", "--points", "0"], "--points needs 1 to 10000"),
+    (["loads", "--smith", "5", "--points", "0"], "--points needs 1 to 10000"),  # refused, not ignored
     (["bench", "--only", "typo"], "--only: unknown typo"),
     (["virtual-board", "--carrier", "abc"], "--carrier must be W@Hz or W@band"),
     (["virtual-board", "--heap", "8"], "--heap must be 64 to 1048576 KB"),

@@ -26,6 +26,9 @@ def cmd_loads(a: argparse.Namespace) -> int:
         output_file(a.out, "--out", (".csv",))
     if sum(x is not None for x in (a.smith, a.antenna, a.verticals)) != 1:
         raise InputError("give exactly one of --smith N, --verticals N or --antenna FILE")
+    # Checked whatever the source: an option given a value it cannot take is refused, not ignored.
+    if not 1 <= a.points <= 10000:
+        raise InputError(f"--points needs 1 to 10000 frequencies per band, got {a.points}")
     if a.verticals is not None:
         if not 1 <= a.verticals <= MAX_VERTICALS:
             raise InputError(f"--verticals needs a count from 1 to {MAX_VERTICALS}")
@@ -41,8 +44,6 @@ def cmd_loads(a: argparse.Namespace) -> int:
             raise InputError(f"--smith needs a count from 1 to {MAX_SMITH}")
         loads = smith_loads(a.smith, seed=a.seed)
     else:
-        if not 1 <= a.points <= 10000:
-            raise InputError(f"--points needs 1 to 10000 frequencies per band, got {a.points}")
         ant = load_antenna(a.antenna)
         names = [b.name for b in bands.HF_BANDS] if a.bands == "all" else a.bands.split(",")
         loads = []

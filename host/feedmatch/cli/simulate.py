@@ -10,6 +10,7 @@ from feedmatch.cli.common import (
 )
 from feedmatch.cli.output import emit_json
 from feedmatch.errors import InputError
+from feedmatch.seam.bank import SIDES
 
 
 def _parse_load(text: str) -> complex:
@@ -100,7 +101,7 @@ def _parser_simulate(sub) -> None:
     s.add_argument("--antenna", help="antenna JSON or .s1p file instead of --load")
     s.add_argument("--l-code", type=int, help="inductor relay code (0 = no inductance; bit n = inductor n)")
     s.add_argument("--c-code", type=int, help="capacitor relay code (0 = no capacitance; bit n = capacitor n)")
-    s.add_argument("--shunt", default="ant", choices=["tx", "ant"],
+    s.add_argument("--shunt", default="ant", choices=list(SIDES),
                    help="side of the network the capacitor is on (default ant)")
     s.add_argument("--best", action="store_true", help="search all states exhaustively")
     s.add_argument("--power", type=watts, help="forward power in W for voltage/current figures")

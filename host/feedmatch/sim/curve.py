@@ -721,9 +721,10 @@ def measured_curve(db: str, since: str | None = None, until: str | None = None,
         if len(recs) > most:  # the board with the most tunes speaks for the box
             most, main_bank, main_extras, main_key = len(recs), bank, extras, key
     # The bins of that board's memory (the logger keeps its width), else the shipped ones.
-    pts = curve_points(ests, bin_width(sections.get(main_key)))
+    bin_hz = bin_width(sections.get(main_key))
+    pts = curve_points(ests, bin_hz)
     times = [e.time for e in ests if e.time]
-    return {"points": pts, "resonances": resonances(pts), "tunes": len(ests),
+    return {"points": pts, "resonances": resonances(pts), "tunes": len(ests), "bin_hz": bin_hz,
             "first": min(times) if times else None, "last": max(times) if times else None,
             "element_sigma": ELEMENT_SIGMA_LEARNED if learned_any else ELEMENT_SIGMA_NOMINAL,
             "learned": learned_any, "coupler_learned": learned_extras, "boards": sorted(by_board),
@@ -746,13 +747,15 @@ def _compare_point(ests: list[LoadEstimate]) -> tuple[complex, np.ndarray]:
     return z, cov
 
 
-def antenna_health(points: list[CurvePoint]) -> dict[str, Any]:
+def antenna_health(points: list[CurvePoint], bin_hz: float | None = None) -> dict[str, Any]:
     """Each bin's earlier tunes against its later ones (the halves of its tunes in time):
     R and X, and the resonances the two halves locate, each change judged against the
     uncertainty of the difference (the errors both periods share cancel in it).
+    bin_hz: the width of the bins the points were made with (the board's memory's, as
+    measured_curve returns it); the shipped width when None.
     Returns {"bands": {band: {"flag", "notes"}}, "notes": [antenna-wide notes]}."""
     from feedmatch.rf import bands
-    from feedmatch.seam.bank import BOARD_DEFAULTS as DEFAULTS
+    from feedmatch.seam.logic import bin_width
 
     out: dict[str, dict[str, Any]] = {}
     splits = []
@@ -793,8 +796,8 @@ def antenna_health(points: list[CurvePoint]) -> dict[str, Any]:
     early_all = [e for e in ests if (e.time or "") < cut]
     late_all = [e for e in ests if (e.time or "") >= cut]
     if early_all and late_all:
-        bin_hz = float(DEFAULTS["memory"]["bin_hz"])
-        r1, r2 = resonances(curve_points(early_all, bin_hz)), resonances(curve_points(late_all, bin_hz))
+        width = bin_hz if bin_hz else bin_width(None)
+        r1, r2 = resonances(curve_points(early_all, width)), resonances(curve_points(late_all, width))
         for a in r1:
             same = [b for b in r2 if b["kind"] == a["kind"] and b["between_hz"] == a["between_hz"]]
             if not same:
@@ -816,7 +819,7 @@ def add_antenna(rep: dict[str, Any], db: str, since: str | None = None) -> dict[
     from feedmatch.rf.network import load_network
 
     cur = measured_curve(db, since, None, nominal=load_network(None).firmware_bank())
-    h = antenna_health(cur["points"])
+    h = antenna_health(cur["points"], cur["bin_hz"])
     for b in rep.get("bands", []):
         ah = h["bands"].get(b["band"])
         if ah is not None:
