@@ -99,6 +99,7 @@ class Controller:
         self.warnings = []  # what the start found damaged and got past, in words
         self.internal_at = None  # when an internal error stopped the box (it recovers)
         self.gc_low = 0  # below this much free heap a tune's settling wait collects (0: not yet measured)
+        self.gc_settles = 0  # collections made in a settling wait since the start
         self.err_at = None  # error answers to garbage on the link: at most one per 100 ms
         self.link_busy = False
         memory.STAGE[0] = memory.BOOTS
@@ -265,6 +266,7 @@ class Controller:
         if _COLLECT and gc.mem_free() < self.gc_low:
             t = b.ticks_ms()
             self._collect()
+            self.gc_settles += 1
             ms -= b.ticks_diff(b.ticks_ms(), t)
         if ms > 0:
             b.sleep_ms(ms)

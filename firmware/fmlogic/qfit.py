@@ -153,17 +153,24 @@ def _compact(rows, n: int, dst, wmin: int) -> int:
 
 
 class Rows:
-    """The readings of one tune as rows for the kernels, preallocated."""
+    """The readings of one tune as rows for the kernels, preallocated (take one
+    with rows_for, give it back with release)."""
 
     def __init__(self, cap):
-        self.cap = cap
+        self.room = cap   # rows the buffers hold
         self.r = array("H", bytes(2 * ROW * cap))
-        self.n = 0
         self.out = array("H", bytes(12))
         self.sel = array("H", bytes(2 * ROW * cap))
-        self.m = 0      # rows in sel (the weighty ones, for fits of many readings)
         self.pts = array("H", bytes(4 * MAX_PTS))
         self.pcost = array("i", bytes(4 * (MAX_PTS + 1)))
+        self.reset(cap)
+
+    def reset(self, cap):
+        """Empty, for a tune of at most cap readings (the kernels read rows below n
+        and m only, so what an earlier tune left in the buffers is never seen)."""
+        self.cap = cap
+        self.n = 0
+        self.m = 0      # rows in sel (the weighty ones, for fits of many readings)
         self.evals = 0    # row evaluations by the kernel (the cost model counts them)
         self.calls = 0
 
@@ -278,3 +285,26 @@ def _refine(rows, n: int, cx: int, cy: int, out) -> int:
     o[3] = (cnt >> 16) & 0xFFFF
     o[4] = calls
     return e
+
+
+# One set of rows for the default budget (60 readings, + 2), allocated at import like
+# the hunt's buffers: a tune then takes no KB-sized block from the heap (on a heap
+# fragmented by a long life that is what fails first).  A tune with a larger budget,
+# or a second search alive at once, gets its own; the last one given back is kept.
+POOL_ROWS = 62
+_POOL = [Rows(POOL_ROWS)]
+
+
+def rows_for(cap):
+    """Rows for a tune of at most cap readings: the pooled set when it is large enough."""
+    r = _POOL.pop() if _POOL else None
+    if r is None or r.room < cap:
+        return Rows(cap)
+    r.reset(cap)
+    return r
+
+
+def release(rows):
+    """The tune is over: its rows go back to the pool (when it is empty)."""
+    if not _POOL:
+        _POOL.append(rows)

@@ -244,6 +244,8 @@ class Strategy:
         if rows is not None:
             out["row"] = rows.evals
             out["grid"] = rows.calls
+        elif getattr(self, "row_counts", None) is not None:
+            out["row"], out["grid"] = self.row_counts  # the rows went back to the pool
         h = getattr(self, "h", None)
         if h is not None:
             out["hyp"] = h.evals
@@ -316,6 +318,12 @@ class Strategy:
             self._gen.close()
         except Exception:
             pass
+        rows = getattr(self, "rows", None)
+        if rows is not None:
+            # Closed above: nothing reads the rows any more; their counts stay here.
+            self.row_counts = (rows.evals, rows.calls)
+            self.rows = None
+            qfit.release(rows)
 
     def _advance(self, g, first=False):
         try:
@@ -478,7 +486,7 @@ class ModelFit(Strategy):
         self.g = None
         self.h = None
         self._hn = 0
-        self.rows = qfit.Rows(budget + 2)
+        self.rows = qfit.rows_for(budget + 2)
         self._w = []
         self._wc = None
         self._wn = 0

@@ -96,6 +96,7 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
     """The script's lines (with or without the runner's '<ms> C ' prefix) into figures."""
     boot = None
     heap: list[tuple[int, int, int]] = []
+    gc_us: list[int] = []  # what each logged collection took (between tunes, the whole heap)
     tunes: list[dict[str, Any]] = []
     errors: list[str] = []
     done = None
@@ -122,13 +123,16 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
                     "imports_ms": int(p[4]), "controller_ms": int(p[5])}
         elif p[0] == "HEAP":
             pending_heap = (int(p[1]), int(p[2]))
+            if len(p) > 3:
+                gc_us.append(int(p[3]))
         elif "max free sz:" in line and pending_heap is not None:
             largest = int(line.rsplit("max free sz:", 1)[1].split()[0]) * block_bytes
             heap.append((pending_heap[0], pending_heap[1], largest))
             pending_heap = None
         elif p[0] == "TUNE":
             last_tune = {"i": int(p[1]), "state": p[2], "records": int(p[3]), "flash_end_us": int(p[4]),
-                         "journal_us": int(p[5]), "gen": int(p[6]) if len(p) > 7 else 0}
+                         "journal_us": int(p[5]), "gen": int(p[6]) if len(p) > 7 else 0,
+                         "collects": int(p[7]) if len(p) > 8 else 0}
             tunes.append(last_tune)
         elif p[0] == "ERR":
             errors.append(line)
@@ -136,7 +140,7 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
             done = (int(p[1]), int(p[2]))
         elif "Traceback" in line or ("Error" in line and p[0] != "ERR"):
             errors.append(line)
-    return {"boot": boot, "heap": heap, "tunes": tunes, "errors": errors, "done": done}
+    return {"boot": boot, "heap": heap, "gc_us": gc_us, "tunes": tunes, "errors": errors, "done": done}
 
 
 def _chip_files(work: Path, tunes: int) -> dict[str, bytes]:
@@ -255,6 +259,10 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
             out["life_min_largest_block_kib"] = round(min(h[2] for h in u["heap"]) / 1024, 1)
             out["life_largest_block_kib_first_last"] = [round(u["heap"][0][2] / 1024, 1),
                                                         round(u["heap"][-1][2] / 1024, 1)]
+        if u["tunes"]:
+            # The controller's collections in the relays' settling waits (the heap's
+            # defence against fragmentation within a cold search), per tune.
+            out["life_collects_per_tune"] = round(statistics.mean(t["collects"] for t in u["tunes"]), 2)
         out["life_unix_wall_s"] = u["wall_s"]
     c = run_chip(10 if quick else 50)
     if "skipped" in c:
@@ -284,7 +292,16 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
     out["life_chip_tunes_ok"] = done[0]
     out["life_chip_tunes"] = len(c["tunes"])
     if c["heap"]:
+        out["life_chip_free_after_start_kib"] = round(c["heap"][0][1] / 1024, 1)
         out["life_chip_min_largest_block_kib"] = round(min(h[2] for h in c["heap"]) / 1024, 1)
+        out["life_chip_largest_block_kib_first_last"] = [round(c["heap"][0][2] / 1024, 1),
+                                                         round(c["heap"][-1][2] / 1024, 1)]
+    if c["tunes"]:
+        out["life_chip_collects_per_tune"] = round(statistics.mean(t["collects"] for t in c["tunes"]), 2)
+    if c["gc_us"]:
+        # A whole collection on the chip (XIP misses charged): what the controller's
+        # collection within a tune adds to a relay step's settling wait, at most.
+        out["life_chip_collect_ms_max"] = round(max(c["gc_us"]) / 1000, 1)
     out["life_chip_wall_s"] = c["wall_s"]
     dmg = run_chip_damaged()
     if "skipped" in dmg:

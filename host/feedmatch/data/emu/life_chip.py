@@ -4,8 +4,9 @@
 # virtual clock for the controller) while the host's backfill asks for records
 # after every tune.  Input: life.json; output lines (parsed by bench/life.py):
 #   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
-#   HEAP <tune> <bytes free>, then mem_info's lines (its "max free sz")
-#   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation> MARK
+#   HEAP <tune> <bytes free> <us the collection before it took>, then mem_info's lines (its "max free sz")
+#   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation>
+#        <collections in the relays' settling waits> MARK
 # (the end of a tune: its record, the memory's save when due, the journal marked ended).
 # With "drift" in life.json each round of loads moves up one memory bin (cycling over
 # 40 bins), so every tune learns a new bin: the memory changes at every tune and its
@@ -177,8 +178,9 @@ def run():
     since = max(0, ctl.rec.seq - 3)
     for i in range(spec["tunes"]):
         if i % every == 0:
+            t = _us()
             gc.collect()
-            print("HEAP %d %d" % (i, gc.mem_free()))
+            print("HEAP %d %d %d" % (i, gc.mem_free(), _diff(_us(), t)))
             largest_free()
         ld = loads[i % len(loads)]
         board.zl = complex(ld[0], ld[1])
@@ -188,6 +190,7 @@ def run():
         board.p = 10.0
         flash[0] = flash[1] = 0
         seq = ctl.rec.seq
+        gcs = ctl.gc_settles
         try:
             for _ in range(600):
                 ctl.step()
@@ -209,9 +212,11 @@ def run():
             errors += 1
             print("ERR %d %s" % (i, repr(e)[:60]))
             board.p = 0.0
-        print("TUNE %d %s %d %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1], ctl.mem.gen))
+        print("TUNE %d %s %d %d %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1], ctl.mem.gen,
+                                                  ctl.gc_settles - gcs))
+    t = _us()
     gc.collect()
-    print("HEAP %d %d" % (spec["tunes"], gc.mem_free()))
+    print("HEAP %d %d %d" % (spec["tunes"], gc.mem_free(), _diff(_us(), t)))
     largest_free()
     print("DONE %d %d" % (ok, errors))
 
