@@ -36,8 +36,12 @@ sysdeps:
 
 # The tests; the slow ones (marked slow: the emulated RP2040, the real browser, the wheel
 # build, NEC-2 at every frequency) apart in test-slow. CI (.ci/run) runs both; test-all is one run of all.
+# make test spreads its tests over TEST_JOBS processes (pytest-xdist; most tests wait on
+# subprocesses, pseudo-terminals and sockets, so two workers halve the time on 2 cores);
+# the slow ones time an emulated chip and run one at a time.
+TEST_JOBS ?= 2
 test: $(STAMP) sysdeps
-	$(BIN)/python -m pytest -q -m "not slow"
+	$(BIN)/python -m pytest -q -n $(TEST_JOBS) -m "not slow"
 
 test-slow: $(STAMP) sysdeps
 	$(BIN)/python -m pytest -q -m slow
