@@ -977,8 +977,13 @@ def _pending(qdir):
 def _read_record(p, need=None):
     """The record in a file of its own (rec/q/<seq>), or None when missing or damaged."""
     try:
+        # MicroPython's readline(n) takes n bytes from the heap before it reads: bounded
+        # by the file's size, a record asks for its own length (a few hundred bytes), not
+        # for a 4 KB block a long-lived heap may no longer have (measured on the emulated
+        # Pico: the backfill's `records` failed with MemoryError allocating 4096 bytes).
+        n = os.stat(p)[6]
         with open(p, "rb") as f:
-            line = f.readline(4096)
+            line = f.readline(n if n < 4096 else 4096)
     except OSError:
         return None
     if not line.endswith(b"\n") or (need is not None and line.find(need) < 0):

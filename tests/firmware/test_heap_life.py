@@ -8,8 +8,12 @@ largest free block every 100) is the bench's group `life`."""
 
 from __future__ import annotations
 
+import os
+import subprocess
+
 import pytest
 from feedmatch.bench.life import DRIFT_HZ, run_unix, unix_port
+from feedmatch.resources import FIRMWARE
 
 
 def test_cold_searches_in_a_row_never_run_the_small_heap_out():
@@ -24,3 +28,39 @@ def test_cold_searches_in_a_row_never_run_the_small_heap_out():
     # the 1 KB a cold search's dicts and strings ask for in one piece.
     assert len(r["heap"]) == 5
     assert min(h[2] for h in r["heap"]) > 4096
+
+
+def test_a_waiting_record_is_read_from_a_heap_with_no_4_kb_block(micropython, tmp_path):
+    """MicroPython's readline(n) takes n bytes from the heap before reading (py/stream.c,
+    vstr_init(max_size)): a record waiting in rec/q is read with its file's size as the
+    bound, so the backfill's `records` works on a heap cut into 2 KB pieces (on the emulated
+    Pico it failed with MemoryError allocating 4096 bytes after a few dozen cold tunes)."""
+    from fmlogic import memory
+
+    p = tmp_path / "rec7"
+    p.write_bytes(memory._record_line({"seq": 7, "freq_hz": 7.1e6, "trace": list(range(40))}))
+    code = f"""
+import gc
+from fmlogic import memory
+gc.collect()
+keep = []
+gone = []
+try:
+    while True:
+        keep.append(bytearray(2000))
+        gone.append(bytearray(2000))
+except MemoryError:
+    pass
+gone = None
+gc.collect()
+try:
+    r = memory._read_record({str(p)!r})
+    print("READ", r["seq"] if r else None, gc.mem_free() > 8000)
+except MemoryError as e:
+    print("MEMERR", e)
+"""
+    env = dict(os.environ, MICROPYPATH=f"{FIRMWARE}:.frozen")
+    r = subprocess.run([micropython, "-X", "heapsize=200K", "-c", code], capture_output=True, text=True,
+                       timeout=60, env=env, cwd=str(FIRMWARE))
+    # Read whole, with plenty of heap free in pieces (none of them 4 KB).
+    assert r.stdout.split() == ["READ", "7", "True"], r.stdout + r.stderr

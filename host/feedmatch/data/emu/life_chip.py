@@ -201,11 +201,16 @@ def run():
                 ctl.step()
             # The logger's backfill, as it goes: the records since the last it has.
             ans = _answer(board, ctl, 2 + i % 60000, "records", {"since": since})
-            if ans and ans["records"]:
-                since = ans["records"][-1]["seq"]
+            got = ans.get("records") if isinstance(ans, dict) else None
+            if got:
+                since = got[-1]["seq"]
             if ctl.state == "fault" or ctl.rec.seq == seq:
                 errors += 1
                 print("ERR %d %s" % (i, ctl.why[:120]))
+            elif got is None:
+                # The backfill's request answered with an error (or not at all).
+                errors += 1
+                print("ERR %d records: %s" % (i, repr(ans)[:120]))
             else:
                 ok += 1
         except Exception as e:  # a MemoryError escaping the controller's own guard
