@@ -294,3 +294,28 @@ def test_the_box_model_of_a_state_is_the_stray_network_and_the_detectors_invert_
     x = np.zeros(len(p) - ne)
     gm = np.array([0.02, 0.1, 0.5, 0.9])
     assert np.allclose(det.reading(np.full(4, 10.0), 10.0 * gm ** 2, x), gm, rtol=1e-9)
+
+
+def test_a_zero_reading_is_censored_at_the_reflected_detectors_floor():
+    """The board reads reflected counts at or below its floor as no power (fmlogic.swr's
+    Calibration: a zero reading).  The curve's model puts the floor where the firmware's own
+    meter does, compares a zero reading only with what a prediction exceeds it by, and gives a
+    one-reading tune that read zero the floor's circle as its spread, not a circle of zero."""
+    from feedmatch.sim.curve import Detectors, LoadSolver, censor
+    from fmlogic import lnet
+    from fmlogic.swr import Calibration, Meter, reading_gamma
+
+    pts = [(10.121, 0.05), (120.0, 1.0), (900.0, 20.0), (3000.0, 200.0)]
+    det = Detectors(pts, pts, floor_counts=2.0)
+    x = np.zeros(10)
+    gfl = float(det.floor_gamma(np.asarray(10.0), x))
+    meter = Meter(Calibration(pts, 2.0), Calibration(pts, 2.0), 0.5)
+    cf = float(np.exp(np.interp(np.log(10.0), np.log([w for _c, w in pts]), np.log([c for c, _w in pts]))))
+    assert reading_gamma(*meter.powers(cf, 2.0)) == 0.0  # at the floor: no power
+    assert reading_gamma(*meter.powers(cf, 2.0001)) == pytest.approx(gfl, rel=1e-3)  # just above it
+    pred = np.array([0.5 * gfl, 2.0 * gfl, 0.3])
+    got = censor(pred, np.array([0.0, 0.0, 0.25]), np.full(3, gfl))
+    assert got[0] == 0.0 and got[1] == pytest.approx(gfl) and got[2] == 0.3
+    solver = LoadSolver(lnet.Bank(Z0, IND, CAP), 0.02, leak_cal=0.02)
+    e = solver.solve(_trace([0.0], [(12, 24, 0)]))
+    assert e is not None and e.cov_own is not None and e.cov_own[0, 0] > 0.0
