@@ -33,6 +33,13 @@ class Board:
         self.ctl_buf = b""
         self.ser = _connect(host, ser_port)
         self.ser.setblocking(False)
+        # The link's receive buffer, allocated once: recv(4096) would take a fresh 4 KB
+        # block at every poll, which a long-lived small heap (--heap 256) may not have
+        # (then no request is ever read).  MicroPython's socket reads into it with
+        # readinto (None: nothing waiting), CPython's with recv_into.
+        self.rbuf = bytearray(4096)
+        self.rmv = memoryview(self.rbuf)
+        self._rx = getattr(self.ser, "recv_into", None) or self.ser.readinto
 
     def _ask(self, line):
         self.ctl.send(line.encode() + b"\n")
@@ -76,12 +83,12 @@ class Board:
 
     def link_read(self):
         try:
-            data = self.ser.recv(4096)
+            n = self._rx(self.rbuf)
         except OSError:
             return None
-        if data == b"":
-            return None
-        return data
+        if not n:
+            return None  # nothing waiting, or the host closed the link
+        return bytes(self.rmv[:n])
 
     def link_write(self, data):
         view = memoryview(data)

@@ -64,3 +64,20 @@ except MemoryError as e:
                        timeout=60, env=env, cwd=str(FIRMWARE))
     # Read whole, with plenty of heap free in pieces (none of them 4 KB).
     assert r.stdout.split() == ["READ", "7", "True"], r.stdout + r.stderr
+
+
+def test_a_virtual_board_on_the_small_heap_tunes_while_a_logger_backfills():
+    """The firmware as a virtual board at --heap 256 on the single-precision port, a real
+    `feedmatch log` process on its port: every record the board makes reaches the logbook
+    once, with no internal error and no reset (its link once read with recv(4096), a fresh
+    4 KB block at every poll: on this heap no request was ever read and the watchdog reset
+    it into the safe mode)."""
+    from feedmatch.bench.life import run_virtual_log
+
+    if unix_port()[1] != "float32":
+        pytest.skip("the single-precision unix port is not beside the checkout (../shared/rp2040)")
+    r = run_virtual_log(12)
+    assert r["made"] >= 12 and r["logged"] == r["made"], r
+    assert r["missing"] == 0 and r["doubled"] == 0, r
+    assert r["internal"] == 0 and r["memory_errors_in_log"] == 0 and r["resets"] == 0, r
+    assert r["ok"] >= 11, r  # locked or best-effort (a carrier may drop mid-tune: aborted)

@@ -15,6 +15,8 @@ board presenting set loads and the host's backfill asking for records after ever
 
 Both runs move the loads up one memory bin each round (DRIFT_HZ): every tune is
 a cold search that stores a new bin, the worst case for the heap and the flash.
+A third run (run_virtual_log) puts the firmware on the same heap as a virtual board
+and a real `feedmatch log` process on its port, backfilling while the tunes run.
 """
 
 from __future__ import annotations
@@ -239,6 +241,93 @@ def run_unix(tunes: int, heap_kib: int = UNIX_HEAP_KIB, every: int = 100, microp
     return res
 
 
+# The demo station's frequencies the log run's tunes go round (Hz), each round one memory
+# bin higher (DRIFT_HZ) over LOG_BINS bins (300 kHz: the demo vertical stays matchable).
+LOG_BANDS = (7.04e6, 10.125e6, 14.074e6, 18.118e6, 21.225e6, 24.94e6, 28.4e6, 7.15e6)
+LOG_BINS = 12
+
+
+def run_virtual_log(tunes: int, heap_kib: int = UNIX_HEAP_KIB, tune_timeout_s: float = 6.0) -> dict[str, Any]:
+    """The firmware as a virtual board (its own MicroPython process at heap_kib, the
+    single-precision port when there) on the demo station, with a real `feedmatch log`
+    process on its port backfilling while the tunes run: a new memory bin for each of the
+    first len(LOG_BANDS) * LOG_BINS tunes, then recalls; the operator's carrier keyed and
+    dropped as a user would (SimulatedBoard.play).  Real time: about 0.6 s a tune."""
+    import signal
+    import sqlite3
+    import sys
+
+    from feedmatch.sim.station import Step, load_station
+    from feedmatch.sim.virtual import VirtualBoard
+
+    mp, kind = unix_port()
+    if mp is None:
+        return {"skipped": "the micropython unix port is missing"}
+    st = load_station(None)
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        vs = VirtualBoard(st, work / "board", heap_kib=heap_kib, micropython=mp)
+        db = work / "life.sqlite"
+        t0 = time.monotonic()
+        pty = vs.start()
+        lg = None
+        try:
+            feedmatch = Path(sys.executable).parent / "feedmatch"
+            cmd = [str(feedmatch)] if feedmatch.exists() else [sys.executable, "-m", "feedmatch"]
+            lg = subprocess.Popen([*cmd, "log", "--port", pty, "--db", str(db), "--json"],
+                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+            time.sleep(1.0)
+            for i in range(tunes):
+                f = LOG_BANDS[i % len(LOG_BANDS)] + ((i // len(LOG_BANDS)) % LOG_BINS) * DRIFT_HZ
+                vs.play(Step(f, 10.0, 0.0, 0.0), 1.5, tune_timeout_s)
+            made = vs.records_on_flash()
+            resets = vs.resets
+            # The logger catches up with what the board holds, then stops as on Ctrl-C.
+            t_end = time.monotonic() + 60
+            logged = 0
+            while time.monotonic() < t_end:
+                if db.exists():
+                    try:
+                        con = sqlite3.connect(db)
+                        logged = con.execute("SELECT COUNT(*) FROM tunes").fetchone()[0]
+                        con.close()
+                    except sqlite3.Error:
+                        pass
+                if logged >= made:
+                    break
+                time.sleep(0.5)
+            lg.send_signal(signal.SIGTERM)
+            out, err = lg.communicate(timeout=30)
+        finally:
+            if lg is not None and lg.poll() is None:
+                lg.kill()
+                lg.wait()
+            vs.stop()
+        wall = time.monotonic() - t0
+        if not db.exists():
+            return {"skipped": f"no logbook: {err.strip()[-300:]} {out.strip()[-200:]}", "made": made}
+        con = sqlite3.connect(db)
+        rows = con.execute("SELECT seq, outcome, reason FROM tunes ORDER BY seq").fetchall()
+        con.close()
+        fw = work / "board" / "firmware.log"
+        fw_log = fw.read_text(errors="replace") if fw.exists() else ""
+    seqs = [r[0] for r in rows]
+    ok = [r for r in rows if r[1] in ("locked", "best-effort", "through")]
+    internal = [r for r in rows if "internal" in (r[2] or "") or "MemoryError" in (r[2] or "")]
+    try:
+        summary = json.loads(out.strip().splitlines()[-1]) if out.strip() else {}
+    except ValueError:
+        summary = {}
+    outcomes: dict[str, int] = {}
+    for r in rows:
+        outcomes[r[1]] = outcomes.get(r[1], 0) + 1
+    return {"tunes": tunes, "made": made, "outcomes": outcomes, "logged": len(rows),
+            "doubled": len(seqs) - len(set(seqs)),
+            "missing": len(set(range(1, made + 1)) - set(seqs)), "ok": len(ok), "internal": len(internal),
+            "memory_errors_in_log": fw_log.count("MemoryError"), "resets": resets, "logger": summary, "kind": kind,
+            "heap_kib": heap_kib, "wall_s": round(wall, 1), "stderr": err[-400:]}
+
+
 def bench_life(quick: bool = False) -> dict[str, Any]:
     """The bench keys of a box's life (see the README's table for their targets)."""
     out: dict[str, Any] = {}
@@ -264,6 +353,23 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
             # defence against fragmentation within a cold search), per tune.
             out["life_collects_per_tune"] = round(statistics.mean(t["collects"] for t in u["tunes"]), 2)
         out["life_unix_wall_s"] = u["wall_s"]
+    lg = run_virtual_log(20 if quick else 300)
+    if "skipped" in lg:
+        out["life_log_skipped"] = lg["skipped"]
+    else:
+        # The firmware as a virtual board at the same heap, a real `feedmatch log` process
+        # backfilling while the tunes run (records made on the board against those in the
+        # logbook: none missing, none twice).
+        out["life_log_tunes"] = lg["tunes"]
+        out["life_log_records_made"] = lg["made"]
+        out["life_log_records_logged"] = lg["logged"]
+        out["life_log_missing"] = lg["missing"]
+        out["life_log_doubled"] = lg["doubled"]
+        out["life_log_tunes_ok"] = lg["ok"]
+        out["life_log_internal_errors"] = lg["internal"] + lg["memory_errors_in_log"]
+        out["life_log_resets"] = lg["resets"]
+        out["life_log_heap_kib"] = lg["heap_kib"]
+        out["life_log_wall_s"] = lg["wall_s"]
     c = run_chip(10 if quick else 50)
     if "skipped" in c:
         out["life_chip_skipped"] = c["skipped"]
