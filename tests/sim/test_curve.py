@@ -319,3 +319,28 @@ def test_a_zero_reading_is_censored_at_the_reflected_detectors_floor():
     solver = LoadSolver(lnet.Bank(Z0, IND, CAP), 0.02, leak_cal=0.02)
     e = solver.solve(_trace([0.0], [(12, 24, 0)]))
     assert e is not None and e.cov_own is not None and e.cov_own[0, 0] > 0.0
+
+
+def test_recalls_of_one_state_count_as_one_beside_the_bins_cold_tune():
+    """Tunes of a bin are averaged with weights from what each does not share with the others
+    (the inverse-variance weighted mean, GUM JCGM 100:2008 practice): a cold tune whose several
+    readings fixed the load (small random error) against three recalls of one state (each only
+    on its reading's circle, and the same circle every time).  Weighted by the whole covariance
+    (the shared systematic part included) the three recalls pulled the point three quarters
+    of the way to their circle's centre."""
+    from feedmatch.sim.curve import LoadEstimate, combine
+
+    sys_ = np.diag([400.0, 400.0])  # element values and strays: shared by every tune of the bin
+    cold = LoadEstimate(F, 85 + 174j, np.diag([1.0, 0.6]), sys_, 5)
+    own = np.diag([300.0, 300.0])
+    recalls = [LoadEstimate(F, 69 + 160j, np.diag([0.25, 0.25]), sys_ + own, 1, cov_own=own, state=(10, 9, 1))
+               for _ in range(3)]
+    p = combine([cold] + recalls)
+    assert abs(p.z - cold.z) < 0.1 * abs(recalls[0].z - cold.z)
+    assert p.tunes == 4 and p.readings == 8
+    # The shared part stays in the point's error whatever the weights (it does not average down).
+    assert p.cov[0, 0] >= 400.0 and p.cov[1, 1] >= 400.0
+    # Two recalls of different states are independent circles: they do average.
+    other = LoadEstimate(F, 75 + 170j, np.diag([0.25, 0.25]), sys_ + own, 1, cov_own=own, state=(11, 8, 1))
+    two = combine([recalls[0], other])
+    assert two.z == pytest.approx((recalls[0].z + other.z) / 2)

@@ -103,3 +103,33 @@ def test_the_curve_interpolates_between_measured_points():
         zi, err = cp.impedance(f)
         assert abs(zi - complex(ant.impedance(f))) <= max(3 * err, 0.03 * abs(zi))
     assert cp.plan(3.6e6) is None  # far below every measured point
+
+
+def test_the_computed_state_is_the_one_whose_first_reading_is_least_through_the_leaky_coupler():
+    """A coupler of finite directivity reads |gamma_in + d| / |1 + gamma_in d| (the leakage d
+    adds to the reflected wave and spoils the forward one: the directivity error term of the
+    one-port error model, Engen's six-port papers and common practice); the firmware confirms a
+    preset by that reading, so the plan picks the state it predicts least, which with 25 dB of
+    leakage at 28 MHz is not the state of least |gamma_in|."""
+    from feedmatch.sim.curvepreset import CurvePresets
+
+    ant = Monopole(4.5, 0.0125, 5.0)
+    net = load_network()
+    fs = np.array([24.9e6, 28.3e6, 28.6e6, 29.0e6])
+    z = ant.impedance(fs)
+    d28 = 0.056 * np.exp(0.6j)  # 25 dB at 28 MHz, a phase of the build
+    plain = CurvePresets(fs, z, np.full(len(fs), 2.0), net)
+    leaky = CurvePresets(fs, z, np.full(len(fs), 2.0), net, leak28=d28)
+    f = 28.45e6
+    zc = plain.impedance(f)[0]
+    g = gamma(all_states_zin(net, f, zc), 50.0)
+    d = d28 * f / 28e6
+    rd = np.abs(g + d) / np.abs(1 + g * d)
+    p0, p1 = plain.plan(f), leaky.plan(f)
+    l0, c0, s0 = p0["state"]
+    l1, c1, s1 = p1["state"]
+    assert abs(g[s0, l0, c0]) == np.abs(g).min()  # no leakage known: the least |gamma_in|
+    assert rd[s1, l1, c1] == rd.min() and p1["reading"] == round(float(rd.min()), 4)
+    assert (l0, c0, s0) != (l1, c1, s1) and rd[s1, l1, c1] < rd[s0, l0, c0]
+    # The SWR sent is the predicted true one of the chosen state (what the firmware compares).
+    assert p1["swr"] == round(float(swr_of(abs(g[s1, l1, c1]))), 2)

@@ -116,7 +116,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
 
     from feedmatch.rf import bands
     from feedmatch.sim.curve import ELEMENT_SIGMA_NOMINAL, Detectors, curve_points, learn_extras, solve_records
-    from feedmatch.sim.curvepreset import CurvePresets, box_network
+    from feedmatch.sim.curvepreset import CurvePresets, box_leak, box_network
 
     st = load_station()
     model = st.hardware()
@@ -153,7 +153,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
                               element_sigma=ELEMENT_SIGMA_NOMINAL, det=Detectors.of_section(ctl.cfg["detector"]))
         bin_hz = float(fcfg.DEFAULTS["memory"]["bin_hz"])
         pts = curve_points(solve_records(recs, bank, False, leak, extras), bin_hz)
-        planner = CurvePresets.from_points(pts, box_network(bank, extras))
+        planner = CurvePresets.from_points(pts, box_network(bank, extras), box_leak(extras))
         tuned = {int(r["freq_hz"] // bin_hz) for r in recs if r.get("freq_hz")}
         names = ("40m", "30m", "20m", "17m", "15m", "12m", "10m")
         rng = random.Random(seed)
@@ -180,11 +180,13 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
             first.append(model.swr())
             _run(ctl, lambda c, k=k: c.rec.seq > k and c.tune is None)
             got = ctl.rec.since(k, 10)
+            # Where the box cannot prove the target at all (its best state reads above the
+            # accept level), the recall searches on whatever the preset: counted apart.  One
+            # entry per change (no record: the carrier met the preset and nothing tuned), so
+            # it stays aligned with carrier_sets.
+            provable.append(bool(got) and got[-1]["outcome"] == "locked")
             if got:
                 readings.append(got[-1]["n"])
-                # Where the box cannot prove the target at all (its best state reads above the
-                # accept level), the recall searches on whatever the preset: counted apart.
-                provable.append(got[-1]["outcome"] == "locked")
             model.key(0, 0)
             _run(ctl, lambda c: False, 5)
             carrier_sets.append(hot_sets[0] - before_sets)

@@ -67,6 +67,9 @@ class LoadEstimate:
     # one-reading tune's load lies): kept when two periods are compared, where the shared
     # part (element values, coupler) cancels.
     cov_own: np.ndarray | None = None
+    # The state a one- or two-reading tune's load rests on (l, c, shunt): recalls of one
+    # state share where on its circle the load lies.
+    state: tuple[int, int, int] | None = None
 
     @property
     def cov(self) -> np.ndarray:
@@ -479,7 +482,8 @@ class LoadSolver:
             cols.append([dz.real, dz.imag])
         jp = np.array(cols).T
         cov_sys = cov_own + jp @ md.cov @ jp.T
-        return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma), cov_own=cov_own)
+        return LoadEstimate(f, _z_of(g, z0), cov_rand, cov_sys, len(tr.gamma), cov_own=cov_own,
+                            state=(int(st[0][0]), int(st[0][1]), int(st[0][2])))
 
 
 LEARN_MAX_NFEV = 100  # the fit's evaluations: about 20-35 s for 300 traces on one core
@@ -610,19 +614,35 @@ def learn_extras(bank: lnet.Bank, traces: list[Trace], leak_cal: float = LEAK_DE
 
 
 def combine(ests: list[LoadEstimate]) -> CurvePoint:
-    """Tunes of one bin as one point: a weighted mean (weights 1 / the estimate's variance;
-    scalar, so errors the tunes share cannot pull R against X); the random part averages
-    down, the systematic part (shared by every tune) does not, and a scatter larger than
-    the stated errors widens the result (Birge ratio)."""
-    zs = np.array([[e.z.real, e.z.imag] for e in ests])
-    w = np.array([1.0 / max(float(np.trace(e.cov)), 1e-12) for e in ests])
+    """Tunes of one bin as one point: a weighted mean, each tune weighted by what it does
+    not share with the others (its readings' noise and, for a one-reading tune, where on
+    its reading's circle the load lies; scalar weights, so errors the tunes share cannot
+    pull R against X).  Recalls of one state share their circle (the same state reads
+    alike every time), so they count together as one.  The random part averages down,
+    the shared systematic part (element values, strays, coupler) does not, and a scatter
+    larger than the stated errors widens the result (Birge ratio).  Weighted by the whole
+    covariance, three recalls of a state outweighed the bin's cold tune whose several
+    readings had fixed the load (the demo's 15 m point: 8.6 % off, the cold tune alone 0.1 %)."""
+    groups: dict[Any, list[LoadEstimate]] = {}
+    for i, e in enumerate(ests):
+        groups.setdefault(e.state if e.state is not None else i, []).append(e)
+    zs, own, rand, shared = [], [], [], []
+    for g in groups.values():
+        n = len(g)
+        zs.append(np.mean([[e.z.real, e.z.imag] for e in g], axis=0))
+        rand.append(sum(e.cov_rand for e in g) / (n * n))
+        ow = sum(e.cov_own if e.cov_own is not None else np.zeros((2, 2)) for e in g) / n
+        own.append(ow)
+        shared.append(sum(e.cov_sys for e in g) / n - ow)
+    zs_a = np.array(zs)
+    w = np.array([1.0 / max(float(np.trace(r + o)), 1e-12) for r, o in zip(rand, own)])
     w = w / w.sum()
-    zbar = w @ zs
-    cov_rand = sum(wi * wi * e.cov_rand for wi, e in zip(w, ests))
-    cov_sys = sum(wi * e.cov_sys for wi, e in zip(w, ests))
-    cov = cov_rand + cov_sys
+    zbar = w @ zs_a
+    cov = (sum(wi * wi * (r + o) for wi, r, o in zip(w, rand, own))
+           + sum(wi * sh for wi, sh in zip(w, shared)))
     if len(ests) > 1:
-        chi2 = sum(float(np.sum((z - zbar) ** 2 / np.maximum(np.diag(e.cov), 1e-12))) for z, e in zip(zs, ests))
+        zz = np.array([[e.z.real, e.z.imag] for e in ests])
+        chi2 = sum(float(np.sum((z - zbar) ** 2 / np.maximum(np.diag(e.cov), 1e-12))) for z, e in zip(zz, ests))
         cov = cov * max(1.0, chi2 / (2 * (len(ests) - 1)))
     f = float(np.mean([e.freq_hz for e in ests]))
     return CurvePoint(f, complex(zbar[0], zbar[1]), cov, len(ests), sum(e.readings for e in ests), list(ests))

@@ -8,9 +8,11 @@ estimate (the fit through all points against fits through the even- and the
 odd-numbered points alone) added to the nearby points' measurement errors.  The
 best state for the interpolated load is then found exhaustively on the box's
 element values (learned ones where it has them, its learned node strays
-included), choosing the state whose worst |gamma| over the load's uncertainty
-is least: a preset the first carrier has to move away from costs relay changes
-under power.  Nothing here switches anything: `follow` sends the state in a
+included), choosing the state whose predicted reading is least: the firmware
+confirms a computed preset by its first reading, and the coupler's leakage
+(learned from the logbook, where it is) shifts that reading by up to |d|; a
+preset the first carrier has to move away from costs relay changes under
+power.  Nothing here switches anything: `follow` sends the state in a
 `preset` request and the firmware switches it cold.
 """
 
@@ -30,13 +32,14 @@ MAX_PREDICTED_SWR = 3.0  # a computed state predicted worse than this is not off
 class CurvePresets:
     """plan(f_hz) -> the state to preset at f_hz, or None where the curve does not reach."""
 
-    def __init__(self, freqs_hz, z, z_err, net: Network):
+    def __init__(self, freqs_hz, z, z_err, net: Network, leak28: complex = 0j):
         f = np.asarray(freqs_hz, dtype=float)
         order = np.argsort(f)
         self.f = f[order]
         self.z = np.asarray(z, dtype=complex)[order]
         self.err = np.asarray(z_err, dtype=float)[order]
         self.net = net
+        self.leak28 = complex(leak28)  # the coupler's leakage at 28 MHz (grows with f), as learned
         self._lo, self._hi = float(self.f[0]), float(self.f[-1])
         span = (self._hi - self._lo) or 1.0
         self._mid, self._scale = 0.5 * (self._lo + self._hi), 2.0 / span
@@ -61,9 +64,9 @@ class CurvePresets:
         return (np.asarray(f, dtype=float) - self._mid) * self._scale
 
     @classmethod
-    def from_points(cls, points, net: Network) -> CurvePresets:
+    def from_points(cls, points, net: Network, leak28: complex = 0j) -> CurvePresets:
         return cls([p.freq_hz for p in points], [p.z for p in points],
-                   [float(np.hypot(p.r_err, p.x_err)) for p in points], net)
+                   [float(np.hypot(p.r_err, p.x_err)) for p in points], net, leak28)
 
     def impedance(self, f_hz: float) -> tuple[complex, float] | None:
         """The antenna's impedance at f_hz and its one-sigma error (ohm, as |delta Z|)."""
@@ -95,19 +98,30 @@ class CurvePresets:
         e = err / np.sqrt(2)
         loads = np.array([z, z + e, z - e, z + 1j * e, z - 1j * e])
         loads = np.where(loads.real > 0.1, loads, 0.1 + 1j * loads.imag)
-        gm = np.abs(gamma(all_states_zin(self.net, np.full(len(loads), f_hz), loads), self.net.z0_ohm))
+        gi = gamma(all_states_zin(self.net, np.full(len(loads), f_hz), loads), self.net.z0_ohm)
+        gm = np.abs(gi)
         worst = gm.max(axis=0)
-        # Among the states within a hair of the centre's best, the one that holds best over
-        # the load's uncertainty (a far-off state that merely survives the extremes is no preset).
-        near_best = gm[0] <= gm[0].min() + 0.05
-        idx = int(np.argmin(np.where(near_best, worst, np.inf)))
-        sh, l, c = np.unravel_index(idx, worst.shape)
+        # The state whose first reading is least at the centre: the reflected over the forward
+        # port's wave with the coupler's leakage d (as BoxModel.read, equal gains).  The reading
+        # is what confirms the preset (at or below the lock level it proves the target, above
+        # the target it sends the recall searching on); the lowest reading lies where gamma_in
+        # cancels the leakage, |d| away from the match.  Measured on the presets bench (the
+        # demo's sessions, 200 new frequencies): ranked by the true |gamma_in| the states on
+        # 10 m read above the target and the recall searched 35 readings under the carrier;
+        # ranked by the worst |gamma| over the stated error (8 points: stated some ten times
+        # the real error), the states were a code step off on 15 and 20 m.
+        d = self.leak28 * (f_hz / 28e6)
+        g0 = gi[0]
+        rd = np.abs(g0 + d) / np.maximum(np.abs(1 + g0 * d), 1e-12)
+        idx = int(np.argmin(rd))
+        sh, l, c = np.unravel_index(idx, rd.shape)
         g0 = float(gm[0][sh, l, c])
         swr = float(swr_of(g0))
         if not swr <= MAX_PREDICTED_SWR:
             return None
         return {"state": [int(l), int(c), int(sh)], "swr": round(swr, 2),
                 "worst_swr": round(float(swr_of(float(worst[sh, l, c]))), 2),
+                "reading": round(float(rd[sh, l, c]), 4),
                 "z_ohm": [round(z.real, 2), round(z.imag, 2)], "z_err_ohm": round(err, 2)}
 
 
@@ -119,6 +133,17 @@ def box_network(bank, extras=None) -> Network:
     return Network(bank.z0, list(bank.ind), list(bank.cap), bank.ql or None, bank.qc or None)
 
 
+def box_leak(extras=None) -> complex:
+    """The coupler's leakage at 28 MHz as the logbook taught it (sim/curve.py's BoxModel),
+    or 0 where nothing was learned (its phase is then unknown)."""
+    if extras is not None and extras.learned:
+        from feedmatch.sim.curve import _DIM, _DRE
+
+        x = extras.extras()
+        return complex(float(x[_DRE]), float(x[_DIM]))
+    return 0j
+
+
 def presets_from_logbook(db: str, nominal=None, since: str | None = None,
                          until: str | None = None) -> CurvePresets | None:
     """The preset computation for the logbook's antenna and box, or None without a curve."""
@@ -127,4 +152,5 @@ def presets_from_logbook(db: str, nominal=None, since: str | None = None,
     cur = measured_curve(db, since, until, nominal=nominal)
     if not cur["points"] or cur.get("bank") is None:
         return None
-    return CurvePresets.from_points(cur["points"], box_network(cur["bank"], cur.get("extras")))
+    return CurvePresets.from_points(cur["points"], box_network(cur["bank"], cur.get("extras")),
+                                    box_leak(cur.get("extras")))
