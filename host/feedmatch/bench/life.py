@@ -99,6 +99,7 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
     boot = None
     heap: list[tuple[int, int, int]] = []
     gc_us: list[int] = []  # what each logged collection took (between tunes, the whole heap)
+    free_us: list[int] = []  # ... and the look at the free heap after it (gc.mem_free())
     tunes: list[dict[str, Any]] = []
     errors: list[str] = []
     done = None
@@ -127,6 +128,8 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
             pending_heap = (int(p[1]), int(p[2]))
             if len(p) > 3:
                 gc_us.append(int(p[3]))
+            if len(p) > 4:
+                free_us.append(int(p[4]))
         elif "max free sz:" in line and pending_heap is not None:
             largest = int(line.rsplit("max free sz:", 1)[1].split()[0]) * block_bytes
             heap.append((pending_heap[0], pending_heap[1], largest))
@@ -142,7 +145,8 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
             done = (int(p[1]), int(p[2]))
         elif "Traceback" in line or ("Error" in line and p[0] != "ERR"):
             errors.append(line)
-    return {"boot": boot, "heap": heap, "gc_us": gc_us, "tunes": tunes, "errors": errors, "done": done}
+    return {"boot": boot, "heap": heap, "gc_us": gc_us, "free_us": free_us, "tunes": tunes, "errors": errors,
+            "done": done}
 
 
 def _chip_files(work: Path, tunes: int) -> dict[str, bytes]:
@@ -408,6 +412,9 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
         # A whole collection on the chip (XIP misses charged): what the controller's
         # collection within a tune adds to a relay step's settling wait, at most.
         out["life_chip_collect_ms_max"] = round(max(c["gc_us"]) / 1000, 1)
+    if c["free_us"]:
+        # The controller's look at the free heap before each relay step's settling wait.
+        out["life_chip_mem_free_ms"] = round(max(c["free_us"]) / 1000, 2)
     out["life_chip_wall_s"] = c["wall_s"]
     dmg = run_chip_damaged()
     if "skipped" in dmg:

@@ -4,7 +4,8 @@
 # virtual clock for the controller) while the host's backfill asks for records
 # after every tune.  Input: life.json; output lines (parsed by bench/life.py):
 #   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
-#   HEAP <tune> <bytes free> <us the collection before it took>, then mem_info's lines (its "max free sz")
+#   HEAP <tune> <bytes free> <us the collection before it took> <us gc.mem_free() took>,
+#        then mem_info's lines (its "max free sz")
 #   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation>
 #        <collections in the relays' settling waits> MARK
 # (the end of a tune: its record, the memory's save when due, the journal marked ended).
@@ -180,7 +181,9 @@ def run():
         if i % every == 0:
             t = _us()
             gc.collect()
-            print("HEAP %d %d %d" % (i, gc.mem_free(), _diff(_us(), t)))
+            t1 = _us()
+            free = gc.mem_free()
+            print("HEAP %d %d %d %d" % (i, free, _diff(t1, t), _diff(_us(), t1)))
             largest_free()
         ld = loads[i % len(loads)]
         board.zl = complex(ld[0], ld[1])
