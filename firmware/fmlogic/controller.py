@@ -23,15 +23,17 @@ from fmlogic.swr import gamma_from_powers, swr_from_gamma
 VERSION = "0.1.0"
 # On the board a tune allocates tens of KB of floats; collecting once it is
 # over (relays still, nothing timed) leaves the next tune a fresh heap
-# (common MicroPython practice).  Within a tune the heap is also collected
+# (common MicroPython practice).  Within a tune MicroPython also collects
 # once a quarter of what was free after the last collection has been
-# allocated, inside the relays' settling wait (the box waits there anyway):
-# left to collect only when the heap is full, MicroPython's first-fit
-# allocator has spread a cold search's live readings over the whole free heap
-# by then, and the holes between them cannot take a 1 KB dict or string
-# (measured on the single-precision unix port at 256 KB with a new memory bin
-# every tune: MemoryError from the 62nd tune with 48 KB nominally free and
-# no free block over 864 bytes; with this, 5000 of 5000).
+# allocated (gc.threshold, set at every collection here): left to collect
+# only when the heap is full, its first-fit allocator has spread a cold
+# search's live readings over the whole free heap by then, and the holes
+# between them cannot take a 1 KB dict or string (measured on the
+# single-precision unix port at 256 KB with a new memory bin every tune:
+# MemoryError from the 62nd tune with 48 KB nominally free and no free block
+# over 864 bytes; with this, 5000 of 5000).  A check of the free heap in each
+# relay step's settling wait was tried first: gc.mem_free() walks the whole
+# allocation table, 8 ms a step on the emulated Pico.
 _COLLECT = sys.implementation.name == "micropython"
 _GC_SHARE = 4  # collect once 1/_GC_SHARE of the free heap has been allocated
 _RECORDS_BYTES = 900
@@ -98,8 +100,6 @@ class Controller:
         self.advice = None
         self.warnings = []  # what the start found damaged and got past, in words
         self.internal_at = None  # when an internal error stopped the box (it recovers)
-        self.gc_low = 0  # below this much free heap a tune's settling wait collects (0: not yet measured)
-        self.gc_settles = 0  # collections made in a settling wait since the start
         self.err_at = None  # error answers to garbage on the link: at most one per 100 ms
         self.link_busy = False
         memory.STAGE[0] = memory.BOOTS
@@ -252,27 +252,10 @@ class Controller:
             self._collect()
 
     def _collect(self):
-        """Collect the heap and note the level at which a tune collects again."""
+        """Collect the heap and set the allocations after which MicroPython collects again."""
         gc.collect()
-        f = gc.mem_free()
-        self.gc_low = f - f // _GC_SHARE
-
-    def _settle(self):
-        """The relays' settling wait after a switch; the heap is collected in it when
-        a quarter of the free heap has been allocated since the last collection
-        (the time the look and the collection take counts as settling time)."""
-        b = self.board
-        ms = self.tuning["settle_ms"]
-        if _COLLECT:
-            # gc.mem_free() walks the heap's whole allocation table: the look counts as
-            # settling time too (life_chip_mem_free_ms in the bench: its time on the chip).
-            t = b.ticks_ms()
-            if gc.mem_free() < self.gc_low:
-                self._collect()
-                self.gc_settles += 1
-            ms -= b.ticks_diff(b.ticks_ms(), t)
-        if ms > 0:
-            b.sleep_ms(ms)
+        if hasattr(gc, "threshold"):
+            gc.threshold(gc.mem_free() // _GC_SHARE)
 
     def _read(self):
         c = self.board.read_detectors()
@@ -440,7 +423,7 @@ class Controller:
         if not self._switch(st, byp):
             self._end_tune("power above hot-switch limit", abort=True)
             return
-        self._settle()
+        b.sleep_ms(self.tuning["settle_ms"])
         fwd, ref = self._read()
         if fwd <= 0.0:
             self._end_tune("carrier lost", abort=True)
@@ -476,6 +459,10 @@ class Controller:
         self.mem.set_last(f, self.relays, self.bypass)
         self.lock_bin = self.mem.bin_of(f) if f > 0 else None
         hit = tn.hinted and s.n == 1 and outcome == LOCKED
+        if _COLLECT:
+            # The search's garbage goes before the tune's flash work (relays set, nothing
+            # timed), so no collection lands inside the record's or the memory's write.
+            self._collect()
         # The record carries the memory's change and the last state: written first,
         # it is all a tune's end writes, but for the whole memory now and then.
         self._record(f, tn.before, self._state_list(), outcome, why, swr_before=tn.swr_before,
@@ -491,8 +478,6 @@ class Controller:
             self._fault(why)
         else:
             self._set_state(outcome, why)
-        if _COLLECT:
-            self._collect()
 
     # -- records, events, state ---------------------------------------------------
     def _state_list(self):

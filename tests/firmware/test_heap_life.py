@@ -2,7 +2,7 @@
 (its 64-bit objects about twice the chip's: stricter than the Pico's 246 KB), the loads
 moving up one memory bin a round so that every tune is a cold search storing a new bin,
 the host's backfill asking for records after every tune.  Before the controller collected
-within a tune (in the relays' settling wait) this ran out of heap from the 62nd tune with
+within a tune (gc.threshold) this ran out of heap from the 62nd tune with
 48 KB nominally free and no free block over 864 bytes; the long run (5000 tunes, the
 largest free block every 100) is the bench's group `life`."""
 

@@ -136,8 +136,7 @@ def parse(text: str, block_bytes: int) -> dict[str, Any]:
             pending_heap = None
         elif p[0] == "TUNE":
             last_tune = {"i": int(p[1]), "state": p[2], "records": int(p[3]), "flash_end_us": int(p[4]),
-                         "journal_us": int(p[5]), "gen": int(p[6]) if len(p) > 7 else 0,
-                         "collects": int(p[7]) if len(p) > 8 else 0}
+                         "journal_us": int(p[5]), "gen": int(p[6]) if len(p) > 7 else 0}
             tunes.append(last_tune)
         elif p[0] == "ERR":
             errors.append(line)
@@ -352,10 +351,6 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
             out["life_min_largest_block_kib"] = round(min(h[2] for h in u["heap"]) / 1024, 1)
             out["life_largest_block_kib_first_last"] = [round(u["heap"][0][2] / 1024, 1),
                                                         round(u["heap"][-1][2] / 1024, 1)]
-        if u["tunes"]:
-            # The controller's collections in the relays' settling waits (the heap's
-            # defence against fragmentation within a cold search), per tune.
-            out["life_collects_per_tune"] = round(statistics.mean(t["collects"] for t in u["tunes"]), 2)
         out["life_unix_wall_s"] = u["wall_s"]
     lg = run_virtual_log(20 if quick else 300)
     if "skipped" in lg:
@@ -406,14 +401,13 @@ def bench_life(quick: bool = False) -> dict[str, Any]:
         out["life_chip_min_largest_block_kib"] = round(min(h[2] for h in c["heap"]) / 1024, 1)
         out["life_chip_largest_block_kib_first_last"] = [round(c["heap"][0][2] / 1024, 1),
                                                          round(c["heap"][-1][2] / 1024, 1)]
-    if c["tunes"]:
-        out["life_chip_collects_per_tune"] = round(statistics.mean(t["collects"] for t in c["tunes"]), 2)
     if c["gc_us"]:
-        # A whole collection on the chip (XIP misses charged): what the controller's
-        # collection within a tune adds to a relay step's settling wait, at most.
+        # A whole collection on the chip (XIP misses charged): what each of the
+        # collections within a tune (gc.threshold) adds to it.
         out["life_chip_collect_ms_max"] = round(max(c["gc_us"]) / 1000, 1)
     if c["free_us"]:
-        # The controller's look at the free heap before each relay step's settling wait.
+        # What a look at the free heap (gc.mem_free) costs on the chip: why the controller
+        # leaves the collections within a tune to gc.threshold instead of looking each step.
         out["life_chip_mem_free_ms"] = round(max(c["free_us"]) / 1000, 2)
     out["life_chip_wall_s"] = c["wall_s"]
     dmg = run_chip_damaged()

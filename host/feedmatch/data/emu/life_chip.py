@@ -6,8 +6,7 @@
 #   BOOT <ms since reset at the status answer> <ms to start the controller> <seq> <imports ms> <controller ms>
 #   HEAP <tune> <bytes free> <us the collection before it took> <us gc.mem_free() took>,
 #        then mem_info's lines (its "max free sz")
-#   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation>
-#        <collections in the relays' settling waits> MARK
+#   TUNE <i> <state> <new records> <end-of-tune flash us> <start journal us> <memory generation> MARK
 # (the end of a tune: its record, the memory's save when due, the journal marked ended).
 # With "drift" in life.json each round of loads moves up one memory bin (cycling over
 # 40 bins), so every tune learns a new bin: the memory changes at every tune and its
@@ -193,7 +192,6 @@ def run():
         board.p = 10.0
         flash[0] = flash[1] = 0
         seq = ctl.rec.seq
-        gcs = ctl.gc_settles
         try:
             for _ in range(600):
                 ctl.step()
@@ -220,8 +218,7 @@ def run():
             errors += 1
             print("ERR %d %s" % (i, repr(e)[:60]))
             board.p = 0.0
-        print("TUNE %d %s %d %d %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1], ctl.mem.gen,
-                                                  ctl.gc_settles - gcs))
+        print("TUNE %d %s %d %d %d %d MARK" % (i, ctl.state, ctl.rec.seq - seq, flash[0], flash[1], ctl.mem.gen))
     t = _us()
     gc.collect()
     print("HEAP %d %d %d" % (spec["tunes"], gc.mem_free(), _diff(_us(), t)))
