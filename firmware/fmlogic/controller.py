@@ -18,7 +18,7 @@ import sys
 
 from fmlogic import config as fcfg
 from fmlogic import coupler, link, memory, search, selftest
-from fmlogic.swr import gamma_from_powers, swr_from_gamma
+from fmlogic.swr import gamma_from_powers, gamma_from_swr, swr_from_gamma
 
 VERSION = "0.1.0"
 # On the board a tune allocates tens of KB of floats; collecting once it is
@@ -93,6 +93,7 @@ class Controller:
         self.preset_hint = None  # a preset the host computed (no memory here): the confirming recall starts there
         self.ref_seen = None  # ticks_ms of the reflected detector's last reading above its floor
         self.preset_measured = False  # ... and whether its SWR was read (memory) or predicted (host)
+        self.preset_expect = -1.0  # ... the true |gamma| the host expects its first reading to allow (-1: none)
         self.rig = None  # (freq_hz, mode) the host last said the radio is on
         self.frames_bad = 0
         self.hot_refusals = 0
@@ -344,6 +345,7 @@ class Controller:
                 self._start_tune(fp, "confirm preset")
                 return
             self.preset_f = 0.0
+            self.preset_expect = -1.0
             swr = self._swr()
             bd = self._bound()
             # Confirmed only where the reading proves the target (the coupler's bounds).
@@ -368,9 +370,12 @@ class Controller:
     def _start_tune(self, f, why):
         hint = self.mem.lookup(f) if f > 0 else None
         measured = hint is not None
+        expect = -1.0
         if hint is None and self.preset_f > 0.0:
             hint = self.preset_hint
             measured = self.preset_measured
+            expect = self.preset_expect
+        self.preset_expect = -1.0
         name = self.tuning["strategy"]
         if name == "recall" and hint is None:
             name = "model"
@@ -384,6 +389,9 @@ class Controller:
         # preset's confirmation keeps a stored best effort that reads as it was stored.
         strat.asked = why in ("request", "button")
         strat.retry_best = strat.asked or not measured
+        # A host-computed preset with its prediction: a first reading that allows it ends the
+        # confirmation there (search.Recall); an operator's tune searches as far as it may.
+        strat.expect_g = -1.0 if strat.asked else expect
         # A zero first reading of a stored or preset state is a match, not a dead reflected
         # detector, when that detector read a reflection lately: no contrast reading (two
         # relay changes under the carrier).  A cold tune still checks.
@@ -445,6 +453,11 @@ class Controller:
             why = note
         elif note:
             why = why + "; " + note
+        if s.predicted == search.PREDICTED and not abort:
+            # The logbook tells a preset the first reading bore out from a search that ended.
+            why = "preset as predicted (SWR %.2f), no search; %s" % (swr_from_gamma(s.expect_g), note or why)
+        elif s.predicted == search.WORSE:
+            why = "preset worse than predicted (SWR %.2f), searched; %s" % (swr_from_gamma(s.expect_g), why)
         if final is None:
             final, byp = (self.relays, self.bypass)
         elif self.damage is not None and not byp:
@@ -596,6 +609,10 @@ class Controller:
         f = a.get("freq_hz")
         if not isinstance(f, (int, float)) or isinstance(f, bool) or f <= 0 or f > 1e9:
             return False, {"why": "bad-args", "msg": "freq_hz"}
+        ex = a.get("expect_swr")
+        if ex is not None and (not isinstance(ex, (int, float)) or isinstance(ex, bool) or not 1.0 <= ex < 100.0):
+            # Checked before anything moves: a prediction the box cannot use is refused outright.
+            return False, {"why": "bad-args", "msg": "expect_swr must be an SWR from 1 to 100"}
         mode = a.get("mode")
         if isinstance(mode, str):
             self.rig = (float(f), mode[:12])
@@ -607,8 +624,9 @@ class Controller:
         src = "memory"
         if hint is None:
             # Nothing stored: a state the host computed from the antenna it measured
-            # ("state": [l, c, shunt], "swr": its predicted SWR), switched as coldly.
-            hint = _given_state(a.get("state"), a.get("swr"), self.bank)
+            # ("state": [l, c, shunt], "swr": its predicted SWR, or "expect_swr": the SWR
+            # its first reading is judged against), switched as coldly.
+            hint = _given_state(a.get("state"), a.get("swr", ex), self.bank)
             src = "antenna curve"
         if hint is None:
             return True, {"preset": False, "msg": "nothing stored near this frequency", "bin": b,
@@ -623,6 +641,7 @@ class Controller:
         self.preset_f = float(f)
         self.preset_hint = hint
         self.preset_measured = src == "memory"
+        self.preset_expect = gamma_from_swr(ex) if ex is not None and src != "memory" else -1.0
         self.manual = False
         self.freq = float(f)
         self.lock_bin = self.mem.bin_of(f)

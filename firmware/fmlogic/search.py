@@ -53,6 +53,9 @@ _REPEAT = 0.02
 # Readings a recalled or preset state that reads the target may spend on its neighbours for a
 # proof (the coupler's bounds) before the tune ends best-effort: relay changes under the carrier.
 _CONFIRM_LOCAL = const(6)
+# What the first reading of a host-computed preset made of its prediction (Strategy.predicted).
+PREDICTED = const(1)
+WORSE = const(2)
 # A hunt probe aims two hyperbolic units short of its hypothesis: a reading
 # there of tanh(1) = 0.76 is a hit; below this, the fit can take over.
 _HIT = 0.86
@@ -130,6 +133,10 @@ class Strategy:
         self._cap = 0  # readings after which the search ends (0: the budget only)
         # The controller: the reflected detector read a reflection lately (no contrast reading).
         self.ref_alive = False
+        # Recall from a state the host computed: the true |gamma| it predicts there (-1: no
+        # prediction), and what the first reading made of it (0: not judged, PREDICTED, WORSE).
+        self.expect_g = -1.0
+        self.predicted = 0
         self.seen = {}
         self.order = []
         self.n = 0
@@ -1020,6 +1027,20 @@ class Recall(ModelFit):
                 # a few local readings can usually better).
                 self.confirmed = True
                 return
+            if self.expect_g >= 0.0:
+                # A state the host computed from the antenna it measured, with the true
+                # |gamma| it predicts there: the host chose it as the best reachable, so
+                # where the reading allows that prediction (its lower bound, the coupler's
+                # noise, floor, leakage and gain ratio, at or below it) the neighbours
+                # cannot honestly be expected to do better, and a search would only walk
+                # the relays under the carrier.  It ends on this reading: locked where the
+                # reading proves the target (stopped above), else best-effort with its
+                # bound.  A reading clearly worse (the curve was wrong, the antenna
+                # changed) searches as any other preset.
+                if self.cp.bounds(g, self.floor_g)[0] <= self.expect_g:
+                    self.predicted = PREDICTED
+                    return
+                self.predicted = WORSE
             if (not self.retry_best and self.accept_g < stored <= self.target_g
                     and g <= stored + _REPEAT):
                 # A best effort (stored above the accept level: not a lock) that read

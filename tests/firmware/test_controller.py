@@ -618,3 +618,69 @@ def test_the_request_table_is_the_protocol_and_its_guards_hold(tmp_path):
         if guards & fctl._NOT_IN_FAULT:
             assert ctl._handle(word, {}) == (False, {"why": "fault", "msg": "test fault"}), word
     assert ctl._handle("no-such", {}) == (False, {"why": "unknown-request", "msg": "no-such"})
+
+
+def _computed_preset(tmp_path, f, dl, expect_swr=None):
+    """A preset request for a state the host computed on the fake's own antenna and network
+    (the best state, dl inductor codes off), with its predicted SWR; then the first carrier.
+    Returns (answer, the confirming tune's record, relay sets under the carrier, true SWR)."""
+    from feedmatch.rf.network import all_states_zin, best_state, gamma, swr_of
+
+    m, b, ctl = _setup(tmp_path)
+    z = complex(m.antenna.impedance(f))
+    l, c, sh, _g = best_state(m.net, f, z)
+    swr = round(float(swr_of(abs(gamma(all_states_zin(m.net, f, z), 50.0)[sh, l + dl, c]))), 2)
+    ans = _ask(b, ctl, 40, "preset", {"freq_hz": f, "state": [l + dl, c, sh], "swr": swr,
+                                      "expect_swr": swr if expect_swr is None else expect_swr})[3]
+    assert ans["preset"] is True and ans["source"] == "antenna curve"
+    n, sets = ctl.rec.seq, b.sets
+    m.key(10, f)
+    assert run(ctl, 3000, until=lambda c: c.rec.seq > n and c.tune is None)
+    rec = _records(_frames(b))[-1]
+    assert rec["preset"] is True and m.violations == []
+    return ans, rec, b.sets - sets, swr
+
+
+def test_a_computed_preset_read_as_predicted_moves_no_relay_under_the_carrier(tmp_path):
+    # 20 m, the state two inductor codes off the best (true SWR about 1.8 on the fake's
+    # vertical): the host predicts it and the first reading allows the prediction, so the box
+    # ends there best-effort (its bound cannot prove the 1.5 target), one reading, no relay
+    # switched under the carrier; the record says so.
+    _ans, rec, moved, swr = _computed_preset(tmp_path, 14.2e6, 2)
+    assert swr > 1.5  # the premise: a state that cannot read the target
+    assert rec["outcome"] == "best-effort" and rec["n"] == 1 and moved == 0
+    assert rec["why"].startswith(f"preset as predicted (SWR {swr:.2f}), no search")
+    lo, hi = rec["swr_bound"]
+    assert lo <= swr <= hi and hi > 1.5
+
+
+def test_a_computed_preset_that_locks_says_matched(tmp_path):
+    _ans, rec, moved, _swr = _computed_preset(tmp_path, 7.1e6, 0)
+    assert rec["outcome"] == LOCKED and rec["n"] == 1 and moved == 0 and rec["why"] == "matched"
+
+
+def test_a_computed_preset_read_worse_than_predicted_searches(tmp_path):
+    # The same state, but the host predicted SWR 1.05 (its curve wrong, or the antenna
+    # changed): the reading cannot come from that, so the recall searches and locks elsewhere.
+    _ans, rec, moved, swr = _computed_preset(tmp_path, 14.2e6, 2, expect_swr=1.05)
+    assert rec["outcome"] == LOCKED and rec["n"] > 1 and moved >= 1
+    assert rec["why"].startswith("preset worse than predicted (SWR 1.05), searched")
+
+
+def test_a_preset_with_a_bad_expected_swr_is_refused_and_nothing_moves(tmp_path):
+    m, b, ctl = _setup(tmp_path)
+    sets, n = b.sets, ctl.rec.seq
+    for i, bad in enumerate((0.99, -1, 0, 100, 1e9, float("nan"), float("inf"), "1.5", True, [1.2], {"swr": 1.2})):
+        kind, _s, word, ans = _ask(b, ctl, 50 + i, "preset", {"freq_hz": 14.2e6, "state": [10, 20, 1],
+                                                              "swr": 1.2, "expect_swr": bad})
+        assert word == "err" and ans["why"] == "bad-args" and "expect_swr" in ans["msg"], bad
+    assert b.sets == sets and ctl.rec.seq == n and ctl.preset_f == 0.0
+    # From memory the prediction plays no part: a stored state is confirmed as before.
+    for f in (7.1e6, 14.2e6):
+        m.key(10, f)
+        assert run(ctl, until=lambda c: c.state == LOCKED)
+        m.key(0, 0)
+        run(ctl, 5)
+    ans = _ask(b, ctl, 70, "preset", {"freq_hz": 7.1e6, "state": [1, 2, 1], "expect_swr": 1.2})[3]
+    assert ans["source"] == "memory" and tuple(ans["relays"][:3]) == tuple(ctl.mem.lookup(7.1e6)[:3])
+    assert ctl.preset_expect == -1.0

@@ -133,3 +133,5 @@ def test_the_computed_state_is_the_one_whose_first_reading_is_least_through_the_
     assert (l0, c0, s0) != (l1, c1, s1) and rd[s1, l1, c1] < rd[s0, l0, c0]
     # The SWR sent is the predicted true one of the chosen state (what the firmware compares).
     assert p1["swr"] == round(float(swr_of(abs(g[s1, l1, c1]))), 2)
+    # ... and the same SWR is what the preset request asks the first reading to bear out.
+    assert p1["expect_swr"] == p1["swr"]

@@ -171,7 +171,8 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
             if plan is not None:
                 offered += 1
                 board.inbox += link.encode("Q", changes, "preset", {"freq_hz": f, "state": plan["state"],
-                                                                    "swr": plan["swr"]})
+                                                                    "swr": plan["swr"],
+                                                                    "expect_swr": plan["expect_swr"]})
                 _run(ctl, lambda c: False, 5)
                 board.outbox.clear()
             k = ctl.rec.seq

@@ -266,7 +266,10 @@ class Follower:
         if plan is None:
             return False
         try:
-            ans = ln.request("preset", {"freq_hz": f, "mode": mode, "state": plan["state"], "swr": plan["swr"]})
+            # expect_swr: the first carrier's reading is judged against the prediction (the
+            # board ends there where its reading allows it); swr alone for older firmware.
+            ans = ln.request("preset", {"freq_hz": f, "mode": mode, "state": plan["state"], "swr": plan["swr"],
+                                        "expect_swr": plan.get("expect_swr", plan["swr"])})
         except BoardRefused as e:
             if e.why == "busy":
                 self._asked = False  # a tune is under way: ask again on the next poll

@@ -119,7 +119,10 @@ class CurvePresets:
         swr = float(swr_of(g0))
         if not swr <= MAX_PREDICTED_SWR:
             return None
-        return {"state": [int(l), int(c), int(sh)], "swr": round(swr, 2),
+        # expect_swr: what the first reading should allow (the preset request's field; the
+        # firmware judges the reading against it with the coupler's bounds, which carry the
+        # leakage the learned phase may still leave, so the centre is sent as it is).
+        return {"state": [int(l), int(c), int(sh)], "swr": round(swr, 2), "expect_swr": round(swr, 2),
                 "worst_swr": round(float(swr_of(float(worst[sh, l, c]))), 2),
                 "reading": round(float(rd[sh, l, c]), 4),
                 "z_ohm": [round(z.real, 2), round(z.imag, 2)], "z_err_ohm": round(err, 2)}
