@@ -111,7 +111,9 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
     the board's memory set aside (so each is a frequency with nothing stored),
     the computed state is sent in a preset request with no carrier, and the
     carrier comes: the true SWR it meets, the readings its tune takes, relay
-    changes under the carrier and switches above the hot-switch limit."""
+    changes under the carrier and switches above the hot-switch limit; how many tunes
+    ended on a first reading that bore the host's prediction out (expect_swr, no search),
+    and the true SWR the carrier is left with (median, worst)."""
     from fmlogic import config as fcfg
 
     from feedmatch.rf import bands
@@ -159,6 +161,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
         rng = random.Random(seed)
         counting[0] = True
         first, readings, offered, provable, carrier_sets = [], [], 0, [], []
+        after, as_predicted = [], 0
         changes = 0
         while changes < n:
             b = bands.by_name(rng.choice(names))
@@ -188,6 +191,9 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
             provable.append(bool(got) and got[-1]["outcome"] == "locked")
             if got:
                 readings.append(got[-1]["n"])
+                # The first reading bore the host's prediction out: the tune ended on it.
+                as_predicted += str(got[-1].get("why", "")).startswith("preset as predicted")
+            after.append(model.swr())  # the true SWR the carrier is left with
             model.key(0, 0)
             _run(ctl, lambda c: False, 5)
             carrier_sets.append(hot_sets[0] - before_sets)
@@ -199,4 +205,7 @@ def bench_presets_new(n: int = 200, seed: int = 11) -> dict[str, Any]:
             "new_locked_rate": round(sum(provable) / n, 3),
             "new_relay_changes_under_carrier_per_locked_change": round(
                 sum(c for c, p in zip(carrier_sets, provable) if p) / max(sum(provable), 1), 3),
+            "new_as_predicted_rate": round(as_predicted / n, 3),
+            "new_after_swr_median": round(statistics.median(after), 2),
+            "new_after_swr_max": round(max(after), 2),
             "new_hot_switches": len(model.violations), "new_curve_points": len(pts)}
