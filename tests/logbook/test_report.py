@@ -186,7 +186,22 @@ def test_presets_are_counted_apart_from_tunes():
     plain = dict(_row(4, 7.1e6, 101, 94), preset=0)
     b = band_table([dict(pre, preset=0), conf, dict(pre, seq=5), searched, plain])[0]
     assert b["tunes"] == 3 and b["presets"] == 2 and b["presets_confirmed"] == 1
-    assert b["median_measurements"] == 1
+    assert b["median_measurements"] == 1 and b["presets_as_predicted"] == 0
+
+
+def test_a_computed_preset_the_first_reading_bore_out_is_counted_and_said():
+    # The board's why for a first reading that allowed the host's prediction (fmlogic.controller).
+    from feedmatch.logbook.report import report_lines
+
+    pred = dict(_row(1, 28.5e6, 10, 3), band="10m", outcome="best-effort", preset=1,
+                reason="preset as predicted (SWR 1.62), no search; true SWR 1.29-1.64: the readings cannot prove 1.50")
+    pre = dict(_row(2, 28.6e6, 10, 3), band="10m", outcome="preset", measurements=0, preset=0,
+               reason="preset from antenna curve")
+    searched = dict(pred, seq=3, measurements=7, reason="preset worse than predicted (SWR 1.05), searched; matched")
+    b = band_table([pre, pred, searched])[0]
+    assert b["presets"] == 1 and b["presets_as_predicted"] == 1
+    lines = report_lines({"tunes": 3, "bands": [b], "first": "2026-11-05T09:00:00", "last": "2026-11-05T10:00:00"})
+    assert any("as predicted by the first reading (no relay moved): 1" in ln for ln in lines)
 
 
 def test_best_effort_tunes_carry_the_true_swr_they_allow(tmp_path):

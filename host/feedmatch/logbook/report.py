@@ -19,6 +19,7 @@ from feedmatch.seam.logic import LOCKED, bin_of, bin_width
 # per-band baseline, not a global threshold).
 SWR_DRIFT = 0.25
 PRESET = "preset"  # the outcome of a preset record (feedmatch follow)
+AS_PREDICTED = "preset as predicted"  # how the board's why starts when a first reading bore a computed preset out
 STATE_DRIFT_FRACTION = 0.06
 MIN_TUNES_FOR_HEALTH = 4
 
@@ -95,6 +96,10 @@ def band_table(rows: list, banks: dict[str, Any] | None = None,
             "presets": len(presets),
             "presets_confirmed": sum(1 for r in rs if _get(r, "preset") and r["outcome"] == LOCKED
                                      and r["measurements"] == 1),
+            # Computed presets whose first reading bore the host's prediction out without proving
+            # the target (the board's why, fmlogic.controller): best-effort, no relay moved.
+            "presets_as_predicted": sum(1 for r in rs if _get(r, "preset")
+                                        and str(_get(r, "reason") or "").startswith(AS_PREDICTED)),
             "health": health(ok, bin_hz=bin_hz, bank=bank),
             # Tunes the readings could not prove (the coupler's bounds): how many,
             # and the median of the highest true SWR each one allows.
@@ -202,7 +207,9 @@ def report_lines(rep: dict[str, Any]) -> list[str]:
             for b in be))
     if presets:
         ok = sum(b["presets_confirmed"] for b in rep["bands"])
-        out.append(f"presets from the radio's frequency: {presets}, confirmed by the first reading: {ok}")
+        pred = sum(b.get("presets_as_predicted", 0) for b in rep["bands"])
+        out.append(f"presets from the radio's frequency: {presets}, confirmed by the first reading: {ok}"
+                   + (f", best-effort as predicted by the first reading (no relay moved): {pred}" if pred else ""))
     return out
 
 
