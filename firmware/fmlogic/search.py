@@ -178,6 +178,7 @@ class Strategy:
             # (the model's own error then stays inside the target).
             self.accept_g = _LEARNED_STOP * self.target_g
 
+    @micropython.native
     def observe(self, fwd_w, ref_w):
         g = reading_gamma(fwd_w, ref_w)
         # The detector's floor at the lowest tune power seen so far bounds what a
@@ -332,6 +333,7 @@ class Strategy:
             self.rows = None
             qfit.release(rows)
 
+    @micropython.native
     def _advance(self, g, first=False):
         try:
             if first:
@@ -349,6 +351,7 @@ class Strategy:
             self.timed_out = True
             raise _Stop()
 
+    @micropython.native
     def _measure(self, state):
         """Generator helper: measured |gamma| of a state, measuring only once."""
         g = self.seen.get(state)
@@ -360,6 +363,7 @@ class Strategy:
             raise _Stop()
         return g
 
+    @micropython.native
     def _satisfied(self):
         if self._lm:
             if self._proven:
@@ -497,6 +501,17 @@ class ModelFit(Strategy):
         self._w = []
         self._wc = None
         self._wn = 0
+        # _valley's packed candidates: c code and shunt in the low bits, l above.
+        cb = 1
+        while (1 << cb) <= bank.c_max:
+            cb += 1
+        lb = 1
+        while (1 << lb) <= bank.l_max:
+            lb += 1
+        self._kl = cb + 1
+        self._kb = cb + 1 + lb
+        self._kmask = (1 << self._kb) - 1
+        self._cmask = (1 << cb) - 1
 
     # -- the model --------------------------------------------------------------
     @micropython.native
@@ -757,67 +772,144 @@ class ModelFit(Strategy):
         if not cands:
             return None
         cands.sort()
+        best = self._state(cands[0])
         if len(cands) < 2:
-            return cands[0][1]
-        best = cands[0][1]
-        bv = _q(self._pred(g, best))
-        st = cands[1][1]
-        v = _q(self._pred(g, st))
+            return best
+        st = self._state(cands[1])
+        # _pred twice, inlined (a call costs as much as a complex operation on the board).
+        self.ops[1] += 2
+        coef = self._coef0 if self._lm else self._coef
+        a, b, c = coef(best)
+        bv = _q(abs((a * g + b) / (c * g + 1.0)))
+        a, b, c = coef(st)
+        v = _q(abs((a * g + b) / (c * g + 1.0)))
         if v < bv or (v == bv and st < best):
             best = st
         return best
 
     @micropython.native
+    def _state(self, v):
+        """The state of a candidate from _valley (its low bits)."""
+        k = v & self._kmask
+        return (k >> self._kl, (k >> 1) & self._cmask, k & 1)
+
+    @micropython.native
     def _valley(self, g, around=None):
-        """Candidate states for load g as [(residual, state)], residual the
-        mismatch (|gamma|, in 1e-4, lossless) left by the transforming code."""
+        """Candidate states for load g as integers, (residual << kb) | key: the
+        residual the mismatch (|gamma|, in 1e-4, lossless) left by the
+        transforming code, key the state (l, c, shunt) packed so that integer
+        order is the tuple's (_state unpacks it).  Integers, not tuples: on the
+        board a three-item tuple takes two heap blocks, found by a scan of the
+        allocation table, and sorting ints compares no tuples.
+
+        The closed form is the textbook L-network design (lnet.analytic_match,
+        written out here with the same arithmetic: a call and its tuples cost
+        more than the arithmetic on the board)."""
         b = self.bank
         z0 = b.z0
         zl = lnet.z_from_gamma(g, z0)
-        yl = 1.0 / zl if zl != 0 else 0j
         w = self.w
         wc = w * 1e-6
         out = []
-        for sh in (lnet.SHUNT_TX, lnet.SHUNT_ANT):
-            if around is None:
-                m = lnet.analytic_match(b, self.f_mhz, zl, sh)
-                if m is None:
-                    continue
-                if sh == lnet.SHUNT_ANT:
-                    k0 = b.c_code_for(m[1])
-                    k1 = k0 + (1 if b.cv[k0] < m[1] else -1)
-                else:
-                    k0 = b.l_code_for(m[0])
-                    k1 = k0 + (1 if b.lv[k0] < m[0] else -1)
-                ks = (k0, k1)
+        kl = self._kl
+        kb = self._kb
+        if around is not None:
+            sh0 = around[2]
+            yl = 1.0 / zl if zl != 0 else 0j
+            if sh0 == lnet.SHUNT_ANT:
+                k = around[1]
             else:
-                if around[2] != sh:
+                k = around[0]
+            self._vcands(out, zl, yl, sh0, k - 1, w, wc, z0, kl, kb)
+            self._vcands(out, zl, yl, sh0, k + 1, w, wc, z0, kl, kb)
+            return out
+        r = zl.real
+        if r <= 0.0:
+            return out  # no match on either side (analytic_match: r <= 0)
+        x = zl.imag
+        yl = 1.0 / zl
+        # Capacitor across the transmitter (lnet.analytic_match, shunt TX).
+        d = r * z0 - r * r
+        if d >= 0.0:
+            xt = d ** 0.5
+            xs = xt - x
+            if xs >= -1e-9:
+                bc = -(1.0 / complex(r, xt)).imag
+                if bc >= -1e-12:
+                    m0 = (xs if xs > 0.0 else 0.0) / w
+                    k0 = b.l_code_for(m0)
+                    k1 = k0 + (1 if b.lv[k0] < m0 else -1)
+                    for k in (k0, k1):
+                        if not 0 <= k <= b.l_max:
+                            continue
+                        # Series L fixed: the shunt C that cancels the susceptance left.
+                        zs = zl + complex(0.0, w * b.lv[k])
+                        ys = 1.0 / zs if zs != 0 else 0j
+                        bc = -ys.imag
+                        gg = ys.real * z0
+                        e = abs(gg - 1.0) / (gg + 1.0) if bc >= 0.0 else 1.0
+                        out.append((_q(e) << kb) | (k << kl) | (b.c_code_for(bc / wc if bc > 0.0 else 0.0) << 1))
+        # Capacitor across the antenna (lnet.analytic_match, shunt ANT).
+        gy = yl.real
+        bl = yl.imag
+        d = gy / z0 - gy * gy
+        if d >= 0.0:
+            bm = None
+            lm = 0.0
+            for sgn in (1.0, -1.0):
+                bt = sgn * (d ** 0.5)
+                bc = bt - bl
+                if bc < -1e-12:
                     continue
-                k = around[1] if sh == lnet.SHUNT_ANT else around[0]
-                ks = (k - 1, k + 1)
-            for k in ks:
-                if sh == lnet.SHUNT_ANT:
+                zp = 1.0 / complex(gy, bt)
+                xs = -zp.imag
+                if xs < -1e-9:
+                    continue
+                c0 = (xs if xs > 0.0 else 0.0) / w
+                c1 = (bc if bc > 0.0 else 0.0) / w * 1e6
+                if bm is None or c0 + c1 * 1e-3 < lm + bm * 1e-3:
+                    lm = c0
+                    bm = c1
+            if bm is not None:
+                k0 = b.c_code_for(bm)
+                k1 = k0 + (1 if b.cv[k0] < bm else -1)
+                for k in (k0, k1):
                     if not 0 <= k <= b.c_max:
                         continue
                     # Capacitor across the load fixed: the series L that cancels
                     # what reactance is left; the resistance left is the mismatch.
-                    zp = 1.0 / (yl + complex(0.0, wc * b.cv[k])) if zl != 0 else 0j
+                    zp = 1.0 / (yl + complex(0.0, wc * b.cv[k]))
                     x = -zp.imag
                     r = zp.real
-                    st = (b.l_code_for(x / w if x > 0.0 else 0.0), k, sh)
                     e = abs(r - z0) / (r + z0) if x >= 0.0 else 1.0
-                else:
-                    if not 0 <= k <= b.l_max:
-                        continue
-                    # Series L fixed: the shunt C that cancels the susceptance left.
-                    zs = zl + complex(0.0, w * b.lv[k])
-                    ys = 1.0 / zs if zs != 0 else 0j
-                    bc = -ys.imag
-                    gg = ys.real * z0
-                    st = (k, b.c_code_for(bc / wc if bc > 0.0 else 0.0), sh)
-                    e = abs(gg - 1.0) / (gg + 1.0) if bc >= 0.0 else 1.0
-                out.append((_q(e), st))
+                    out.append((_q(e) << kb) | (b.l_code_for(x / w if x > 0.0 else 0.0) << kl) | (k << 1) | 1)
         return out
+
+    def _vcands(self, out, zl, yl, sh, k, w, wc, z0, kl, kb):
+        # _valley's candidate of code k next to a state (_neighbours only: rare,
+        # so bytecode, which takes a fraction of native code's RAM).
+        b = self.bank
+        if sh == lnet.SHUNT_ANT:
+            if not 0 <= k <= b.c_max:
+                return
+            # Capacitor across the load fixed: the series L that cancels
+            # what reactance is left; the resistance left is the mismatch.
+            zp = 1.0 / (yl + complex(0.0, wc * b.cv[k])) if zl != 0 else 0j
+            x = -zp.imag
+            r = zp.real
+            key = (b.l_code_for(x / w if x > 0.0 else 0.0) << kl) | (k << 1) | 1
+            e = abs(r - z0) / (r + z0) if x >= 0.0 else 1.0
+        else:
+            if not 0 <= k <= b.l_max:
+                return
+            # Series L fixed: the shunt C that cancels the susceptance left.
+            zs = zl + complex(0.0, w * b.lv[k])
+            ys = 1.0 / zs if zs != 0 else 0j
+            bc = -ys.imag
+            gg = ys.real * z0
+            key = (k << kl) | (b.c_code_for(bc / wc if bc > 0.0 else 0.0) << 1)
+            e = abs(gg - 1.0) / (gg + 1.0) if bc >= 0.0 else 1.0
+        out.append((_q(e) << kb) | key)
 
     # -- the search -------------------------------------------------------------
     def _run(self):
@@ -868,6 +960,7 @@ class ModelFit(Strategy):
             if self.best_g <= _CLOSE:
                 return
 
+    @micropython.native
     def _hunt(self):
         """Aim at the least penalised load hypotheses until a reading comes near a
         match; False when no hypothesis is left to aim at.
@@ -911,6 +1004,7 @@ class ModelFit(Strategy):
         self.g = hunt.point(h.best())
         return left
 
+    @micropython.native
     def _local(self):
         """Converge near the best reading: fit the nearby readings, go where the
         fit's candidates say, then measure the neighbours it cannot rule out,
@@ -956,6 +1050,7 @@ class ModelFit(Strategy):
                 tried_wide = True
                 yield from self._jumps()
 
+    @micropython.native
     def _neighbours(self, g, step):
         c0 = self.best_state
         l, c, sh = c0
@@ -970,7 +1065,8 @@ class ModelFit(Strategy):
                 nb.append((_q(self._pred(g, t)), t, 0, 0))
             # Along the valley: the next code of the transforming element, the
             # other element where the model puts its best.
-            for e, t in self._valley(g, c0):
+            for v in self._valley(g, c0):
+                t = self._state(v)
                 if t not in self.seen and t != c0:
                     nb.append((_q(self._pred(g, t)), t, 0, 0))
         nb.sort()
