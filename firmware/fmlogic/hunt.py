@@ -335,19 +335,36 @@ class Hunt:
         the uncertainty sigma of m."""
         co = self.co
         p = a * complex(b.real, -b.imag)
-        co[0] = q12(a.real * a.real + a.imag * a.imag)
-        co[1] = q12(p.real)
-        co[2] = q12(p.imag)
-        co[3] = q12(b.real * b.real + b.imag * b.imag)
-        co[4] = q12(c.real * c.real + c.imag * c.imag)
-        co[5] = q12(c.real)
-        co[6] = q12(c.imag)
+        # q12() written out seven times: on the board a call costs as much as the
+        # arithmetic (the same integers: x * ONE rounded half away from zero, clamped, + BIAS;
+        # literals: a module global is a dictionary look-up in native code).
+        x = a.real * a.real + a.imag * a.imag
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[0] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = p.real
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[1] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = p.imag
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[2] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = b.real * b.real + b.imag * b.imag
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[3] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = c.real * c.real + c.imag * c.imag
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[4] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = c.real
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[5] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
+        x = c.imag
+        v = int(x * 4096 + (0.5 if x >= 0 else -0.5))
+        co[6] = (32767 if v > 32767 else (-32768 if v < -32768 else v)) + 32768
         s2 = 2.0 * m * sigma + sigma * sigma  # sigma of |gamma|^2
         inv = int(16.0 * ONE / (s2 * ONE) + 0.5)
         if inv > 60000:
             inv = 60000
-        self.evals += self.na
         na = self.na
+        self.evals += na
         self.na = _update(GRID, UU, self.pen, self.act, na, co, int(m * m * ONE + 0.5), inv,
                           self.CAP, self.CUT)
         if na:

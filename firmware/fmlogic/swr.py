@@ -6,6 +6,11 @@
 # mismatch loss = -10 log10 (1-|gamma|^2).
 import math
 
+try:
+    import micropython
+except ImportError:  # CPython: the same code, run as plain Python (fmlogic.shim)
+    from fmlogic.shim import micropython
+
 SWR_MAX = 999.0
 GAMMA_MAX = (SWR_MAX - 1.0) / (SWR_MAX + 1.0)
 NO_RF = -1.0
@@ -17,11 +22,13 @@ RATIO_MAX = 1.2
 _BIG = 1e30
 
 
+@micropython.native
 def _number(x):
     # NaN fails both comparisons; infinities and absurd magnitudes fail the bound.
     return -_BIG < x < _BIG
 
 
+@micropython.native
 def reading_gamma(fwd_w, ref_w):
     """|gamma| of one reading, checked before use.
 
