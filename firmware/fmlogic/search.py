@@ -1004,7 +1004,6 @@ class ModelFit(Strategy):
         self.g = hunt.point(h.best())
         return left
 
-    @micropython.native
     def _local(self):
         """Converge near the best reading: fit the nearby readings, go where the
         fit's candidates say, then measure the neighbours it cannot rule out,
@@ -1050,7 +1049,6 @@ class ModelFit(Strategy):
                 tried_wide = True
                 yield from self._jumps()
 
-    @micropython.native
     def _neighbours(self, g, step):
         c0 = self.best_state
         l, c, sh = c0
