@@ -145,18 +145,39 @@ class Coupler:
     def lock_level(self, target_g, fg=0.0):
         """The highest corrected reading whose upper bound is at or below
         target_g; -1.0 when no reading can prove it (a coupler too leaky for
-        the target)."""
+        the target).
+
+        bounds()' upper bound inverted in closed form: (u + d_r) / (1 - u d_f) = t
+        gives u, then sqrt(w^2 + fg^2) + NOISE_ABS + NOISE_REL w = u k_lo (over k
+        when learned) is a quadratic in w.  Then checked against bounds() and
+        lowered a step while rounding left it above the target, so the level
+        never claims more than the bound allows.  (A bisection of 24 calls of
+        bounds() took 16.5 ms on the chip, at every tune's start.)"""
         if self.bounds(0.0, fg)[1] > target_g:
             return -1.0
-        lo = 0.0
-        hi = 1.0
-        for _ in range(24):
-            mid = 0.5 * (lo + hi)
-            if self.bounds(mid, fg)[1] <= target_g:
-                lo = mid
-            else:
-                hi = mid
-        return lo
+        top = 1.0 - 1.0 / 16777216.0
+        if self.bounds(top, fg)[1] <= target_g:
+            return top
+        t = target_g
+        dr = self.leak / self.k_lo + 0.002
+        df = self.leak_fwd / self.k_lo + 0.002
+        wh = (t - dr) / (1.0 + t * df) * self.k_lo
+        if self.learned:
+            wh = wh / self.k
+        a = wh - NOISE_ABS
+        r = NOISE_REL
+        q = 1.0 - r * r
+        disc = a * a * r * r - q * (fg * fg - a * a)
+        w = (math.sqrt(disc) - a * r) / q if disc > 0.0 else 0.0
+        if w < 0.0:
+            w = 0.0
+        if w > top:
+            w = top
+        step = 1e-7
+        while w > 0.0 and self.bounds(w, fg)[1] > target_g:
+            w -= step
+            step *= 2.0
+        return w if w > 0.0 else 0.0
 
 
 def from_config(det, ref_cal=None):

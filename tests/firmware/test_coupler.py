@@ -89,6 +89,30 @@ def test_lock_level_falls_with_directivity():
         assert c.bounds(lv)[1] <= t < c.bounds(lv + 0.002)[1]
 
 
+
+def test_lock_level_in_closed_form_is_the_highest_reading_the_bound_allows():
+    # lock_level inverts bounds() in closed form; its definition is the highest
+    # reading whose upper bound is at or below the target, which a bisection of
+    # bounds() finds too: the two agree to float resolution, and the level never
+    # sits above what the bound allows (whatever the floor, gain tolerance or
+    # learned gain ratio).
+    rng = random.Random(7)
+    for _ in range(400):
+        learned = (0.01, -0.02, 0.03, 0.0, rng.uniform(0.9, 1.1), 0.01) if rng.random() < 0.4 else None
+        c = Coupler(rng.uniform(0.0, 0.2), rng.uniform(0.0, 0.2), rng.choice([0.0, 0.3, 0.6]), learned)
+        t = rng.uniform(0.05, 0.9)
+        fg = rng.choice([0.0, rng.uniform(0.0, 0.08)])
+        lv = c.lock_level(t, fg)
+        if c.bounds(0.0, fg)[1] > t:
+            assert lv == -1.0
+            continue
+        lo, hi = 0.0, 1.0
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if c.bounds(mid, fg)[1] <= t else (lo, mid)
+        assert c.bounds(lv, fg)[1] <= t
+        assert abs(lv - lo) < 2e-7
+
 def _plant_tune(det, load, cp):
     from feedmatch.rf.network import StateTable, load_network
 
